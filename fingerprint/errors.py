@@ -1,0 +1,72 @@
+"""One exception family for the whole project.
+
+Every error the tool raises on purpose derives from :class:`LodemapError`.
+The command line catches that base class, prints ``str(err)`` as one line on
+stderr and exits with status 2; anything else is a bug and keeps its
+traceback.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "LodemapError",
+    "DataError",
+    "FormatError",
+    "ConfigError",
+    "ConvergenceError",
+    "MapFileError",
+]
+
+
+class LodemapError(Exception):
+    """Base of every error raised on purpose by lodemap."""
+
+
+class DataError(LodemapError):
+    """Input data that is readable but wrong (units, ranges, ordering).
+
+    Parameters
+    ----------
+    message : str
+        What was wrong, what was expected and what was received.
+    path : str, optional
+        File the data came from.
+    line, column : int, optional
+        1-based line number in the file and 1-based column number (the
+        position of the field in the CSV row) where the problem is.
+    """
+
+    def __init__(self, message, *, path=None, line=None, column=None):
+        self.message = message
+        self.path = None if path is None else str(path)
+        self.line = line
+        self.column = column
+        super().__init__(self._format())
+
+    def _format(self):
+        where = []
+        if self.path is not None:
+            where.append(self.path)
+        if self.line is not None:
+            where.append(f"line {self.line}")
+        if self.column is not None:
+            where.append(f"column {self.column}")
+        prefix = ", ".join(where)
+        return f"{prefix}: {self.message}" if prefix else self.message
+
+
+class FormatError(DataError):
+    """A file that does not follow its format (missing column, bad cell)."""
+
+
+class ConfigError(LodemapError):
+    """A setting or argument outside what is allowed."""
+
+
+class ConvergenceError(LodemapError):
+    """A numerical procedure that did not reach a usable answer."""
+
+
+class MapFileError(DataError):
+    """A map file that is corrupted, truncated, of another version or
+    another plan."""

@@ -1,0 +1,1 @@
+"""Benchmarks behind ``lodemap bench`` (one module a target)."""

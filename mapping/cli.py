@@ -1,0 +1,92 @@
+"""The ``lodemap`` command line.
+
+Each sub-command lives in its own module under ``mapping/commands`` and
+exposes ``HELP`` (one line), ``add_arguments(parser)`` and ``run(args)``
+(returns the exit status). Modules are imported only when their command
+runs, so ``lodemap --help`` stays fast.
+
+Errors raised on purpose (``fingerprint.errors.LodemapError``) and bad
+files end the program with one line on stderr and exit status 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+__all__ = ["main", "COMMANDS"]
+
+#: command name -> (module under mapping.commands, one-line help)
+COMMANDS = {
+    "inspect": ("inspect_log", "summarise a walk log: duration, rates, gaps, |B|, steps, distance, calibration verdict"),
+    "calibrate": ("calibrate", "fit hard- and soft-iron magnetometer calibration from a log, write calibration.json"),
+    "simulate": ("simulate", "generate survey and test walks with exact truth in a site (e.g. demo_building/)"),
+    "build-map": ("build_map", "build a floor's field map from survey walks"),
+    "map-info": ("map_info", "print what a map file holds: floor, size, kernel, survey walks, quality"),
+    "map-image": ("map_image", "draw a map file (field, uncertainty, coverage, graph) to a PNG"),
+    "map-query": ("map_query", "mapped field mean and sd at the points of a CSV with columns x,y"),
+    "locate": ("locate", "localise a walk log on a map with the particle filter, write its track"),
+    "evaluate": ("evaluate", "score localisation against checkpoints over many walks, with baselines and a report"),
+    "sweep": ("sweep", "run a grid or random search over settings x walks x seeds (joblib or Dask), resumable"),
+    "demo": ("demo", "run the whole chain on the invented demo building and write a report"),
+    "bench": ("bench", "benchmarks: sensors, map, filter"),
+}
+
+
+def _build_parser():
+    parser = argparse.ArgumentParser(
+        prog="lodemap",
+        description="Indoor magnetic-field fingerprint mapping and localisation.",
+    )
+    parser.add_argument("--version", action="version", version=_version())
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
+    return parser, sub
+
+
+def _version():
+    try:
+        from importlib.metadata import version
+
+        return f"lodemap {version('lodemap')}"
+    except Exception:  # pragma: no cover - not installed
+        return "lodemap (not installed)"
+
+
+def _load(name):
+    module, _ = COMMANDS[name]
+    return importlib.import_module(f"mapping.commands.{module}")
+
+
+def main(argv=None):
+    """Entry point of the ``lodemap`` console script."""
+    from fingerprint.errors import LodemapError
+
+    argv = sys.argv[1:] if argv is None else list(argv)
+    parser, sub = _build_parser()
+    # Only the chosen command's module is imported; the others get a stub
+    # parser with their one-line help so that --help lists them all.
+    chosen = next((a for a in argv if not a.startswith("-")), None)
+    for name, (_, help_text) in COMMANDS.items():
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        if name == chosen:
+            _load(name).add_arguments(p)
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 0
+    try:
+        return int(_load(args.command).run(args) or 0)
+    except LodemapError as err:
+        print(f"lodemap {args.command}: error: {err}", file=sys.stderr)
+        return 2
+    except (FileNotFoundError, IsADirectoryError, PermissionError) as err:
+        print(f"lodemap {args.command}: error: {err.strerror}: {err.filename}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"lodemap {args.command}: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,1 @@
+"""One module per ``lodemap`` sub-command (see ``mapping.cli``)."""
