@@ -1,0 +1,466 @@
+"""Settings sweeps: settings x walks x seeds, on one machine (joblib) or on
+a Dask distributed cluster, resumable.
+
+A sweep is described by a TOML file (read with :mod:`tomllib`)::
+
+    [sweep]
+    mode = "tracking"          # tracking | global | no-field | dead-reckoning
+    search = "grid"            # grid | random
+    samples = 8                # random search: number of settings drawn
+    seeds = 2                  # seeds per (settings, walk)
+    seed = 0                   # root seed; run seeds are SeedSequence(seed).spawn(seeds)
+    metric = "median_error_m"  # what the ranking sorts by (lower is better)
+
+    [data]                     # paths relative to this file
+    walks = ["sim/G/test"]     # walks to score (files or folders)
+    map = "G.map"              # a fixed map ...
+    # ... or maps built once per distinct map setting and cached in OUT/maps:
+    # site = "demo_building/site.json"; floor = "G"; survey = ["sim/G/survey"]
+
+    [grid]                     # every key a list of values (grid search)
+    n_particles = [300, 1000]
+    map_resolution_m = [0.25, 0.5]
+
+    [random]                   # random search: {choices = [...]} or
+    n_particles = {low = 200, high = 3000, log = true, integer = true}
+
+Setting names: ``map_resolution_m`` and ``map_kernel`` choose how the map is
+built; ``noise_mag_ut`` (extra white noise on the measured field, µT, 1 sd),
+``noise_heading_deg`` (a constant heading error added to every step) and
+``noise_step_scale`` (step lengths multiplied by it) perturb the input;
+every other name is a field of ``fingerprint.localise.FilterSettings``.
+
+Every finished run is written at once as ``OUT/runs/<key>.json``
+(atomically), ``key`` a hash of its settings, walk, seed, mode and data;
+a rerun skips the keys already there, so killing a sweep loses nothing
+finished. ``OUT/results.csv`` is the tidy table (one row per run) and
+``OUT/ranking.csv`` ranks the settings with seeded bootstrap confidence
+intervals.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import itertools
+import json
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from fingerprint._atomic import write_json_atomic, write_text_atomic
+from fingerprint.errors import ConfigError, FormatError
+
+__all__ = [
+    "SweepConfig",
+    "load_sweep_config",
+    "parse_sweep_config",
+    "expand_settings",
+    "make_tasks",
+    "run_key",
+    "RunStore",
+    "execute",
+    "tidy_rows",
+    "write_tidy_csv",
+    "rank_settings",
+    "settings_label",
+    "MAP_SETTINGS",
+    "NOISE_SETTINGS",
+    "MODES",
+]
+
+MODES = ("tracking", "global", "no-field", "dead-reckoning")
+#: settings that choose how the map is built (one map per distinct combination)
+MAP_SETTINGS = ("map_resolution_m", "map_kernel")
+#: settings that perturb the input walk
+NOISE_SETTINGS = ("noise_mag_ut", "noise_heading_deg", "noise_step_scale")
+_SEARCHES = ("grid", "random")
+_SWEEP_KEYS = {"mode", "search", "samples", "seeds", "seed", "metric"}
+_DATA_KEYS = {"walks", "map", "site", "floor", "survey"}
+
+
+@dataclass
+class SweepConfig:
+    """A parsed sweep description (see the module docstring)."""
+
+    mode: str = "tracking"
+    search: str = "grid"
+    samples: int = 8
+    seeds: int = 1
+    seed: int = 0
+    metric: str = "median_error_m"
+    walks: list = field(default_factory=list)
+    map: Path | None = None
+    site: Path | None = None
+    floor: str | None = None
+    survey: list = field(default_factory=list)
+    grid: dict = field(default_factory=dict)
+    random: dict = field(default_factory=dict)
+    path: str | None = None
+
+    def data_identity(self):
+        """JSON-able description of the data (part of every run key)."""
+        return {
+            "map": None if self.map is None else str(self.map),
+            "site": None if self.site is None else str(self.site),
+            "floor": self.floor,
+            "survey": [str(p) for p in self.survey],
+        }
+
+
+def load_sweep_config(path):
+    """Read a sweep TOML file (paths in it are relative to its folder)."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError as err:
+        raise FormatError(f"sweep config is not UTF-8 text ({err.reason})", path=path) from err
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as err:
+        raise FormatError(f"not valid TOML: {err}", path=path) from err
+    return parse_sweep_config(raw, base=path.parent, path=str(path))
+
+
+def _check_keys(table, allowed, where, path):
+    unknown = sorted(set(table) - set(allowed))
+    if unknown:
+        raise ConfigError(f"{path}: unknown key(s) {unknown} in [{where}]; allowed: {sorted(allowed)}")
+
+
+def parse_sweep_config(raw, *, base=".", path="<sweep>"):
+    """A :class:`SweepConfig` from the parsed TOML dict ``raw``."""
+    base = Path(base)
+    unknown = sorted(set(raw) - {"sweep", "data", "grid", "random"})
+    if unknown:
+        raise ConfigError(f"{path}: unknown table(s) {unknown}; expected [sweep], [data], [grid] or [random]")
+    sw = raw.get("sweep", {})
+    data = raw.get("data", {})
+    _check_keys(sw, _SWEEP_KEYS, "sweep", path)
+    _check_keys(data, _DATA_KEYS, "data", path)
+    cfg = SweepConfig(path=path)
+    cfg.mode = str(sw.get("mode", cfg.mode))
+    if cfg.mode not in MODES:
+        raise ConfigError(f"{path}: [sweep] mode must be one of {list(MODES)}, got {cfg.mode!r}")
+    cfg.search = str(sw.get("search", "random" if "random" in raw and "grid" not in raw else "grid"))
+    if cfg.search not in _SEARCHES:
+        raise ConfigError(f"{path}: [sweep] search must be one of {list(_SEARCHES)}, got {cfg.search!r}")
+    for name in ("samples", "seeds", "seed"):
+        v = sw.get(name, getattr(cfg, name))
+        if not isinstance(v, int) or isinstance(v, bool) or v < (0 if name == "seed" else 1):
+            raise ConfigError(f"{path}: [sweep] {name} must be an integer >= {0 if name == 'seed' else 1}, got {v!r}")
+        setattr(cfg, name, v)
+    cfg.metric = str(sw.get("metric", cfg.metric))
+
+    def _paths(v, key):
+        if isinstance(v, str):
+            v = [v]
+        if not isinstance(v, list) or not all(isinstance(p, str) for p in v):
+            raise ConfigError(f"{path}: [data] {key} must be a path or a list of paths, got {v!r}")
+        return [(base / p).resolve() for p in v]
+
+    cfg.walks = _paths(data.get("walks", []), "walks")
+    if not cfg.walks:
+        raise ConfigError(f"{path}: [data] walks is required (files or folders of walks to score)")
+    if "map" in data:
+        cfg.map = _paths(data["map"], "map")[0]
+    if "site" in data:
+        cfg.site = _paths(data["site"], "site")[0]
+    cfg.floor = None if data.get("floor") is None else str(data["floor"])
+    cfg.survey = _paths(data.get("survey", []), "survey")
+
+    grid = raw.get("grid", {})
+    for k, v in grid.items():
+        if not isinstance(v, list) or not v:
+            raise ConfigError(f"{path}: [grid] {k} must be a non-empty list of values, got {v!r}")
+    rnd = raw.get("random", {})
+    for k, v in rnd.items():
+        if isinstance(v, list):
+            rnd[k] = v = {"choices": v}
+        if not isinstance(v, dict) or not ({"choices"} <= set(v) or {"low", "high"} <= set(v)):
+            raise ConfigError(
+                f"{path}: [random] {k} must be {{choices = [...]}} or {{low = .., high = .., log = bool, "
+                f"integer = bool}}, got {v!r}"
+            )
+        if "low" in v and not v["low"] <= v["high"]:
+            raise ConfigError(f"{path}: [random] {k}: low must be <= high, got {v['low']} > {v['high']}")
+        if v.get("log") and "low" in v and v["low"] <= 0:
+            raise ConfigError(f"{path}: [random] {k}: a log-uniform range needs low > 0, got {v['low']}")
+    if cfg.search == "random" and not rnd:
+        raise ConfigError(f"{path}: search = 'random' needs a [random] table")
+    cfg.grid, cfg.random = grid, rnd
+    names = set(grid) | set(rnd)
+    if names & set(MAP_SETTINGS):
+        if cfg.site is None or cfg.floor is None or not cfg.survey:
+            raise ConfigError(
+                f"{path}: map settings {sorted(names & set(MAP_SETTINGS))} need [data] site, floor and survey "
+                "(the maps are built from them)"
+            )
+    elif cfg.map is None and (cfg.site is None or cfg.floor is None or not cfg.survey):
+        raise ConfigError(f"{path}: [data] needs either map = FILE or site, floor and survey to build one")
+    return cfg
+
+
+def expand_settings(cfg, *, rng=None):
+    """The list of settings dicts the sweep runs.
+
+    Grid: the Cartesian product of ``cfg.grid`` (keys sorted, values in file
+    order) times, if ``cfg.random`` is also given, nothing else. Random:
+    ``cfg.samples`` draws from ``cfg.random`` (each value independently;
+    ``rng`` default ``default_rng(cfg.seed)``), with ``cfg.grid`` values
+    crossed in; duplicates dropped.
+    """
+    keys = sorted(cfg.grid)
+    grid = [dict(zip(keys, combo)) for combo in itertools.product(*(cfg.grid[k] for k in keys))] or [{}]
+    if cfg.search == "grid":
+        return grid
+    rng = np.random.default_rng(cfg.seed) if rng is None else rng
+    draws = []
+    for _ in range(cfg.samples):
+        d = {}
+        for k in sorted(cfg.random):
+            spec = cfg.random[k]
+            if "choices" in spec:
+                d[k] = spec["choices"][int(rng.integers(len(spec["choices"])))]
+            else:
+                lo, hi = float(spec["low"]), float(spec["high"])
+                x = math.exp(rng.uniform(math.log(lo), math.log(hi))) if spec.get("log") else rng.uniform(lo, hi)
+                d[k] = int(round(x)) if spec.get("integer") else float(x)
+        draws.append(d)
+    out, seen = [], set()
+    for g in grid:
+        for d in draws:
+            s = {**g, **d}
+            k = json.dumps(s, sort_keys=True)
+            if k not in seen:
+                seen.add(k)
+                out.append(s)
+    return out
+
+
+def run_key(task):
+    """Hash (16 hex digits) of a task's settings, walk, seed, mode and data."""
+    ident = {k: task.get(k) for k in ("settings", "walk", "seed", "mode", "data")}
+    text = json.dumps(ident, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+
+
+def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=None, extra=None):
+    """settings x walks x seeds as a list of task dicts.
+
+    The run seeds are ``numpy.random.SeedSequence(root_seed).spawn(seeds)``;
+    seed ``i`` is the same for every settings and walk (common random
+    numbers make the comparison of settings fairer). Each task carries
+    ``seed = {"entropy": root_seed, "spawn_key": [i]}`` (rebuild it with
+    ``SeedSequence(entropy, spawn_key=spawn_key)``) and its ``key``.
+
+    Parameters
+    ----------
+    settings_list : list of dict
+    walks : list of str (walk names or paths; JSON-able)
+    extra : dict, optional, merged into every task (not part of the key)
+    """
+    children = np.random.SeedSequence(int(root_seed)).spawn(int(seeds))
+    tasks = []
+    for s, w, i in itertools.product(settings_list, walks, range(int(seeds))):
+        ss = children[i]
+        task = {
+            "settings": dict(s),
+            "walk": w,
+            "seed": {"entropy": int(ss.entropy), "spawn_key": [int(k) for k in ss.spawn_key]},
+            "seed_index": i,
+            "mode": mode,
+            "data": data,
+        }
+        task["key"] = run_key(task)
+        if extra:
+            task.update(extra)
+        tasks.append(task)
+    return tasks
+
+
+class RunStore:
+    """Finished runs, one JSON file per run under ``folder``."""
+
+    def __init__(self, folder):
+        self.folder = Path(folder)
+        self.folder.mkdir(parents=True, exist_ok=True)
+
+    def path(self, key):
+        return self.folder / f"{key}.json"
+
+    def done(self, key):
+        return self.path(key).exists()
+
+    def save(self, key, record):
+        write_json_atomic(self.path(key), record)
+
+    def load(self, key):
+        return json.loads(self.path(key).read_text(encoding="utf-8"))
+
+    def keys(self):
+        return sorted(p.stem for p in self.folder.glob("*.json"))
+
+
+def _call(fn, task):
+    return task["key"], fn(task)
+
+
+def _record(task, result):
+    return {
+        "key": task["key"],
+        "settings": task["settings"],
+        "walk": task["walk"],
+        "seed": task["seed"],
+        "seed_index": task["seed_index"],
+        "mode": task.get("mode"),
+        "result": result,
+    }
+
+
+def execute(tasks, fn, *, store, jobs=1, scheduler=None, progress=True):
+    """Run the tasks not yet in ``store``; store each result as it ends.
+
+    Parameters
+    ----------
+    tasks : list of dict with ``key`` (see :func:`make_tasks`)
+    fn : callable(task) -> JSON-able dict; module-level (it is shipped to
+        worker processes or to the cluster)
+    store : RunStore
+    jobs : int, joblib processes on this machine (ignored with ``scheduler``)
+    scheduler : str, optional, address of a running Dask scheduler
+        (``tcp://host:8786``); the results come back to this process, which
+        writes them, so workers need no shared disk for the results
+    progress : bool, tqdm bar
+
+    Returns
+    -------
+    dict: ``done`` (ran now), ``skipped`` (already stored), ``total``
+    """
+    from tqdm.auto import tqdm
+
+    by_key = {}
+    for t in tasks:
+        by_key.setdefault(t["key"], t)
+    pending = [t for k, t in by_key.items() if not store.done(k)]
+    skipped = len(by_key) - len(pending)
+    bar = tqdm(total=len(by_key), initial=skipped, desc="sweep runs", unit="run", disable=not progress)
+    done = 0
+    try:
+        if not pending:
+            pass
+        elif scheduler:
+            from dask.distributed import Client, as_completed
+
+            with Client(scheduler) as client:
+                futures = client.map(_call, [fn] * len(pending), pending, pure=False)
+                try:
+                    for fut in as_completed(futures):
+                        key, result = fut.result()
+                        store.save(key, _record(by_key[key], result))
+                        done += 1
+                        bar.update(1)
+                except BaseException:
+                    client.cancel(futures)
+                    raise
+        else:
+            from joblib import Parallel, delayed
+
+            par = Parallel(n_jobs=int(jobs), return_as="generator_unordered")
+            for key, result in par(delayed(_call)(fn, t) for t in pending):
+                store.save(key, _record(by_key[key], result))
+                done += 1
+                bar.update(1)
+    finally:
+        bar.close()
+    return {"done": done, "skipped": skipped, "total": len(by_key)}
+
+
+def _flat(value):
+    if isinstance(value, (list, tuple, dict)):
+        return json.dumps(value, sort_keys=True)
+    return value
+
+
+def tidy_rows(records):
+    """One row per run: key, walk, seed_index, mode, every setting, every
+    scalar result. Returns (columns, rows)."""
+    set_cols = sorted({k for r in records for k in r["settings"]})
+    res_cols = sorted({k for r in records for k, v in r["result"].items() if not isinstance(v, (list, dict))})
+    cols = ["key", "walk", "seed_index", "mode"] + set_cols + res_cols
+    rows = []
+    for r in sorted(records, key=lambda r: (json.dumps(r["settings"], sort_keys=True), str(r["walk"]), r["seed_index"])):
+        row = [r["key"], r["walk"], r["seed_index"], r.get("mode")]
+        row += [_flat(r["settings"].get(k)) for k in set_cols]
+        row += [r["result"].get(k) for k in res_cols]
+        rows.append(row)
+    return cols, rows
+
+
+def _csv_text(cols, rows):
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(cols)
+    for r in rows:
+        w.writerow(["" if v is None else v for v in r])
+    return buf.getvalue()
+
+
+def write_tidy_csv(path, records):
+    """Write the tidy results table atomically; returns (columns, rows)."""
+    cols, rows = tidy_rows(records)
+    write_text_atomic(path, _csv_text(cols, rows))
+    return cols, rows
+
+
+def settings_label(settings):
+    """Short readable label of a settings dict (``k=v, ...``; ``default``)."""
+    if not settings:
+        return "default"
+    return ", ".join(f"{k}={settings[k]}" for k in sorted(settings))
+
+
+def rank_settings(records, *, metric="median_error_m", n_boot=2000, level=0.95, rng=None):
+    """Rank settings by the mean over their runs of ``metric`` (lower is
+    better), with percentile-bootstrap confidence intervals of that mean
+    (runs resampled with replacement; Efron & Tibshirani 1993, ch. 13).
+
+    Parameters
+    ----------
+    records : list of stored run records
+    rng : numpy.random.Generator (default ``default_rng(0)``: the ranking of
+        the same results is reproducible)
+
+    Returns
+    -------
+    list of dict, best first: ``rank``, ``settings`` (label), ``runs``,
+    ``mean``, ``ci_low``, ``ci_high``, ``best_overlap`` (whether the CI
+    overlaps that of the best)
+    """
+    rng = np.random.default_rng(0) if rng is None else rng
+    groups = {}
+    for r in records:
+        v = r["result"].get(metric)
+        if v is None or not np.isfinite(v):
+            continue
+        groups.setdefault(json.dumps(r["settings"], sort_keys=True), []).append(float(v))
+    if records and not groups:
+        raise ConfigError(f"no run has a finite value of {metric!r} to rank by")
+    out = []
+    a = (1 - level) / 2
+    for skey in sorted(groups):
+        vals = np.asarray(groups[skey])
+        idx = rng.integers(0, vals.size, size=(int(n_boot), vals.size))
+        boots = vals[idx].mean(axis=1)
+        lo, hi = np.quantile(boots, [a, 1 - a])
+        out.append({"settings": settings_label(json.loads(skey)), "runs": int(vals.size), "mean": float(vals.mean()),
+                    "ci_low": float(lo), "ci_high": float(hi)})
+    out.sort(key=lambda d: d["mean"])
+    for i, d in enumerate(out):
+        d["rank"] = i + 1
+        d["best_overlap"] = bool(d["ci_low"] <= out[0]["ci_high"])
+    return [{k: d[k] for k in ("rank", "settings", "runs", "mean", "ci_low", "ci_high", "best_overlap")} for d in out]

@@ -1,0 +1,205 @@
+"""The sweep machinery on a fake run function: expansion, keys, seeds,
+joblib and Dask execution, resume after an interruption, tidy CSV and the
+bootstrap ranking."""
+
+import csv
+import json
+import textwrap
+
+import numpy as np
+import pytest
+
+from fingerprint.errors import ConfigError, FormatError
+from mapping.sweep import (
+    RunStore,
+    execute,
+    expand_settings,
+    load_sweep_config,
+    make_tasks,
+    parse_sweep_config,
+    rank_settings,
+    run_key,
+    write_tidy_csv,
+)
+
+
+def fake_run(task):
+    """A stand-in for one localisation run: an 'error' that depends on the
+    settings and on a draw from the task's own seed."""
+    ss = np.random.SeedSequence(task["seed"]["entropy"], spawn_key=tuple(task["seed"]["spawn_key"]))
+    rng = np.random.default_rng(ss)
+    n = task["settings"].get("n_particles", 100)
+    return {"median_error_m": 10.0 / np.sqrt(n) + 0.01 * rng.standard_normal(), "draw": float(rng.uniform())}
+
+
+class Boom(RuntimeError):
+    pass
+
+
+_CALLS = {"n": 0, "limit": None, "seen": []}
+
+
+def counting_run(task):
+    _CALLS["n"] += 1
+    _CALLS["seen"].append(task["key"])
+    if _CALLS["limit"] is not None and _CALLS["n"] > _CALLS["limit"]:
+        raise Boom("interrupted on purpose")
+    return fake_run(task)
+
+
+def _cfg(tmp_path, body):
+    p = tmp_path / "sweep.toml"
+    p.write_text(textwrap.dedent(body), encoding="utf-8")
+    return load_sweep_config(p)
+
+
+BASE = """
+[sweep]
+seeds = 2
+seed = 7
+[data]
+walks = ["walks"]
+map = "floor.map"
+"""
+
+
+def test_grid_expansion_is_the_cartesian_product(tmp_path):
+    cfg = _cfg(tmp_path, BASE + '[grid]\nn_particles = [100, 400, 900]\nfeature_set = ["total", "full"]\n')
+    s = expand_settings(cfg)
+    assert len(s) == 6  # 3 x 2
+    assert {(d["n_particles"], d["feature_set"]) for d in s} == {
+        (n, f) for n in (100, 400, 900) for f in ("total", "full")
+    }
+    assert cfg.walks[0] == (tmp_path / "walks").resolve()  # relative to the config file
+
+
+def test_random_expansion_seeded_and_within_bounds(tmp_path):
+    body = BASE.replace("seeds = 2", 'seeds = 2\nsearch = "random"\nsamples = 30') + (
+        "[random]\nn_particles = {low = 100, high = 10000, log = true, integer = true}\n"
+        "field_temper = {low = 0.05, high = 0.5}\nlikelihood = [\"gaussian\", \"student-t\"]\n"
+    )
+    cfg = _cfg(tmp_path, body)
+    a, b = expand_settings(cfg), expand_settings(cfg)
+    assert a == b  # same root seed -> same draws
+    assert 1 < len(a) <= 30
+    n = np.array([d["n_particles"] for d in a])
+    t = np.array([d["field_temper"] for d in a])
+    assert np.all((n >= 100) & (n <= 10000)) and n.dtype.kind == "i"
+    assert np.all((t >= 0.05) & (t <= 0.5))
+    assert {d["likelihood"] for d in a} == {"gaussian", "student-t"}
+    # log-uniform: about half the draws below the geometric mean 1000
+    assert 0.2 < np.mean(n < 1000) < 0.8
+    c = expand_settings(cfg, rng=np.random.default_rng(99))
+    assert c != a
+
+
+def test_config_errors(tmp_path):
+    with pytest.raises(FormatError, match="TOML"):
+        _cfg(tmp_path, "[sweep\nseeds = 1")
+    with pytest.raises(ConfigError, match="mode"):
+        _cfg(tmp_path, BASE.replace("seeds = 2", 'seeds = 2\nmode = "sideways"'))
+    with pytest.raises(ConfigError, match="unknown key"):
+        _cfg(tmp_path, BASE.replace("seeds = 2", "seedz = 2"))
+    with pytest.raises(ConfigError, match="map settings"):
+        _cfg(tmp_path, BASE + "[grid]\nmap_resolution_m = [0.25, 0.5]\n")
+    with pytest.raises(ConfigError, match="non-empty list"):
+        _cfg(tmp_path, BASE + "[grid]\nn_particles = 100\n")
+    with pytest.raises(ConfigError, match="low must be"):
+        parse_sweep_config({"data": {"walks": ["w"], "map": "m"}, "sweep": {"search": "random"},
+                            "random": {"x": {"low": 2, "high": 1}}})
+
+
+def test_tasks_keys_and_spawned_seeds():
+    settings = [{"n_particles": 100}, {"n_particles": 400}]
+    tasks = make_tasks(settings, ["w1", "w2", "w3"], seeds=2, root_seed=7)
+    assert len(tasks) == 2 * 3 * 2
+    assert len({t["key"] for t in tasks}) == len(tasks)
+    # keys are a pure function of the task, stable across calls
+    again = make_tasks(settings, ["w1", "w2", "w3"], seeds=2, root_seed=7)
+    assert [t["key"] for t in tasks] == [t["key"] for t in again]
+    assert run_key(tasks[0]) == tasks[0]["key"]
+    # seeds are numpy's SeedSequence(7).spawn(2) children (numpy reference)
+    ref = np.random.SeedSequence(7).spawn(2)
+    for t in tasks:
+        ss = np.random.SeedSequence(t["seed"]["entropy"], spawn_key=tuple(t["seed"]["spawn_key"]))
+        r = ref[t["seed_index"]]
+        assert ss.generate_state(4).tolist() == r.generate_state(4).tolist()
+    # a different root seed changes the keys
+    other = make_tasks(settings, ["w1"], seeds=1, root_seed=8)
+    assert other[0]["key"] != tasks[0]["key"]
+
+
+def test_joblib_two_processes_store_every_run(tmp_path):
+    tasks = make_tasks([{"n_particles": 100}, {"n_particles": 400}], ["a", "b"], seeds=2, root_seed=1)
+    store = RunStore(tmp_path / "runs")
+    out = execute(tasks, fake_run, store=store, jobs=2, progress=False)
+    assert out == {"done": 8, "skipped": 0, "total": 8}
+    assert sorted(store.keys()) == sorted(t["key"] for t in tasks)
+    # results equal the same function run here (process-independent seeding)
+    for t in tasks:
+        assert store.load(t["key"])["result"] == fake_run(t)
+
+
+def test_resume_after_interruption_repeats_nothing(tmp_path):
+    tasks = make_tasks([{"n_particles": n} for n in (100, 200, 300)], ["a", "b"], seeds=2, root_seed=3)
+    store = RunStore(tmp_path / "runs")
+    _CALLS.update(n=0, limit=5, seen=[])
+    with pytest.raises(Boom):
+        execute(tasks, counting_run, store=store, jobs=1, progress=False)
+    finished = set(store.keys())
+    assert len(finished) == 5  # everything finished before the interruption is kept
+    # no half-written files left behind
+    assert not list((tmp_path / "runs").glob(".*.tmp"))
+    _CALLS.update(n=0, limit=None, seen=[])
+    out = execute(tasks, counting_run, store=store, jobs=1, progress=False)
+    assert out["skipped"] == 5 and out["done"] == len(tasks) - 5
+    assert not finished & set(_CALLS["seen"])  # no finished run was repeated
+    assert set(store.keys()) == {t["key"] for t in tasks}
+    _CALLS.update(n=0, seen=[])
+    out = execute(tasks, counting_run, store=store, jobs=1, progress=False)
+    assert out["done"] == 0 and _CALLS["n"] == 0
+
+
+def test_dask_local_cluster(tmp_path):
+    distributed = pytest.importorskip("dask.distributed")
+    tasks = make_tasks([{"n_particles": 100}, {"n_particles": 900}], ["a", "b", "c"], seeds=1, root_seed=5)
+    store = RunStore(tmp_path / "runs")
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
+                                  dashboard_address=None) as cluster:
+        out = execute(tasks, fake_run, store=store, scheduler=cluster.scheduler_address, progress=False)
+        assert out == {"done": 6, "skipped": 0, "total": 6}
+        again = execute(tasks, fake_run, store=store, scheduler=cluster.scheduler_address, progress=False)
+        assert again["done"] == 0 and again["skipped"] == 6
+    for t in tasks:
+        assert store.load(t["key"])["result"] == fake_run(t)
+
+
+def test_tidy_csv_and_ranking(tmp_path):
+    tasks = make_tasks([{"n_particles": n} for n in (100, 400, 1600)], ["a", "b", "c", "d"], seeds=3, root_seed=11)
+    store = RunStore(tmp_path / "runs")
+    execute(tasks, fake_run, store=store, jobs=1, progress=False)
+    records = [store.load(k) for k in store.keys()]
+    write_tidy_csv(tmp_path / "results.csv", records)
+    with open(tmp_path / "results.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 36
+    assert {"key", "walk", "seed_index", "n_particles", "median_error_m"} <= set(rows[0])
+    rank = rank_settings(records, rng=np.random.default_rng(0))
+    # 10/sqrt(n): 1.0, 0.5, 0.25 -> most particles first
+    assert [r["settings"] for r in rank] == ["n_particles=1600", "n_particles=400", "n_particles=100"]
+    assert [r["rank"] for r in rank] == [1, 2, 3]
+    assert rank[0]["best_overlap"] and not rank[2]["best_overlap"]
+    # bootstrap CI of the mean against scipy.stats.bootstrap (percentile method)
+    from scipy.stats import bootstrap
+
+    vals = np.array([r["result"]["median_error_m"] for r in records if r["settings"]["n_particles"] == 100])
+    ref = bootstrap((vals,), np.mean, n_resamples=4000, method="percentile", rng=np.random.default_rng(1))
+    lo, hi = ref.confidence_interval
+    r100 = rank[2]
+    width = hi - lo
+    assert r100["ci_low"] == pytest.approx(lo, abs=0.25 * width)
+    assert r100["ci_high"] == pytest.approx(hi, abs=0.25 * width)
+    assert r100["ci_low"] < r100["mean"] < r100["ci_high"]
+    # reproducible ranking for the same generator seed
+    assert rank_settings(records, rng=np.random.default_rng(0)) == rank
+    json.dumps(rank)
