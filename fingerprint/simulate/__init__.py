@@ -1,0 +1,1 @@
+"""Simulator (package init placeholder)."""
