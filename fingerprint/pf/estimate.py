@@ -1,0 +1,77 @@
+"""Point estimate of a particle cloud: the weighted mean of its dominant
+cluster, with covariance, a confidence figure and a converged flag."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["Estimate", "cluster_estimate"]
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """One estimate.
+
+    Attributes
+    ----------
+    t : float, seconds
+    xy : (2,) float, plan metres (on the graph when projected)
+    cov : (2, 2) float, m², weighted covariance of the dominant cluster
+    sigma_m : float, ``sqrt(trace(cov))``
+    confidence : float in [0, 1], weight share of the dominant cluster
+    converged : bool
+    lost : bool, a likelihood collapse was detected at this update
+    heading_rad : float, device heading in the plan (CCW from +x)
+    """
+
+    t: float
+    xy: np.ndarray
+    cov: np.ndarray
+    sigma_m: float
+    confidence: float
+    converged: bool
+    lost: bool
+    heading_rad: float
+
+
+def cluster_estimate(xy, w, *, radius_m):
+    """Weighted mean and covariance of the dominant cluster.
+
+    The particles are binned on a square grid of cell ``radius_m``; the cell
+    with the most weight and its 8 neighbours give a centre (weighted mean);
+    the cluster is every particle within ``radius_m`` of that centre.
+
+    Parameters
+    ----------
+    xy : (N, 2) float, metres
+    w : (N,) float, weights, sum 1
+    radius_m : float, ``inf`` = the whole cloud
+
+    Returns
+    -------
+    mean : (2,) float ; cov : (2, 2) float ; confidence : float
+    """
+    xy = np.asarray(xy, dtype=float)
+    w = np.asarray(w, dtype=float)
+    if np.isfinite(radius_m):
+        cell = np.floor(xy / radius_m).astype(np.int64)
+        keys, inv = np.unique(cell, axis=0, return_inverse=True)
+        inv = inv.reshape(-1)
+        mass = np.bincount(inv, weights=w, minlength=keys.shape[0])
+        best = keys[np.argmax(mass)]
+        near = np.all(np.abs(cell - best) <= 1, axis=1)
+        wn = w[near]
+        centre = (wn @ xy[near]) / max(wn.sum(), 1e-300)
+        d2 = np.sum((xy - centre) ** 2, axis=1)
+        member = d2 <= radius_m * radius_m
+    else:
+        member = np.ones(xy.shape[0], dtype=bool)
+    wc = w[member]
+    conf = float(wc.sum())
+    pc = xy[member]
+    mean = (wc @ pc) / max(conf, 1e-300)
+    dev = pc - mean
+    cov = (dev * wc[:, None]).T @ dev / max(conf, 1e-300)
+    return mean, cov, min(conf, 1.0)

@@ -1,0 +1,216 @@
+"""Measurement model: the field observed since the last update against the
+map at every particle.
+
+The samples of one update window are averaged (:func:`window_observation`).
+A *feature set* turns that observation and the map mean/variance at each
+particle into observed features ``y (k,)``, predicted features
+``pred (N, k)`` and their map variance ``(N, k)``, plus which component of
+the particle's field bias adds to each feature. Feature sets:
+
+- ``"full"``: horizontal field along the device's forward axis and to its
+  left, and the vertical field (device frame; the map's plan vector is
+  turned by each particle's own heading);
+- ``"vertical+horizontal"``: horizontal magnitude and vertical field;
+- ``"total"``: magnitude of the field.
+
+The variance of a feature is ``V = map var + sensor_noise**2 / n_samples +
+mismatch**2``. The field bias ``b`` of each particle is Gaussian,
+``N(b_hat, P)``, and is marginalised exactly for the Gaussian likelihood.
+The likelihood is *tempered* with exponent ``tau`` (``field_temper``)::
+
+    log l = tau * log f(r; V + tau * P),    r = y - pred - b_hat
+
+which is ``tau * log f(r; V)`` without bias and, for a Gaussian ``f``, has
+the quadratic form of the exact marginal of ``f(y | b)**tau`` over the bias.
+The bias then gets a Kalman update with measurement variance ``V / tau``.
+Where the map's coverage at a particle is beyond ``coverage_max_m`` the
+particle gets the average likelihood of the covered particles (neither
+favoured nor penalised) and its bias is left alone.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.special import gammaln
+
+from ..errors import ConfigError, ConvergenceError
+
+__all__ = [
+    "WindowObservation",
+    "window_observation",
+    "FEATURE_SETS",
+    "LIKELIHOODS",
+    "field_log_likelihood",
+]
+
+
+@dataclass(frozen=True)
+class WindowObservation:
+    """Field samples of one update window, averaged.
+
+    Attributes
+    ----------
+    n : int, number of samples
+    fwd_ut, left_ut, up_ut : float, mean device-frame horizontal components
+        (along the device heading and 90° to its left) and vertical, µT
+    h_ut : float, mean horizontal magnitude, µT
+    total_ut : float, mean magnitude, µT
+    heading_rad : float, circular mean device heading, earth frame
+    """
+
+    n: int
+    fwd_ut: float
+    left_ut: float
+    up_ut: float
+    h_ut: float
+    total_ut: float
+    heading_rad: float
+
+
+def window_observation(mag_earth_ut, heading_rad):
+    """Average the samples of a window.
+
+    Parameters
+    ----------
+    mag_earth_ut : (M, 3) float, µT, east, north, up; rows with NaN are dropped
+    heading_rad : (M,) float, device heading, earth frame
+
+    Returns
+    -------
+    WindowObservation, or None when no valid sample is left
+    """
+    b = np.asarray(mag_earth_ut, dtype=float).reshape(-1, 3)
+    h = np.asarray(heading_rad, dtype=float).reshape(-1)
+    ok = np.all(np.isfinite(b), axis=1) & np.isfinite(h)
+    if not np.all(ok):
+        b, h = b[ok], h[ok]
+    if b.shape[0] == 0:
+        return None
+    c, s = np.cos(h), np.sin(h)
+    fwd = b[:, 0] * c + b[:, 1] * s
+    left = -b[:, 0] * s + b[:, 1] * c
+    bh = np.hypot(b[:, 0], b[:, 1])
+    return WindowObservation(
+        n=int(b.shape[0]),
+        fwd_ut=float(fwd.mean()),
+        left_ut=float(left.mean()),
+        up_ut=float(b[:, 2].mean()),
+        h_ut=float(bh.mean()),
+        total_ut=float(np.sqrt(bh * bh + b[:, 2] ** 2).mean()),
+        heading_rad=float(np.arctan2(s.mean(), c.mean())),
+    )
+
+
+# -- feature sets: (obs, map_mean (N,3), map_var (N,3), psi (N,)) -> y, pred, var, bias_index
+def _features_full(obs, mean, var, psi):
+    c, s = np.cos(psi), np.sin(psi)
+    bx, by = mean[:, 0], mean[:, 1]
+    pred = np.column_stack([bx * c + by * s, -bx * s + by * c, mean[:, 2]])
+    c2, s2 = c * c, s * s
+    v = np.column_stack([var[:, 0] * c2 + var[:, 1] * s2, var[:, 0] * s2 + var[:, 1] * c2, var[:, 2]])
+    return np.array([obs.fwd_ut, obs.left_ut, obs.up_ut]), pred, v, (0, 1, 2)
+
+
+def _features_vh(obs, mean, var, psi):
+    bh = np.hypot(mean[:, 0], mean[:, 1])
+    vh = (mean[:, 0] ** 2 * var[:, 0] + mean[:, 1] ** 2 * var[:, 1]) / np.maximum(bh * bh, 1e-12)
+    pred = np.column_stack([bh, mean[:, 2]])
+    return np.array([obs.h_ut, obs.up_ut]), pred, np.column_stack([vh, var[:, 2]]), (0, 2)
+
+
+def _features_total(obs, mean, var, psi):
+    bt2 = np.sum(mean * mean, axis=1)
+    vt = np.sum(mean * mean * var, axis=1) / np.maximum(bt2, 1e-12)
+    return np.array([obs.total_ut]), np.sqrt(bt2)[:, None], vt[:, None], (2,)
+
+
+#: name -> feature function
+FEATURE_SETS = {
+    "full": _features_full,
+    "vertical+horizontal": _features_vh,
+    "total": _features_total,
+}
+
+
+# -- likelihoods: (r (N,k), s2 (N,k), settings) -> (N, k) log density
+def _gaussian(r, s2, settings):
+    return -0.5 * (r * r / s2 + np.log(2.0 * np.pi * s2))
+
+
+def _student_t(r, s2, settings):
+    nu = settings.student_nu
+    return (
+        gammaln(0.5 * (nu + 1.0))
+        - gammaln(0.5 * nu)
+        - 0.5 * np.log(nu * np.pi * s2)
+        - 0.5 * (nu + 1.0) * np.log1p(r * r / (nu * s2))
+    )
+
+
+#: name -> log density of a residual given its variance (scale²)
+LIKELIHOODS = {
+    "gaussian": _gaussian,
+    "student-t": _student_t,
+}
+
+
+def _get(registry, name, what):
+    try:
+        return registry[name]
+    except KeyError:
+        raise ConfigError(f"unknown {what} {name!r}; expected one of {sorted(registry)}") from None
+
+
+def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, fmap, settings, sensor_noise_ut):
+    """Tempered field log-likelihood of every particle and its bias update.
+
+    Parameters
+    ----------
+    obs : WindowObservation
+    xy : (N, 2) float, particle positions, plan metres
+    psi_rad : (N,) float, device heading of each particle in the plan
+    bias_ut, bias_var_ut2 : (N, 3) float, bias mean and variance
+    log_w : (N,) float, normalised log-weights (for the neutral level)
+    fmap : FieldMap ; settings : FilterSettings ; sensor_noise_ut : float
+
+    Returns
+    -------
+    log_lik : (N,) float
+    bias_ut, bias_var_ut2 : (N, 3) float, updated
+    """
+    s = settings
+    feats = _get(FEATURE_SETS, s.feature_set, "feature set")
+    dens = _get(LIKELIHOODS, s.likelihood, "likelihood")
+    mean, var, cov = fmap.lookup(xy)
+    y, pred, mvar, bidx = feats(obs, mean, var, psi_rad)
+    bidx = list(bidx)
+    tau = s.field_temper
+    v = mvar + (sensor_noise_ut**2 / max(obs.n, 1) + s.mismatch_ut**2)
+    b = bias_ut[:, bidx]
+    p = bias_var_ut2[:, bidx]
+    r = y[None, :] - pred - b
+    s2 = v + tau * p
+    ll = tau * np.sum(dens(r, s2, s), axis=1)
+    if np.any(np.isnan(ll)):
+        raise ConvergenceError("field log-likelihood is NaN (map or observation holds NaN)")
+    covered = cov <= s.coverage_max_m
+    gain = np.where(covered[:, None], tau * p / s2, 0.0)
+    new_b = bias_ut.copy()
+    new_p = bias_var_ut2.copy()
+    new_b[:, bidx] = b + gain * r
+    new_p[:, bidx] = (1.0 - gain) * p
+    if not np.all(covered):
+        if np.any(covered):
+            lw = log_w[covered]
+            a = lw + ll[covered]
+            top_a, top_w = a.max(), lw.max()
+            if np.isfinite(top_a):
+                neutral = (top_a + np.log(np.sum(np.exp(a - top_a)))) - (top_w + np.log(np.sum(np.exp(lw - top_w))))
+            else:
+                neutral = 0.0
+        else:
+            neutral = 0.0
+        ll = np.where(covered, ll, neutral)
+    return ll, new_b, new_p

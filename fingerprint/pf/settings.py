@@ -1,0 +1,165 @@
+"""Settings of the particle filter: one frozen dataclass (vary it with
+``dataclasses.replace``)."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, fields
+
+from ..errors import ConfigError
+
+__all__ = ["FilterSettings"]
+
+
+@dataclass(frozen=True)
+class FilterSettings:
+    """Every tunable of the localisation filter.
+
+    Particles and modes
+    -------------------
+    n_particles : particles in tracking mode
+    n_particles_global : particles in global mode (unknown start)
+
+    Motion (``fingerprint.pf.motion``)
+    ----------------------------------
+    update_min_m : dead-reckoning increments are merged until they add up to
+        at least this many metres; each merged increment is one filter update
+    length_sigma_frac, length_sigma_m : 1-sigma noise on each increment's
+        length, relative and absolute
+    scale_sigma0, scale_rw : initial spread of the step-length scale (around 1)
+        and its random walk per update
+    heading_sigma0_rad, heading_rw_rad : initial spread of the per-particle
+        heading offset and its random walk per update
+    heading_kappa : von Mises concentration of the agreement between the
+        step heading (in the plan) and the direction of a graph edge
+    reverse_prior : prior weight of turning back on an edge (vs 1 for going on)
+    use_heading_likelihood : penalise particles whose edges cannot follow the
+        step heading
+
+    Field (``fingerprint.pf.measurement``)
+    --------------------------------------
+    use_field : False gives the "no-field" filter (field updates off)
+    feature_set : "full", "vertical+horizontal" or "total"
+    likelihood : "gaussian" or "student-t"
+    student_nu : degrees of freedom of the Student-t likelihood
+    field_temper : exponent on the field likelihood (the mismatch against the
+        map is correlated over about ten steps, so one update carries roughly
+        a tenth of the information an independent one would)
+    sensor_noise_ut : 1-sigma noise of one magnetometer sample; None = the
+        walk's own ``mag_noise_ut``
+    mismatch_ut : 1-sigma model-mismatch term added to every feature
+    coverage_max_m : no field update for particles farther than this from
+        any survey sample (map ``coverage_m``)
+    bias_sigma0_ut : prior 1-sigma of the per-walk field bias per component
+        (0 = no bias states)
+    bias_rw_ut : random walk of the bias per update
+
+    Resampling and recovery (``fingerprint.pf.loop``)
+    -------------------------------------------------
+    resampler : "systematic", "stratified", "multinomial" or "residual"
+    ess_threshold : resample when ESS < ess_threshold * N
+    rough_heading_rad, rough_scale : roughening jitter after resampling
+    recovery : re-seed particles when the likelihood collapses
+    recovery_drop : collapse = update log-likelihood this many nats below its
+        running level
+    recovery_fraction : share of particles re-seeded over the whole graph
+    recovery_warmup : updates before collapse detection starts
+    recovery_rate : smoothing factor of the running level (0..1)
+
+    Estimate (``fingerprint.pf.estimate``)
+    --------------------------------------
+    cluster_radius_m : radius of the dominant cluster
+    converge_sigma_m, converge_confidence : converged = sigma below and
+        confidence above these
+    project_estimate : place the estimate on the graph
+    """
+
+    n_particles: int = 2000
+    n_particles_global: int = 20000
+    # motion
+    update_min_m: float = 0.5
+    length_sigma_frac: float = 0.08
+    length_sigma_m: float = 0.05
+    scale_sigma0: float = 0.08
+    scale_rw: float = 0.005
+    heading_sigma0_rad: float = math.radians(8.0)
+    heading_rw_rad: float = math.radians(0.5)
+    heading_kappa: float = 4.0
+    reverse_prior: float = 0.05
+    use_heading_likelihood: bool = True
+    # field
+    use_field: bool = True
+    feature_set: str = "full"
+    likelihood: str = "gaussian"
+    student_nu: float = 4.0
+    field_temper: float = 0.15
+    sensor_noise_ut: float | None = None
+    mismatch_ut: float = 2.0
+    coverage_max_m: float = 3.0
+    bias_sigma0_ut: float = 4.0
+    bias_rw_ut: float = 0.05
+    # resampling and recovery
+    resampler: str = "systematic"
+    ess_threshold: float = 0.5
+    rough_heading_rad: float = math.radians(0.5)
+    rough_scale: float = 0.003
+    recovery: bool = True
+    recovery_drop: float = 6.0
+    recovery_fraction: float = 0.1
+    recovery_warmup: int = 10
+    recovery_rate: float = 0.1
+    # estimate
+    cluster_radius_m: float = 3.0
+    converge_sigma_m: float = 2.0
+    converge_confidence: float = 0.7
+    project_estimate: bool = True
+
+    def __post_init__(self):
+        from .measurement import FEATURE_SETS, LIKELIHOODS
+        from .resampling import RESAMPLERS
+
+        def bad(name, why):
+            raise ConfigError(f"FilterSettings.{name}: expected {why}, got {getattr(self, name)!r}")
+
+        for name in ("n_particles", "n_particles_global"):
+            if not (isinstance(getattr(self, name), int) and getattr(self, name) >= 1):
+                bad(name, "an integer >= 1")
+        for name in (
+            "length_sigma_frac", "length_sigma_m", "scale_sigma0", "scale_rw", "heading_sigma0_rad",
+            "heading_rw_rad", "heading_kappa", "mismatch_ut", "bias_sigma0_ut", "bias_rw_ut",
+            "rough_heading_rad", "rough_scale", "update_min_m", "recovery_drop",
+        ):
+            v = getattr(self, name)
+            if not (isinstance(v, (int, float)) and math.isfinite(v) and v >= 0):
+                bad(name, "a finite number >= 0")
+        for name in ("field_temper", "student_nu", "cluster_radius_m", "converge_sigma_m", "coverage_max_m"):
+            v = getattr(self, name)
+            if not (isinstance(v, (int, float)) and v > 0):
+                bad(name, "a number > 0")
+        for name in ("reverse_prior", "ess_threshold", "recovery_fraction", "recovery_rate", "converge_confidence"):
+            v = getattr(self, name)
+            if not (isinstance(v, (int, float)) and 0 <= v <= 1):
+                bad(name, "a number in [0, 1]")
+        if self.sensor_noise_ut is not None and not self.sensor_noise_ut >= 0:
+            bad("sensor_noise_ut", "None or a number >= 0")
+        if self.feature_set not in FEATURE_SETS:
+            bad("feature_set", f"one of {sorted(FEATURE_SETS)}")
+        if self.likelihood not in LIKELIHOODS:
+            bad("likelihood", f"one of {sorted(LIKELIHOODS)}")
+        if self.resampler not in RESAMPLERS:
+            bad("resampler", f"one of {sorted(RESAMPLERS)}")
+        if not (isinstance(self.recovery_warmup, int) and self.recovery_warmup >= 0):
+            bad("recovery_warmup", "an integer >= 0")
+
+    def to_dict(self):
+        """JSON-able dict of every setting."""
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d):
+        """From a dict; unknown keys are an error that lists the valid ones."""
+        names = {f.name for f in fields(cls)}
+        unknown = sorted(set(d) - names)
+        if unknown:
+            raise ConfigError(f"unknown filter settings {unknown}; valid: {sorted(names)}")
+        return cls(**d)
