@@ -309,6 +309,7 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         q = (m - mu) @ np.column_stack([e1, e2])
         c2, r = circle_fit(q)
         offset = mu + c2[0] * e1 + c2[1] * e2
+        offset = offset - n * (n @ offset)  # not identifiable along the normal
         W = np.eye(3)
         report["condition_number"] = float(np.linalg.cond(q.T @ q))
         report["circle_radius_ut"] = r

@@ -1,0 +1,315 @@
+"""Device attitude: the device-to-earth rotation of every sample.
+
+Earth frame: east, north, up (ENU); "north" is magnetic north, held weakly.
+
+Choice (default, :func:`estimate_attitude`): a complementary filter in
+closed, vectorised form, run offline over a whole walk:
+
+1. Gyro bias: the mean gyro rate over still periods (accelerometer magnitude
+   steady and close to g, gyro rate small, for at least ``still_window_s``).
+2. Tilt: gravity is the accelerometer low-passed with a zero-phase
+   Butterworth filter (``tilt_cutoff_hz``; walking accelerations at the step
+   frequency are averaged out). The tilt rotation is the smallest rotation
+   taking the measured up direction onto earth up.
+3. Short-term heading: the gyro rate about the measured up direction,
+   integrated (trapezoid), minus the yaw twist of the tilt rotation itself,
+   so the integration is exact for any tilt history.
+4. Long-term heading: the tilt-compensated magnetometer azimuth. Its
+   difference from the gyro heading is smoothed as a unit phasor with a
+   Gaussian window of ``mag_time_constant_s`` (default 20 s), each sample
+   weighted down where the field magnitude or dip departs from the walk's
+   median (a local disturbance). Only this slowly varying correction is
+   added to the gyro heading: a disturbance lasting a few seconds moves the
+   heading by a small fraction of its angle, while gyro drift over minutes
+   is removed. This is the frequency split of a complementary filter, with
+   the high-pass on the gyro path and the low-pass on the magnetometer path,
+   computed with array operations instead of a per-sample loop.
+
+The published recursive filter of Madgwick (2010), "An efficient orientation
+filter for inertial and inertial/magnetic sensor arrays" (report, University
+of Bristol), MARG form with magnetic distortion compensation (eqs. 45-46), is
+available as :func:`madgwick_marg` (a per-sample loop, for comparison and for
+streaming use); the tests check it against the ``ahrs`` package.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.ndimage import gaussian_filter1d, uniform_filter1d
+from scipy.signal import butter, sosfiltfilt
+from scipy.spatial.transform import Rotation
+
+from .errors import DataError
+
+__all__ = [
+    "AttitudeSettings",
+    "Attitude",
+    "estimate_attitude",
+    "gyro_bias",
+    "tilt_rotation",
+    "madgwick_marg",
+    "GRAVITY_M_S2",
+    "FORWARD_AXIS",
+]
+
+#: Standard gravity, m/s² (CGPM 1901 conventional value).
+GRAVITY_M_S2 = 9.80665
+#: Device forward axis by platform (FORMATS.md device frames).
+FORWARD_AXIS = {"handheld": np.array([0.0, 1.0, 0.0]), "robot": np.array([1.0, 0.0, 0.0])}
+
+# Madgwick's earth frame (x magnetic north, y west, z up) -> ENU: +90° about z.
+_NWU_TO_ENU = Rotation.from_euler("z", 90.0, degrees=True)
+
+
+@dataclass(frozen=True)
+class AttitudeSettings:
+    """Parameters of :func:`estimate_attitude`.
+
+    tilt_cutoff_hz : low-pass cutoff for gravity from the accelerometer
+    mag_time_constant_s : Gaussian window (sd) of the magnetometer heading
+        correction; ``float("inf")`` ignores the magnetometer (heading then
+        starts at the first magnetometer azimuth, or 0 without one)
+    still_window_s : window for still detection
+    still_acc_sd : max sd of |a| (m/s²) in a still window
+    still_gyro_rad_s : max |ω| (rad/s) in a still window
+    disturbance_ut : scale (µT) of the magnitude/dip down-weighting
+    """
+
+    tilt_cutoff_hz: float = 0.4
+    mag_time_constant_s: float = 20.0
+    still_window_s: float = 1.0
+    still_acc_sd: float = 0.12
+    still_gyro_rad_s: float = 0.08
+    disturbance_ut: float = 8.0
+
+
+@dataclass(frozen=True, eq=False)
+class Attitude:
+    """Result of :func:`estimate_attitude`.
+
+    quat : (N, 4) device->earth (ENU), scalar-last
+    heading_rad : (N,) earth heading of the forward axis, CCW from east
+    up_device : (N, 3) unit up direction in the device frame
+    gyro_bias : (3,) rad/s
+    meta : dict
+    """
+
+    quat: np.ndarray
+    heading_rad: np.ndarray
+    up_device: np.ndarray
+    gyro_bias: np.ndarray
+    meta: dict = field(default_factory=dict)
+
+
+def _rolling_sd(x, w):
+    m = uniform_filter1d(x, w, axis=0, mode="nearest")
+    m2 = uniform_filter1d(x * x, w, axis=0, mode="nearest")
+    return np.sqrt(np.clip(m2 - m * m, 0, None))
+
+
+def gyro_bias(t, acc, gyro, *, settings=None):
+    """Gyro bias (3,) rad/s from still periods, and the still mask (N,) bool.
+
+    A sample is still when, over a centred window of ``still_window_s``, the
+    sd of |a| is below ``still_acc_sd``, the mean |a| within 0.5 m/s² of g
+    and the gyro magnitude below ``still_gyro_rad_s``. Without still samples
+    the bias is zero.
+    """
+    s = settings or AttitudeSettings()
+    t = np.asarray(t, float)
+    if t.size < 3:
+        return np.zeros(3), np.zeros(t.size, bool)
+    dt = float(np.median(np.diff(t)))
+    w = max(3, int(round(s.still_window_s / dt)))
+    an = np.linalg.norm(acc, axis=1)
+    gn = np.linalg.norm(gyro, axis=1)
+    still = (
+        (_rolling_sd(an, w) < s.still_acc_sd)
+        & (np.abs(uniform_filter1d(an, w, mode="nearest") - GRAVITY_M_S2) < 0.5)
+        & (uniform_filter1d(gn, w, mode="nearest") < s.still_gyro_rad_s)
+        & (gn < 2 * s.still_gyro_rad_s)
+    )
+    if still.sum() < w:
+        return np.zeros(3), still
+    return gyro[still].mean(axis=0), still
+
+
+def tilt_rotation(up_device):
+    """Smallest rotations taking unit up directions (N, 3) onto +z: Rotation (N)."""
+    u = np.asarray(up_device, float)
+    u = u / np.linalg.norm(u, axis=1, keepdims=True)
+    axis = np.column_stack([u[:, 1], -u[:, 0], np.zeros(len(u))])  # u x z
+    s = np.linalg.norm(axis, axis=1)
+    c = u[:, 2]
+    ang = np.arctan2(s, c)
+    safe = s > 1e-12
+    rv = np.zeros_like(u)
+    rv[safe] = axis[safe] / s[safe, None] * ang[safe, None]
+    flip = (~safe) & (c < 0)
+    rv[flip] = [np.pi, 0.0, 0.0]
+    return Rotation.from_rotvec(rv)
+
+
+def _lowpass(x, fs, fc, order=2):
+    if x.shape[0] < 16 or fc >= 0.45 * fs:
+        return x.copy()
+    sos = butter(order, fc, btype="low", fs=fs, output="sos")
+    pad = min(x.shape[0] - 1, int(3 * fs / fc))
+    return sosfiltfilt(sos, x, axis=0, padlen=pad)
+
+
+def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
+    """Attitude of every sample (see the module docstring for the method).
+
+    Parameters
+    ----------
+    t : (N,) s; acc : (N, 3) m/s²; gyro : (N, 3) rad/s; mag : (N, 3) µT
+        calibrated, device frame (may be None: heading is then relative)
+    forward_axis : (3,) device forward axis (default phone +y)
+
+    Returns
+    -------
+    Attitude
+    """
+    s = settings or AttitudeSettings()
+    t = np.asarray(t, float)
+    acc = np.asarray(acc, float)
+    gyro = np.asarray(gyro, float)
+    n = t.size
+    if n < 2:
+        raise DataError(f"attitude needs at least 2 samples, got {n}")
+    fwd = FORWARD_AXIS["handheld"] if forward_axis is None else np.asarray(forward_axis, float)
+    dt = np.diff(t)
+    fs = 1.0 / float(np.median(dt))
+
+    bias, still = gyro_bias(t, acc, gyro, settings=s)
+    w = gyro - bias
+
+    g = _lowpass(acc, fs, s.tilt_cutoff_hz)
+    gn = np.linalg.norm(g, axis=1)
+    if np.any(gn <= 1e-6):
+        raise DataError("accelerometer gives no gravity direction (zero low-passed acceleration)")
+    up = g / gn[:, None]
+    Rt = tilt_rotation(up)
+
+    # yaw rate about earth up; minus the twist of the tilt rotation itself
+    w_up = np.einsum("ij,ij->i", w, up)
+    twist = (Rt[1:] * Rt[:-1].inv()).as_rotvec()[:, 2]
+    dpsi = 0.5 * (w_up[1:] + w_up[:-1]) * dt - twist
+    psi_g = np.concatenate([[0.0], np.cumsum(dpsi)])
+
+    meta = {"method": "complementary (vectorised)", "gyro_bias_rad_s": bias.tolist(), "still_samples": int(still.sum())}
+    corr = np.zeros(n)
+    if mag is not None:
+        mag = np.asarray(mag, float)
+        mL = Rt.apply(mag)
+        alpha = np.arctan2(mL[:, 1], mL[:, 0])
+        psi_m = np.pi / 2 - alpha
+        d = psi_m - psi_g
+        # weights: magnitude and dip far from the walk median = disturbed
+        bm = np.linalg.norm(mag, axis=1)
+        bh = np.hypot(mL[:, 0], mL[:, 1])
+        bu = mL[:, 2]
+        wgt = np.exp(
+            -0.5 * (((bm - np.median(bm)) / s.disturbance_ut) ** 2 + ((bu - np.median(bu)) / s.disturbance_ut) ** 2)
+        ) * (bh > 1.0)
+        if not np.isfinite(s.mag_time_constant_s):
+            k = int(np.argmax(wgt > 0)) if np.any(wgt > 0) else 0
+            corr[:] = d[k]
+            meta["heading_reference"] = "first magnetometer azimuth, gyro only after"
+        elif wgt.sum() > 0:
+            sig = s.mag_time_constant_s * fs
+            zr = gaussian_filter1d(wgt * np.cos(d), sig, mode="nearest")
+            zi = gaussian_filter1d(wgt * np.sin(d), sig, mode="nearest")
+            corr = np.arctan2(zi, zr)
+            # unwrap the (slow) correction so the heading stays continuous
+            corr = np.unwrap(corr)
+            meta["heading_reference"] = f"magnetometer, smoothed over {s.mag_time_constant_s:g} s"
+            meta["mag_weight_mean"] = float(wgt.mean())
+    else:
+        meta["heading_reference"] = "none (relative heading)"
+    psi = psi_g + corr
+    R = Rotation.from_rotvec(np.column_stack([np.zeros(n), np.zeros(n), psi])) * Rt
+    fL = Rt.apply(fwd)
+    heading = np.angle(np.exp(1j * (psi + np.arctan2(fL[:, 1], fL[:, 0]))))
+    return Attitude(quat=R.as_quat(), heading_rad=heading, up_device=up, gyro_bias=bias, meta=meta)
+
+
+def madgwick_marg(gyro, acc, mag, *, dt_s, beta=0.041, q0=None):
+    """Madgwick (2010) MARG filter, one sample at a time.
+
+    Gradient-descent correction of the gyro quaternion rate towards the
+    accelerometer (gravity) and magnetometer (earth field with its dip
+    estimated from the data, eqs. 45-46) directions; integration step eq. 13.
+
+    Parameters
+    ----------
+    gyro : (N, 3) rad/s; acc : (N, 3); mag : (N, 3) (any consistent units)
+    dt_s : float or (N,) float, seconds between sample i-1 and i
+    beta : float, filter gain (rad/s)
+    q0 : (4,) scalar-last device->ENU quaternion of sample 0 (default identity)
+
+    Returns
+    -------
+    (N, 4) scalar-last device->ENU quaternions.
+    """
+    gyro = np.asarray(gyro, float)
+    acc = np.asarray(acc, float)
+    mag = np.asarray(mag, float)
+    n = gyro.shape[0]
+    dts = np.broadcast_to(np.asarray(dt_s, float), (n,))
+    # work in Madgwick's frame (x north, y west, z up), scalar-first
+    r0 = Rotation.identity() if q0 is None else Rotation.from_quat(q0)
+    qx_, qy_, qz_, qw_ = (_NWU_TO_ENU.inv() * r0).as_quat()
+    q = [qw_, qx_, qy_, qz_]
+    out = np.empty((n, 4))
+    out[0] = q
+    an = acc / np.linalg.norm(acc, axis=1, keepdims=True)
+    mn = mag / np.linalg.norm(mag, axis=1, keepdims=True)
+    for i in range(1, n):
+        q0_, q1, q2, q3 = q
+        gx, gy, gz = gyro[i]
+        # quaternion rate from the gyro (eq. 12): 0.5 q ⊗ (0, ω)
+        d0 = 0.5 * (-q1 * gx - q2 * gy - q3 * gz)
+        d1 = 0.5 * (q0_ * gx + q2 * gz - q3 * gy)
+        d2 = 0.5 * (q0_ * gy - q1 * gz + q3 * gx)
+        d3 = 0.5 * (q0_ * gz + q1 * gy - q2 * gx)
+        ax, ay, az = an[i]
+        mx, my, mz = mn[i]
+        # earth-frame direction of the measured field h = q ⊗ m ⊗ q* (eq. 45)
+        hx = mx * (q0_**2 + q1**2 - q2**2 - q3**2) + 2 * my * (q1 * q2 - q0_ * q3) + 2 * mz * (q1 * q3 + q0_ * q2)
+        hy = 2 * mx * (q1 * q2 + q0_ * q3) + my * (q0_**2 - q1**2 + q2**2 - q3**2) + 2 * mz * (q2 * q3 - q0_ * q1)
+        hz = 2 * mx * (q1 * q3 - q0_ * q2) + 2 * my * (q2 * q3 + q0_ * q1) + mz * (q0_**2 - q1**2 - q2**2 + q3**2)
+        bx = np.hypot(hx, hy)  # eq. 46
+        bz = hz
+        f = np.array(
+            [
+                2 * (q1 * q3 - q0_ * q2) - ax,
+                2 * (q0_ * q1 + q2 * q3) - ay,
+                2 * (0.5 - q1**2 - q2**2) - az,
+                2 * bx * (0.5 - q2**2 - q3**2) + 2 * bz * (q1 * q3 - q0_ * q2) - mx,
+                2 * bx * (q1 * q2 - q0_ * q3) + 2 * bz * (q0_ * q1 + q2 * q3) - my,
+                2 * bx * (q0_ * q2 + q1 * q3) + 2 * bz * (0.5 - q1**2 - q2**2) - mz,
+            ]
+        )
+        J = np.array(
+            [
+                [-2 * q2, 2 * q3, -2 * q0_, 2 * q1],
+                [2 * q1, 2 * q0_, 2 * q3, 2 * q2],
+                [0.0, -4 * q1, -4 * q2, 0.0],
+                [-2 * bz * q2, 2 * bz * q3, -4 * bx * q2 - 2 * bz * q0_, -4 * bx * q3 + 2 * bz * q1],
+                [-2 * bx * q3 + 2 * bz * q1, 2 * bx * q2 + 2 * bz * q0_, 2 * bx * q1 + 2 * bz * q3, -2 * bx * q0_ + 2 * bz * q2],
+                [2 * bx * q2, 2 * bx * q3 - 4 * bz * q1, 2 * bx * q0_ - 4 * bz * q2, 2 * bx * q1],
+            ]
+        )
+        grad = J.T @ f
+        gnorm = np.sqrt(grad @ grad)
+        if gnorm > 0:
+            grad = grad / gnorm
+        qn = np.array([q0_, q1, q2, q3]) + (np.array([d0, d1, d2, d3]) - beta * grad) * dts[i]
+        q = qn / np.sqrt(qn @ qn)
+        out[i] = q
+    r = _NWU_TO_ENU * Rotation.from_quat(out[:, [1, 2, 3, 0]])
+    return r.as_quat()
