@@ -28,6 +28,7 @@ __all__ = [
     "plot_error_cdf",
     "plot_tracks",
     "save_figure",
+    "save_png",
 ]
 
 _CSS = """
@@ -132,14 +133,19 @@ def write_report(path, title, sections, *, subtitle=None):
     write_text_atomic(path, build_html(title, sections, subtitle=subtitle))
 
 
+def save_png(path, b64_png):
+    """Write a base64 PNG (as made by :func:`figure_to_base64`) atomically."""
+    from fingerprint._atomic import atomic_write
+
+    with atomic_write(path, "wb") as fh:
+        fh.write(base64.b64decode(b64_png))
+
+
 def save_figure(fig, path, *, dpi=100):
     """Write a figure as PNG atomically and return its base64 text (for
     embedding the same image in the report)."""
-    from fingerprint._atomic import atomic_write
-
     b64 = figure_to_base64(fig, dpi=dpi)
-    with atomic_write(path, "wb") as fh:
-        fh.write(base64.b64decode(b64))
+    save_png(path, b64)
     return b64
 
 

@@ -1,0 +1,592 @@
+"""The evaluation runner: localise walks on a map, score them at their
+checkpoints, run the baselines on the same walks, write the tables, plots
+and the HTML report.
+
+Modes (the method under test):
+
+- ``tracking``: the particle filter started at the first checkpoint
+  (``start_sigma_m`` around it); the other checkpoints are scored;
+- ``global``: the filter with no start (particles over the whole graph);
+  every checkpoint is scored and convergence recorded;
+- ``no-field``: the same filter with the field updates off (the graph and
+  dead reckoning only), started like tracking;
+- ``dead-reckoning``: the motion increments alone from the first checkpoint.
+
+Baselines run in the same call on the same walks: dead reckoning, the
+no-field filter and DTW sequence matching (``mapping.baselines``); they all
+start at the first checkpoint and score the others. Metric definitions are
+in ``mapping.metrics``.
+"""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+import io
+import json
+import math
+import platform as _platform
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from fingerprint._atomic import write_json_atomic, write_text_atomic
+from fingerprint.errors import ConfigError, DataError
+from fingerprint.records import Track
+
+from . import metrics as M
+
+__all__ = [
+    "MODES",
+    "METHODS",
+    "BASELINES",
+    "MethodResult",
+    "WalkEvaluation",
+    "Evaluation",
+    "run_method",
+    "evaluate_walk",
+    "evaluate_walks",
+    "load_walk",
+    "write_outputs",
+    "method_label",
+]
+
+#: mode -> the method under test
+MODES = {"tracking": "filter", "global": "global", "no-field": "no-field", "dead-reckoning": "dead-reckoning"}
+#: every method the runner knows
+METHODS = ("filter", "global", "no-field", "dead-reckoning", "dtw")
+#: baselines run beside the method under test by default
+BASELINES = ("dead-reckoning", "no-field", "dtw")
+
+_LABELS = {
+    "filter": "particle filter (tracking)",
+    "global": "particle filter (global start)",
+    "no-field": "no-field filter (graph + dead reckoning)",
+    "dead-reckoning": "dead reckoning",
+    "dtw": "DTW sequence matching",
+}
+
+
+def method_label(method):
+    return _LABELS.get(method, method)
+
+
+@dataclass
+class MethodResult:
+    """One method's result on one walk.
+
+    track : Track, estimated positions
+    errors_m : (C,) float, error at every checkpoint (scored or not)
+    scored : (C,) bool
+    time_s : float, processing time of the method
+    """
+
+    track: Track
+    errors_m: np.ndarray
+    scored: np.ndarray
+    time_s: float
+
+    @property
+    def scored_errors_m(self):
+        return self.errors_m[self.scored]
+
+
+@dataclass
+class WalkEvaluation:
+    """Everything measured on one walk."""
+
+    name: str
+    platform: str
+    duration_s: float
+    checkpoints: object
+    distance_m: np.ndarray
+    main: str
+    results: dict
+    converged: bool
+    convergence_distance_m: float
+    truth: Track | None = None
+
+    @property
+    def main_result(self):
+        return self.results[self.main]
+
+
+@dataclass
+class Evaluation:
+    """A whole evaluation run."""
+
+    mode: str
+    seed: int
+    settings: dict
+    walks: list
+    skipped: list
+    runtime_s: float
+    summary: dict
+    map_info: dict = field(default_factory=dict)
+    baselines: tuple = BASELINES
+
+    def pooled(self, method):
+        """Scored errors of ``method`` over all walks (C,)."""
+        parts = [w.results[method].scored_errors_m for w in self.walks if method in w.results]
+        return np.concatenate(parts) if parts else np.zeros(0)
+
+
+def _settings(settings, n_particles=None):
+    from fingerprint.localise import FilterSettings
+
+    s = FilterSettings() if settings is None else settings
+    if n_particles is not None:
+        s = dataclasses.replace(s, n_particles=int(n_particles), n_particles_global=int(n_particles))
+    return s
+
+
+def run_method(method, walk, fmap, *, start_xy, start_time_s, settings=None, start_sigma_m=1.0, rng):
+    """Estimated track of ``walk`` by ``method`` (one of :data:`METHODS`).
+
+    Parameters
+    ----------
+    walk : ProcessedWalk
+    fmap : FieldMap
+    start_xy : (2,) float, metres, the first checkpoint (ignored by ``global``)
+    start_time_s : float, its time
+    settings : FilterSettings or None (defaults)
+    rng : numpy.random.Generator
+    """
+    from . import baselines as B
+
+    if method == "dead-reckoning":
+        return B.dead_reckoning_track(walk, start_xy, start_time_s=start_time_s,
+                                      earth_to_plan_rad=fmap.earth_to_plan_rad)
+    if method == "dtw":
+        return B.dtw_track(walk, fmap, start_xy, start_time_s=start_time_s, rng=rng)
+    if method not in ("filter", "global", "no-field"):
+        raise ConfigError(f"unknown method {method!r}; valid: {list(METHODS)}")
+    from fingerprint.localise import localise
+
+    s = _settings(settings)
+    if method == "no-field":
+        s = dataclasses.replace(s, use_field=False)
+    if method == "global":
+        return localise(walk, fmap, settings=s, start_xy=None, rng=rng)
+    return localise(walk, fmap, settings=s, start_xy=np.asarray(start_xy, float), start_sigma_m=start_sigma_m,
+                    start_time_s=start_time_s, rng=rng)
+
+
+def evaluate_walk(name, walk, checkpoints, fmap, *, mode="tracking", settings=None, seed=0,
+                  baselines=BASELINES, start_sigma_m=1.0, truth=None):
+    """Run the method of ``mode`` and the baselines on one walk and score
+    them at its checkpoints.
+
+    Parameters
+    ----------
+    name : str
+    walk : ProcessedWalk
+    checkpoints : Checkpoints, at least 2 (1 in global mode)
+    fmap : FieldMap
+    seed : int or numpy.random.SeedSequence; each method gets its own child
+    baselines : iterable of method names run beside the main one
+
+    Returns
+    -------
+    WalkEvaluation
+    """
+    if mode not in MODES:
+        raise ConfigError(f"unknown mode {mode!r}; valid: {list(MODES)}")
+    need = 1 if mode == "global" else 2
+    if checkpoints.n < need:
+        raise DataError(f"walk {name} has {checkpoints.n} checkpoint(s); mode {mode} needs at least {need}",
+                        path=checkpoints.path)
+    main = MODES[mode]
+    methods = [main] + [b for b in baselines if b != main]
+    ss = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(int(seed))
+    children = dict(zip(METHODS, ss.spawn(len(METHODS))))
+    start_xy = checkpoints.xy[0]
+    start_t = float(checkpoints.t[0])
+    results = {}
+    for m in methods:
+        t0 = time.perf_counter()
+        track = run_method(m, walk, fmap, start_xy=start_xy, start_time_s=start_t, settings=settings,
+                           start_sigma_m=start_sigma_m, rng=np.random.default_rng(children[m]))
+        dt = time.perf_counter() - t0
+        err = M.checkpoint_errors(track, checkpoints)
+        results[m] = MethodResult(track, err, M.scored_mask(checkpoints.n, "global" if m == "global" else "tracking"), dt)
+    dist = M.distance_walked_m(walk.motion, checkpoints.t)
+    r = results[main]
+    conv, cdist, _ = M.convergence(r.errors_m[r.scored], dist[r.scored])
+    dur = float(walk.t[-1] - walk.t[0]) if walk.n > 1 else 0.0
+    return WalkEvaluation(name=name, platform=walk.platform, duration_s=dur, checkpoints=checkpoints,
+                          distance_m=dist, main=main, results=results, converged=conv,
+                          convergence_distance_m=cdist, truth=truth)
+
+
+def load_walk(walk_files):
+    """Read and process one walk (a ``mapping.walkset.WalkFiles``).
+
+    Returns
+    -------
+    (ProcessedWalk, Checkpoints or None, Track or None)
+    """
+    from fingerprint.logio import read_checkpoints, read_track, read_walk_log
+    from fingerprint.pipeline import process_walk
+
+    log = read_walk_log(walk_files.log)
+    walk = process_walk(log)
+    cps = read_checkpoints(walk_files.checkpoints) if walk_files.checkpoints else None
+    truth = read_track(walk_files.track) if getattr(walk_files, "track", None) else None
+    return walk, cps, truth
+
+
+def _one(wf, fmap, mode, settings, seed, baselines, start_sigma_m):
+    walk, cps, truth = load_walk(wf)
+    if cps is None:
+        return wf.name, "no checkpoints file"
+    need = 1 if mode == "global" else 2
+    if cps.n < need:
+        return wf.name, f"{cps.n} checkpoint(s), mode {mode} needs {need}"
+    return evaluate_walk(wf.name, walk, cps, fmap, mode=mode, settings=settings, seed=seed,
+                         baselines=baselines, start_sigma_m=start_sigma_m, truth=truth)
+
+
+def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_particles=None, seed=0,
+                   baselines=BASELINES, start_sigma_m=1.0, jobs=1, progress=True, map_info=None):
+    """Evaluate many walks on one map.
+
+    Parameters
+    ----------
+    fmap : FieldMap
+    walk_files : list of ``mapping.walkset.WalkFiles`` (name, log,
+        checkpoints, track)
+    settings : FilterSettings or None; ``n_particles`` overrides its particle
+        counts (tracking and global)
+    seed : int, root seed; walk ``i`` gets ``SeedSequence(seed).spawn(n)[i]``
+    jobs : int, walks processed in parallel (joblib processes)
+
+    Returns
+    -------
+    Evaluation
+    """
+    if mode not in MODES:
+        raise ConfigError(f"unknown mode {mode!r}; valid: {list(MODES)}")
+    bad = [b for b in baselines if b not in METHODS]
+    if bad:
+        raise ConfigError(f"unknown baseline(s) {bad}; valid: {list(METHODS)}")
+    needs_filter = MODES[mode] in ("filter", "global", "no-field") or "no-field" in baselines
+    s = _settings(settings, n_particles) if needs_filter else settings
+    t_start = time.perf_counter()
+    seeds = np.random.SeedSequence(int(seed)).spawn(max(1, len(walk_files)))
+    from tqdm.auto import tqdm
+
+    if jobs and int(jobs) != 1 and len(walk_files) > 1:
+        from joblib import Parallel, delayed
+
+        outs = Parallel(n_jobs=int(jobs))(
+            delayed(_one)(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m)
+            for i, wf in enumerate(walk_files)
+        )
+    else:
+        outs = [
+            _one(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m)
+            for i, wf in enumerate(tqdm(walk_files, desc=f"evaluate ({mode})", unit="walk", disable=not progress))
+        ]
+    walks = [o for o in outs if isinstance(o, WalkEvaluation)]
+    skipped = [o for o in outs if not isinstance(o, WalkEvaluation)]
+    runtime = time.perf_counter() - t_start
+    settings_dict = dataclasses.asdict(s) if dataclasses.is_dataclass(s) else dict(s or {})
+    ev = Evaluation(mode=mode, seed=int(seed), settings=settings_dict, walks=walks, skipped=skipped,
+                    runtime_s=runtime, summary={}, map_info=dict(map_info or {}), baselines=tuple(baselines))
+    ev.summary = summary_of(ev)
+    return ev
+
+
+def summary_of(ev, *, runtime_s=None):
+    """The ``summary.json`` object of an evaluation (or of several pooled:
+    pass an Evaluation whose ``walks`` are the union)."""
+    main = MODES[ev.mode]
+    return M.summarise(
+        ev.pooled(main),
+        walks=len(ev.walks),
+        converged=[w.converged for w in ev.walks],
+        convergence_distance_m=[w.convergence_distance_m for w in ev.walks],
+        dead_reckoning_errors_m=ev.pooled("dead-reckoning") if any("dead-reckoning" in w.results for w in ev.walks) else None,
+        no_field_errors_m=ev.pooled("no-field") if any("no-field" in w.results for w in ev.walks) else None,
+        runtime_s=ev.runtime_s if runtime_s is None else runtime_s,
+        walk_duration_s=sum(w.duration_s for w in ev.walks),
+        localise_time_s=sum(w.main_result.time_s for w in ev.walks),
+    )
+
+
+# -- outputs -----------------------------------------------------------------
+def _csv(cols, rows):
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(cols)
+    for r in rows:
+        w.writerow(["" if v is None else (f"{v:.4f}" if isinstance(v, float) else v) for v in r])
+    return buf.getvalue()
+
+
+def _num(x):
+    return None if x is None or not np.isfinite(x) else float(x)
+
+
+def per_walk_rows(ev):
+    """(columns, rows) of the per-walk table."""
+    methods = [m for m in METHODS if any(m in w.results for w in ev.walks)]
+    base = [m for m in methods if m != MODES[ev.mode]]
+    cols = ["walk", "platform", "duration_s", "distance_m", "checkpoints", "scored", "median_error_m",
+            "p95_error_m", "max_error_m", "converged", "convergence_distance_m", "localise_time_s"]
+    cols += [f"{m.replace('-', '_')}_median_error_m" for m in base]
+    rows = []
+    for w in ev.walks:
+        r = w.main_result
+        st = M.error_stats(r.scored_errors_m)
+        row = [w.name, w.platform, round(w.duration_s, 3), round(float(w.distance_m[-1]), 3), int(w.checkpoints.n),
+               int(r.scored.sum()), _num(st["median"]), _num(st["p95"]), _num(st["max"]), bool(w.converged),
+               _num(w.convergence_distance_m), round(r.time_s, 4)]
+        for m in base:
+            row.append(_num(M.error_stats(w.results[m].scored_errors_m)["median"]) if m in w.results else None)
+        rows.append(row)
+    return cols, rows
+
+
+def per_checkpoint_rows(ev):
+    """(columns, rows) of the per-checkpoint table."""
+    methods = [m for m in METHODS if any(m in w.results for w in ev.walks)]
+    main = MODES[ev.mode]
+    base = [m for m in methods if m != main]
+    cols = ["walk", "index", "label", "t", "x", "y", "scored", "distance_m", "est_x", "est_y", "error_m"]
+    cols += [f"{m.replace('-', '_')}_error_m" for m in base]
+    rows = []
+    for w in ev.walks:
+        cps = w.checkpoints
+        r = w.main_result
+        est = r.track.at(cps.t)
+        for i in range(cps.n):
+            label = "" if cps.label is None else str(cps.label[i])
+            row = [w.name, i, label, float(cps.t[i]), float(cps.xy[i, 0]), float(cps.xy[i, 1]), bool(r.scored[i]),
+                   float(w.distance_m[i]), float(est[i, 0]), float(est[i, 1]), float(r.errors_m[i])]
+            for m in base:
+                row.append(float(w.results[m].errors_m[i]) if m in w.results else None)
+            rows.append(row)
+    return cols, rows
+
+
+def run_info(ev):
+    """JSON-able provenance of a run (seed, settings, mode, map, software)."""
+    import numpy
+
+    return {
+        "mode": ev.mode,
+        "method": MODES[ev.mode],
+        "baselines": list(ev.baselines),
+        "seed": ev.seed,
+        "settings": {k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in ev.settings.items()},
+        "map": ev.map_info,
+        "walks": [w.name for w in ev.walks],
+        "skipped": [{"walk": n, "reason": r} for n, r in ev.skipped],
+        "python": _platform.python_version(),
+        "numpy": numpy.__version__,
+    }
+
+
+def write_outputs(ev, fmap, out_dir, *, title=None):
+    """Write summary.json, run.json, walks.csv, checkpoints.csv, the plots,
+    the estimated tracks and report.html into ``out_dir`` (all atomic).
+
+    Returns
+    -------
+    dict of name -> Path
+    """
+    from fingerprint.logio import write_track
+
+    from . import report as R
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    paths = {"summary": out / "summary.json", "run": out / "run.json", "walks": out / "walks.csv",
+             "checkpoints": out / "checkpoints.csv", "cdf": out / "error_cdf.png", "report": out / "report.html"}
+    write_json_atomic(paths["summary"], ev.summary)
+    write_json_atomic(paths["run"], run_info(ev))
+    wc, wr = per_walk_rows(ev)
+    write_text_atomic(paths["walks"], _csv(wc, wr))
+    cc, cr = per_checkpoint_rows(ev)
+    write_text_atomic(paths["checkpoints"], _csv(cc, cr))
+    for w in ev.walks:
+        t = w.main_result.track
+        write_track(out / "tracks" / f"{w.name}.track.csv", Track(t=t.t, xy=t.xy, heading_rad=t.heading_rad))
+    sections, images = report_sections(ev, fmap)
+    cdf_b64 = images.pop("error_cdf.png")
+    R.save_png(paths["cdf"], cdf_b64)
+    for name, b64 in images.items():
+        R.save_png(out / name, b64)
+        paths[name] = out / name
+    R.write_report(paths["report"], title or f"lodemap evaluation: {ev.map_info.get('floor', '')} {ev.mode}".strip(),
+                   sections, subtitle=f"seed {ev.seed}; {len(ev.walks)} walks; written by lodemap evaluate")
+    return paths
+
+
+# -- report ------------------------------------------------------------------
+_SUMMARY_HELP = {
+    "walks": "walks scored",
+    "checkpoints": "checkpoints scored",
+    "median_error_m": "median error at the scored checkpoints",
+    "mean_error_m": "mean error",
+    "p75_error_m": "75th percentile of the error",
+    "p95_error_m": "95th percentile of the error",
+    "max_error_m": "largest error",
+    "converged_fraction": "share of walks whose error stays under 3 m from some checkpoint on",
+    "median_convergence_distance_m": "median distance walked until then (converged walks)",
+    "dead_reckoning_median_error_m": "dead reckoning alone, same walks",
+    "no_field_median_error_m": "filter without the field, same walks",
+    "no_field_p95_error_m": "its 95th percentile",
+    "runtime_s": "wall time of the whole run",
+    "realtime_factor": "walk time / time spent localising (method under test)",
+}
+
+
+def _bootstrap_median_ci(ev, rng, n_boot=1000):
+    """95 % CI of the pooled median, walks resampled with replacement."""
+    main = MODES[ev.mode]
+    per = [w.results[main].scored_errors_m for w in ev.walks]
+    per = [p for p in per if p.size]
+    if len(per) < 2:
+        return None
+    meds = np.empty(n_boot)
+    for b in range(n_boot):  # small loop over resamples of walks
+        pick = rng.integers(0, len(per), size=len(per))
+        meds[b] = np.median(np.concatenate([per[i] for i in pick]))
+    return tuple(np.quantile(meds, [0.025, 0.975]))
+
+
+def summary_table_html(summary, *, ci=None):
+    from .report import html_table
+
+    rows = []
+    for k, v in summary.items():
+        note = _SUMMARY_HELP.get(k, "")
+        if k == "median_error_m" and ci is not None:
+            note += f" (95 % CI {ci[0]:.2f}–{ci[1]:.2f} m, bootstrap over walks)"
+        rows.append([k, v, note])
+    return html_table(["key", "value", "meaning"], rows)
+
+
+def report_sections(ev, fmap, *, extra_cautions=()):
+    """Sections of the HTML report and the PNG images (base64) it embeds.
+
+    Returns
+    -------
+    sections : list of report.Section
+    images : dict of file name -> base64 PNG
+    """
+    import html as _html
+
+    from . import report as R
+
+    main = MODES[ev.mode]
+    images = {}
+    ci = _bootstrap_median_ci(ev, np.random.default_rng(ev.seed))
+    sections = [R.Section("Summary", summary_table_html(ev.summary, ci=ci))]
+
+    # method and settings
+    mi = ev.map_info
+    info_rows = [["mode", ev.mode], ["method under test", method_label(main)],
+                 ["baselines", ", ".join(method_label(b) for b in ev.baselines if b != main) or "none"],
+                 ["seed", ev.seed], ["walks scored / skipped", f"{len(ev.walks)} / {len(ev.skipped)}"]]
+    for k in ("path", "floor", "kernel", "resolution_m", "earth_to_plan_deg", "survey_walks"):
+        if k in mi:
+            info_rows.append([f"map {k}", mi[k]])
+    body = R.html_table(["item", "value"], info_rows)
+    body += ("<p>Error at a checkpoint: distance in the plan between the checkpoint and the estimated position "
+             "at its time (track interpolated linearly in time). Tracking, no-field, dead reckoning and DTW start at "
+             "the first checkpoint and score the others; global mode starts nowhere and scores all. A walk is "
+             "converged when its error stays under 3 m from some checkpoint on. Percentiles: linear "
+             "interpolation (numpy default).</p>")
+    if ev.settings:
+        srows = [[k, v] for k, v in ev.settings.items()]
+        body += "<details><summary>filter settings</summary>" + R.html_table(["setting", "value"], srows) + "</details>"
+    sections.append(R.Section("Method and settings", body))
+
+    # CDF
+    errs = {method_label(m): ev.pooled(m) for m in METHODS if any(m in w.results for w in ev.walks)}
+    fig = R.plot_error_cdf(errs, title=f"Error at checkpoints ({ev.mode})")
+    images["error_cdf.png"] = R.figure_to_base64(fig)
+    sections.append(R.Section("Error CDF", R.img_tag(images["error_cdf.png"], "error CDF")))
+
+    # tracks
+    base_for_plot = "dead-reckoning" if main != "dead-reckoning" else None
+    items = []
+    for w in ev.walks:
+        r = w.main_result
+        items.append({"name": w.name, "track": r.track, "checkpoints": w.checkpoints, "errors_m": r.scored_errors_m,
+                      "truth": w.truth,
+                      "baseline": w.results[base_for_plot].track if base_for_plot in w.results else None})
+    tb = ""
+    if items:
+        figs = R.plot_tracks(fmap, items, title=f"{method_label(main)}: estimate (blue) vs checkpoints (red)")
+        for i, f in enumerate(figs):
+            name = "tracks.png" if i == 0 else f"tracks_{i + 1}.png"
+            images[name] = R.figure_to_base64(f)
+            tb += R.img_tag(images[name], f"tracks {i + 1}")
+        tb = ('<p class="note">Blue: estimate; dashed orange: dead reckoning from the first checkpoint; green: true '
+              "path where known; red circles: checkpoints, joined to the estimate at their time.</p>") + tb
+    sections.append(R.Section("Tracks", tb or "<p>No walk scored.</p>"))
+
+    # per-walk table
+    wc, wr = per_walk_rows(ev)
+    body = R.html_table(wc, wr)
+    if ev.skipped:
+        body += "<p>Skipped: " + "; ".join(_html.escape(f"{n} ({r})") for n, r in ev.skipped) + "</p>"
+    sections.append(R.Section("Per-walk results", body))
+
+    # baselines
+    brows = []
+    for m in METHODS:
+        if not any(m in w.results for w in ev.walks):
+            continue
+        st = M.error_stats(ev.pooled(m))
+        t_m = sum(w.results[m].time_s for w in ev.walks if m in w.results)
+        brows.append([method_label(m) + (" (under test)" if m == main else ""), st["n"], st["median"], st["mean"],
+                      st["p75"], st["p95"], st["max"], t_m])
+    body = R.html_table(["method", "checkpoints", "median (m)", "mean (m)", "p75 (m)", "p95 (m)", "max (m)",
+                         "time (s)"], brows)
+    body += ("<p>All methods ran on the same walks in this run. Dead reckoning integrates the steps (or odometry) "
+             "rotated into the plan by the map's earth-to-plan angle; the no-field filter is the particle filter "
+             "with its field updates off, so it keeps only the graph and dead reckoning; DTW matches the field "
+             "sequence (vertical and horizontal magnitude, per metre walked) against candidate graph paths that "
+             "follow the dead-reckoned turns.</p>")
+    sections.append(R.Section("Baselines", body))
+
+    # cautions
+    cautions = list(extra_cautions)
+    n_cp = sum(int(w.main_result.scored.sum()) for w in ev.walks)
+    if len(ev.walks) < 10 or n_cp < 50:
+        cautions.append(f"Small sample ({len(ev.walks)} walks, {n_cp} scored checkpoints): percentiles, the p95 "
+                        "above all, are uncertain; see the bootstrap interval in the summary.")
+    if not any(w.truth is not None for w in ev.walks):
+        cautions.append("Checkpoints are the reference: where they were tapped by hand on a plan they are off by "
+                        "about a metre themselves, so errors below that are not resolved.")
+    if ev.walks:
+        cp_xy = np.vstack([w.checkpoints.xy for w in ev.walks])
+        _, _, cov = fmap.lookup(cp_xy)
+        far = int(np.sum(~(cov <= 3.0)))
+        if far:
+            cautions.append(f"{far} of {cp_xy.shape[0]} checkpoints lie more than 3 m from any survey sample of the "
+                            "map (poor coverage there).")
+        gd = fmap.graph.project(cp_xy)[2]
+        off = int(np.sum(gd > 2.0))
+        if off:
+            cautions.append(f"{off} checkpoints are more than 2 m from the floor graph; estimates on the graph "
+                            "cannot come closer than that.")
+    if ev.skipped:
+        cautions.append(f"{len(ev.skipped)} walk(s) skipped (listed in the per-walk section).")
+    if main == "global":
+        cautions.append("Global mode: the baselines were started at the first checkpoint, so they know the start "
+                        "and the method under test does not.")
+    cautions.append("Scores hold for these walks, this map and these settings; another building, device or "
+                    "survey can do much worse. Not for safety-critical or emergency navigation; robot safety must "
+                    "never depend on these estimates.")
+    sections.append(R.Section("Cautions", '<ul class="cautions">' +
+                              "".join(f"<li>{_html.escape(c)}</li>" for c in cautions) + "</ul>"))
+    return sections, images

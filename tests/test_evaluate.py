@@ -1,0 +1,159 @@
+"""The evaluation runner and its baselines on an invented corridor world
+(tests/eval_fakes.py) with exact truth."""
+
+import json
+import math
+
+import numpy as np
+import pytest
+
+from fingerprint.records import Checkpoints, Motion, ProcessedWalk
+from mapping.baselines import dead_reckoning_track, densify_graph, dtw_cost, dtw_path, dtw_track, field_sequence
+from mapping.evaluate import evaluate_walk, per_checkpoint_rows, per_walk_rows, summary_of, Evaluation
+from mapping.metrics import SUMMARY_KEYS, checkpoint_errors
+
+from eval_fakes import corridor_graph, fake_map, fake_walk
+
+
+def _walk_from_motion(motion):
+    t = np.linspace(0, motion.t[-1], 50)
+    return ProcessedWalk(t=t, quat=np.tile([0, 0, 0, 1.0], (50, 1)), mag_earth_ut=np.zeros((50, 3)),
+                         heading_rad=np.zeros(50), mag_noise_ut=0.5, motion=motion)
+
+
+# -- dead reckoning ------------------------------------------------------------
+def test_dead_reckoning_hand_worked_rotation():
+    # Three 1 m steps heading east (0 rad) then one 2 m step north (pi/2), in
+    # the earth frame. earth_to_plan = +90 deg turns east into plan +y and
+    # north into plan -x. From (10, 5): (10,6), (10,7), (10,8), then (8,8).
+    m = Motion(t=np.array([1.0, 2.0, 3.0, 4.0]), length_m=np.array([1.0, 1.0, 1.0, 2.0]),
+               heading_rad=np.array([0.0, 0.0, 0.0, math.pi / 2]))
+    tr = dead_reckoning_track(_walk_from_motion(m), (10.0, 5.0), start_time_s=0.0, earth_to_plan_rad=math.pi / 2)
+    np.testing.assert_allclose(tr.xy, [[10, 5], [10, 6], [10, 7], [10, 8], [8, 8]], atol=1e-12)
+    np.testing.assert_allclose(tr.t, [0, 1, 2, 3, 4])
+    # starting at t = 2.5 integrates only the increments ending after it
+    tr2 = dead_reckoning_track(_walk_from_motion(m), (0.0, 0.0), start_time_s=2.5, earth_to_plan_rad=0.0)
+    np.testing.assert_allclose(tr2.xy, [[0, 0], [1, 0], [1, 2]], atol=1e-12)
+
+
+def test_dead_reckoning_heading_bias_gives_the_chord_error():
+    # On a straight first leg, a constant heading error theta after d metres
+    # puts the estimate 2 d sin(theta / 2) from the truth (isosceles triangle,
+    # law of cosines; common practice, no source).
+    theta = math.radians(6.0)
+    walk, cps, _ = fake_walk(heading_bias_rad=theta, noise_ut=0.0)
+    tr = dead_reckoning_track(walk, cps.xy[0], start_time_s=cps.t[0])
+    err = checkpoint_errors(tr, cps)
+    first_leg = cps.xy[:, 1] == 5.0  # route starts along y = 5 for 30 m
+    d = cps.xy[first_leg, 0] - 5.0
+    np.testing.assert_allclose(err[first_leg], 2 * d * math.sin(theta / 2), atol=0.05)
+
+
+# -- DTW --------------------------------------------------------------------
+def _dtw_slow(a, b, band=None):
+    """Obviously correct twin: full dynamic programme with Python loops."""
+    n, m = len(a), len(b)
+    D = [[math.inf] * (m + 1) for _ in range(n + 1)]
+    D[0][0] = 0.0
+    for i in range(1, n + 1):
+        for j in range(1, m + 1):
+            if band is not None and abs(i - j * n / m) > band + n / m:
+                continue
+            c = float(np.sum((np.atleast_1d(a[i - 1]) - np.atleast_1d(b[j - 1])) ** 2))
+            D[i][j] = c + min(D[i - 1][j], D[i][j - 1], D[i - 1][j - 1])
+    return D[n][m]
+
+
+def test_dtw_hand_worked():
+    # [0,1,2] vs [0,1,1,2]: the repeated 1 is absorbed by a horizontal step -> 0.
+    assert dtw_cost([0.0, 1.0, 2.0], np.array([[0.0, 1.0, 1.0, 2.0]]))[0] == pytest.approx(0.0)
+    # [1,2,3] vs [2,2,2,3,4]: 1 must meet the first 2 (cost 1) and 4 must meet
+    # the last 3 (cost 1); everything else can align at zero cost -> 2.
+    assert dtw_cost([1.0, 2.0, 3.0], np.array([[2.0, 2.0, 2.0, 3.0, 4.0]]))[0] == pytest.approx(2.0)
+    cost, match = dtw_path([1.0, 2.0, 3.0], [2.0, 2.0, 2.0, 3.0, 4.0])
+    assert cost == pytest.approx(2.0)
+    assert match[0] == 0 and match[2] == 4  # 3 stays aligned with the end
+
+
+def test_dtw_vectorised_equals_slow_twin():
+    rng = np.random.default_rng(3)
+    q = rng.normal(size=(12, 2))
+    cands = rng.normal(size=(6, 15, 2))
+    fast = dtw_cost(q, cands)
+    slow = [_dtw_slow(q, c) for c in cands]
+    np.testing.assert_allclose(fast, slow, rtol=1e-12)
+    # band never lowers the cost
+    assert np.all(dtw_cost(q, cands, band=3) >= fast - 1e-12)
+
+
+def test_field_sequence_per_metre():
+    walk, cps, truth = fake_walk(noise_ut=0.0)
+    s, t, f = field_sequence(walk, start_time_s=0.0, step_m=1.0)
+    assert np.allclose(np.diff(s), 1.0)
+    # step lengths are exact, so the distance at time t is 1.2 t (1.2 m/s)
+    np.testing.assert_allclose(t[1:], s[1:] / 1.2, atol=0.05)
+    assert np.all(np.isfinite(f)) and f.shape == (s.size, 2)
+
+
+def test_densify_graph_spacing():
+    g = corridor_graph()
+    pts = densify_graph(g, spacing_m=0.25)
+    # every point lies on the graph
+    assert np.max(g.project(pts)[2]) < 1e-9
+    # and every graph point is within 0.125 m of one of them
+    rng = np.random.default_rng(0)
+    e, o = g.sample_uniform(500, rng)
+    q = g.point(e, o)
+    d = np.min(np.hypot(*(q[:, None, :] - pts[None, :, :]).transpose(2, 0, 1)), axis=1)
+    assert d.max() <= 0.125 + 1e-9
+
+
+def test_dtw_track_beats_drifting_dead_reckoning():
+    # Heading bias 7 deg and steps 8 % long: dead reckoning drifts by metres;
+    # matching the field against the map along the graph should not.
+    walk, cps, _ = fake_walk(heading_bias_rad=math.radians(7), scale=1.08, noise_ut=0.3)
+    fmap = fake_map()
+    dr = checkpoint_errors(dead_reckoning_track(walk, cps.xy[0], start_time_s=cps.t[0]), cps)[1:]
+    tr = dtw_track(walk, fmap, cps.xy[0], start_time_s=cps.t[0], rng=np.random.default_rng(1))
+    dt = checkpoint_errors(tr, cps)[1:]
+    assert np.median(dr) > 3.0
+    assert np.median(dt) < 0.5 * np.median(dr)
+    # estimates lie on the graph
+    assert np.max(fmap.graph.project(tr.xy)[2]) < 1e-6
+
+
+# -- the runner -------------------------------------------------------------
+def test_evaluate_walk_dead_reckoning_mode_and_tables():
+    theta = math.radians(6.0)
+    walk, cps, truth = fake_walk(heading_bias_rad=theta, noise_ut=0.0)
+    fmap = fake_map()
+    we = evaluate_walk("w1", walk, cps, fmap, mode="dead-reckoning", baselines=("dtw",), seed=4, truth=truth)
+    r = we.main_result
+    assert we.main == "dead-reckoning" and set(we.results) == {"dead-reckoning", "dtw"}
+    assert not r.scored[0] and r.scored[1:].all()
+    first_leg = np.flatnonzero(cps.xy[:, 1] == 5.0)[1:]
+    d = cps.xy[first_leg, 0] - 5.0
+    np.testing.assert_allclose(r.errors_m[first_leg], 2 * d * math.sin(theta / 2), atol=0.05)
+    ev = Evaluation(mode="dead-reckoning", seed=4, settings={}, walks=[we], skipped=[], runtime_s=1.0, summary={},
+                    baselines=("dtw",))
+    s = summary_of(ev)
+    assert tuple(s) == SUMMARY_KEYS
+    assert s["checkpoints"] == cps.n - 1
+    assert s["median_error_m"] == pytest.approx(float(np.median(r.errors_m[1:])), abs=1e-3)
+    assert s["dead_reckoning_median_error_m"] == s["median_error_m"]
+    assert s["no_field_median_error_m"] is None  # not run here
+    json.dumps(s, allow_nan=False)
+    wc, wr = per_walk_rows(ev)
+    assert wr[0][wc.index("scored")] == cps.n - 1
+    cc, cr = per_checkpoint_rows(ev)
+    assert len(cr) == cps.n
+    assert cr[3][cc.index("error_m")] == pytest.approx(r.errors_m[3])
+
+
+def test_evaluate_walk_needs_two_checkpoints():
+    from fingerprint.errors import DataError
+
+    walk, cps, _ = fake_walk()
+    one = Checkpoints(t=cps.t[:1], xy=cps.xy[:1])
+    with pytest.raises(DataError, match="at least 2"):
+        evaluate_walk("w", walk, one, fake_map(), mode="dead-reckoning", baselines=())
