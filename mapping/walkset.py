@@ -1,0 +1,158 @@
+"""Finding walks: a WALK argument is a ``*.log.csv`` (or ``.log.csv.gz``)
+file or a folder of them; the checkpoints and track files are found beside
+each log by name (``walk_001.log.csv`` -> ``walk_001.checkpoints.csv``,
+``walk_001.track.csv``, each optionally gzipped).
+
+A ``split.json`` (``{"survey": [names], "test": [names]}``) picks the
+survey or test walks of a folder.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+from fingerprint.errors import ConfigError, DataError, FormatError
+
+from .site import read_json_file
+
+__all__ = ["WalkFiles", "find_walks", "load_split", "select_walks", "walk_name"]
+
+_LOG_SUFFIXES = (".log.csv", ".log.csv.gz")
+
+
+@dataclass(frozen=True)
+class WalkFiles:
+    """The files of one walk.
+
+    Attributes
+    ----------
+    name : str, the log's file name without ``.log.csv[.gz]``
+    log : Path
+    checkpoints : Path or None
+    track : Path or None
+    """
+
+    name: str
+    log: Path
+    checkpoints: Path | None = None
+    track: Path | None = None
+
+
+def walk_name(path) -> str | None:
+    """``walk_001`` for ``.../walk_001.log.csv[.gz]``; None for other files."""
+    name = Path(path).name
+    for suf in _LOG_SUFFIXES:
+        if name.endswith(suf) and len(name) > len(suf):
+            return name[: -len(suf)]
+    return None
+
+
+def _beside(log: Path, name: str, kind: str):
+    for suffix in (f".{kind}.csv", f".{kind}.csv.gz"):
+        cand = log.with_name(name + suffix)
+        if cand.is_file():
+            return cand
+    return None
+
+
+def _walk_files(log: Path) -> WalkFiles:
+    name = walk_name(log)
+    return WalkFiles(name=name, log=log, checkpoints=_beside(log, name, "checkpoints"), track=_beside(log, name, "track"))
+
+
+def find_walks(paths, *, recursive=False, split=None, part=None) -> list:
+    """Walks named by files and folders.
+
+    Parameters
+    ----------
+    paths : path or sequence of paths; each a ``*.log.csv[.gz]`` file or a
+        folder holding them
+    recursive : bool, also look in sub-folders of folders
+    split : dict from :func:`load_split`, path of a ``split.json``, or None
+    part : "survey" or "test", which part of ``split`` to keep (needed when
+        ``split`` is given)
+
+    Returns
+    -------
+    list of WalkFiles, sorted by folder and name; a walk given twice is
+    listed once
+
+    Raises
+    ------
+    DataError
+        A path that does not exist, a file that is not a walk log, a folder
+        without logs, two different logs with the same name (their split
+        membership would be ambiguous) or no walk left after the split.
+    """
+    if isinstance(paths, (str, Path)):
+        paths = [paths]
+    found = {}
+    for p in paths:
+        p = Path(p)
+        if p.is_dir():
+            pattern = "**/*" if recursive else "*"
+            logs = sorted(q for q in p.glob(pattern) if q.is_file() and walk_name(q))
+            if not logs:
+                raise DataError(f"no walk logs (*.log.csv or *.log.csv.gz) in folder", path=p)
+        elif p.is_file():
+            if not walk_name(p):
+                raise DataError("not a walk log: expected a name ending in .log.csv or .log.csv.gz", path=p)
+            logs = [p]
+        else:
+            raise DataError("no such file or folder", path=p)
+        for log in logs:
+            found[log.resolve()] = _walk_files(log.resolve())
+    walks = sorted(found.values(), key=lambda w: (str(w.log.parent), w.name))
+    if split is not None:
+        walks = select_walks(walks, split, part)
+    return walks
+
+
+def load_split(path) -> dict:
+    """Read a ``split.json``: ``{"survey": [names], "test": [names]}``.
+
+    Returns
+    -------
+    dict(survey=list of str, test=list of str)
+    """
+    doc = read_json_file(path)
+    if not isinstance(doc, dict):
+        raise FormatError("a split file must hold a JSON object with lists 'survey' and 'test'", path=path)
+    out = {}
+    for key in ("survey", "test"):
+        names = doc.get(key, [])
+        if not isinstance(names, list) or not all(isinstance(n, str) for n in names):
+            raise FormatError(f"split member {key!r} must be a list of walk names", path=path)
+        out[key] = list(names)
+    both = set(out["survey"]) & set(out["test"])
+    if both:
+        raise DataError(f"walks in both survey and test: {', '.join(sorted(both))}", path=path)
+    return out
+
+
+def select_walks(walks, split, part) -> list:
+    """Keep the walks whose name is in ``split[part]``.
+
+    Parameters
+    ----------
+    walks : list of WalkFiles
+    split : dict from :func:`load_split` or a path to a split.json
+    part : "survey" or "test"
+    """
+    if part not in ("survey", "test"):
+        raise ConfigError(f"split part must be 'survey' or 'test', got {part!r}")
+    if not isinstance(split, dict):
+        split = load_split(split)
+    names = {}
+    for w in walks:
+        if w.name in names and names[w.name] != w.log:
+            raise DataError(
+                f"two logs named {w.name!r} ({names[w.name]} and {w.log}); a split by name would be ambiguous"
+            )
+        names[w.name] = w.log
+    wanted = set(split[part])
+    out = [w for w in walks if w.name in wanted]
+    if not out:
+        raise DataError(f"no walk left after keeping the {part} part of the split ({len(wanted)} names)")
+    return out
