@@ -12,7 +12,8 @@
   distance walked. Positions outside free space are pulled back into it.
 
 Per-sample uncertainty (1-sigma, metres): the tap error of the checkpoints
-(about a metre by hand on a plan) combined with a random-walk drift pinned
+(about a metre by hand on a plan; kept whole between checkpoints, since
+the taps of one walker are not independent) plus a random-walk drift pinned
 at both ends (a Brownian bridge, variance ``q * d_a * d_b / (d_a + d_b)``
 with ``d_a``, ``d_b`` the distances walked from the previous and to the
 next checkpoint), so it grows with the distance from the nearest checkpoint.
@@ -285,7 +286,7 @@ def _from_checkpoints(walk, cps, *, earth_to_plan_rad, outside, tap_sigma_m, dri
             frac = frac_t
         tot = d_a + d_b
         bridge = np.where(tot > 0, d_a * d_b / np.where(tot > 0, tot, 1.0), 0.0)
-        var[inner] = tap_sigma_m**2 * ((1 - frac) ** 2 + frac**2) + drift_m2_per_m * np.maximum(bridge, 0.0)
+        var[inner] = tap_sigma_m**2 + drift_m2_per_m * np.maximum(bridge, 0.0)
     # before the first / after the last checkpoint (or a single checkpoint)
     for side in ("before", "after"):
         sel = (tq < tc[0]) if side == "before" else (tq > tc[-1])
