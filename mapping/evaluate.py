@@ -50,6 +50,10 @@ __all__ = [
     "evaluate_walks",
     "load_walk",
     "write_outputs",
+    "summary_of",
+    "report_sections",
+    "per_walk_rows",
+    "per_checkpoint_rows",
     "method_label",
 ]
 

@@ -236,6 +236,7 @@ def plot_tracks(fmap, walks, *, ncols=3, max_panels=12, title=None):
     figs = []
     for start in range(0, len(walks), max_panels):
         chunk = walks[start : start + max_panels]
+        ncols = max(1, min(ncols, len(chunk)))
         nrows = int(math.ceil(len(chunk) / ncols))
         fig = _new_figure((4.0 * ncols, 3.6 * nrows))
         for i, w in enumerate(chunk):

@@ -157,3 +157,34 @@ def test_evaluate_walk_needs_two_checkpoints():
     one = Checkpoints(t=cps.t[:1], xy=cps.xy[:1])
     with pytest.raises(DataError, match="at least 2"):
         evaluate_walk("w", walk, one, fake_map(), mode="dead-reckoning", baselines=())
+
+
+# -- with the particle filter --------------------------------------------------
+def test_tracking_filter_beats_dead_reckoning_and_runs_the_baselines():
+    from fingerprint.localise import FilterSettings
+
+    walk, cps, truth = fake_walk(heading_bias_rad=math.radians(7), scale=1.08, noise_ut=0.3)
+    fmap = fake_map()
+    we = evaluate_walk("w", walk, cps, fmap, mode="tracking", settings=FilterSettings(n_particles=500), seed=1)
+    assert set(we.results) == {"filter", "dead-reckoning", "no-field", "dtw"}
+    f = np.median(we.results["filter"].scored_errors_m)
+    dr = np.median(we.results["dead-reckoning"].scored_errors_m)
+    assert f <= 1.0 and 3 * f <= dr
+    assert we.converged
+    # same seed -> same result (every draw from the generator passed down)
+    again = evaluate_walk("w", walk, cps, fmap, mode="tracking", settings=FilterSettings(n_particles=500), seed=1)
+    np.testing.assert_array_equal(again.results["filter"].errors_m, we.results["filter"].errors_m)
+
+
+def test_global_mode_scores_all_and_records_convergence():
+    from fingerprint.localise import FilterSettings
+
+    walk, cps, _ = fake_walk(heading_bias_rad=math.radians(3), noise_ut=0.3)
+    we = evaluate_walk("w", walk, cps, fake_map(), mode="global", settings=FilterSettings(n_particles_global=4000),
+                       seed=2, baselines=())
+    r = we.main_result
+    assert r.scored.all()
+    assert we.converged
+    k = int(np.flatnonzero(r.errors_m >= 3.0).max()) + 1 if np.any(r.errors_m >= 3.0) else 0
+    assert we.convergence_distance_m == pytest.approx(we.distance_m[k])
+    assert np.all(r.errors_m[k:] < 3.0)
