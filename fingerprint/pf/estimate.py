@@ -57,11 +57,18 @@ def cluster_estimate(xy, w, *, radius_m):
     w = np.asarray(w, dtype=float)
     if np.isfinite(radius_m):
         cell = np.floor(xy / radius_m).astype(np.int64)
-        keys, inv = np.unique(cell, axis=0, return_inverse=True)
-        inv = inv.reshape(-1)
-        mass = np.bincount(inv, weights=w, minlength=keys.shape[0])
-        best = keys[np.argmax(mass)]
-        near = np.all(np.abs(cell - best) <= 1, axis=1)
+        lo = cell.min(axis=0)
+        cell -= lo
+        span = cell.max(axis=0) + 1
+        if span[0] * span[1] <= 4_000_000:
+            mass = np.bincount(cell[:, 0] * span[1] + cell[:, 1], weights=w, minlength=span[0] * span[1])
+            k = int(np.argmax(mass))
+            best = np.array([k // span[1], k % span[1]])
+        else:
+            keys, inv = np.unique(cell, axis=0, return_inverse=True)
+            mass = np.bincount(inv.reshape(-1), weights=w, minlength=keys.shape[0])
+            best = keys[np.argmax(mass)]
+        near = (np.abs(cell[:, 0] - best[0]) <= 1) & (np.abs(cell[:, 1] - best[1]) <= 1)
         wn = w[near]
         centre = (wn @ xy[near]) / max(wn.sum(), 1e-300)
         d2 = np.sum((xy - centre) ** 2, axis=1)

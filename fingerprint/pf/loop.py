@@ -9,6 +9,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import ConvergenceError
+from ._lookup import MapTable
 from .measurement import field_log_likelihood
 from .motion import graph_tables, move
 from .resampling import get_resampler
@@ -22,6 +23,7 @@ class FilterContext:
     """What every update needs besides the state: map, graph tables, settings."""
 
     fmap: object
+    table: object
     graph: object
     tables: object
     settings: object
@@ -33,6 +35,7 @@ def make_context(fmap, settings, *, sensor_noise_ut):
     """A :class:`FilterContext` for ``fmap`` (its graph and rotation)."""
     return FilterContext(
         fmap=fmap,
+        table=MapTable(fmap),
         graph=fmap.graph,
         tables=graph_tables(fmap.graph),
         settings=settings,
@@ -161,7 +164,7 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
         bias_var = state.bias_var_ut2 + s.bias_rw_ut**2 if s.bias_sigma0_ut > 0 else state.bias_var_ut2
         llf, bias, bias_var = field_log_likelihood(
             obs, xy, psi, state.bias_ut, bias_var, state.log_w,
-            fmap=ctx.fmap, settings=s, sensor_noise_ut=ctx.sensor_noise_ut,
+            lookup=ctx.table.lookup, settings=s, sensor_noise_ut=ctx.sensor_noise_ut,
         )
         ll = ll + llf
         state = state.replace(bias_ut=bias, bias_var_ut2=bias_var)

@@ -163,7 +163,7 @@ def _get(registry, name, what):
         raise ConfigError(f"unknown {what} {name!r}; expected one of {sorted(registry)}") from None
 
 
-def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, fmap, settings, sensor_noise_ut):
+def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, lookup, settings, sensor_noise_ut):
     """Tempered field log-likelihood of every particle and its bias update.
 
     Parameters
@@ -173,7 +173,10 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, fmap
     psi_rad : (N,) float, device heading of each particle in the plan
     bias_ut, bias_var_ut2 : (N, 3) float, bias mean and variance
     log_w : (N,) float, normalised log-weights (for the neutral level)
-    fmap : FieldMap ; settings : FilterSettings ; sensor_noise_ut : float
+    lookup : callable, (N, 2) positions -> map mean (N, 3), var (N, 3),
+        coverage (N,) (``FieldMap.lookup`` or the faster
+        ``fingerprint.pf._lookup.MapTable.lookup``)
+    settings : FilterSettings ; sensor_noise_ut : float
 
     Returns
     -------
@@ -183,7 +186,7 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, fmap
     s = settings
     feats = _get(FEATURE_SETS, s.feature_set, "feature set")
     dens = _get(LIKELIHOODS, s.likelihood, "likelihood")
-    mean, var, cov = fmap.lookup(xy)
+    mean, var, cov = lookup(xy)
     y, pred, mvar, bidx = feats(obs, mean, var, psi_rad)
     bidx = list(bidx)
     tau = s.field_temper
