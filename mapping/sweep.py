@@ -68,6 +68,12 @@ __all__ = [
     "write_tidy_csv",
     "rank_settings",
     "settings_label",
+    "split_settings",
+    "filter_settings",
+    "perturb_walk",
+    "evaluation_run",
+    "prepare_maps",
+    "run_sweep",
     "MAP_SETTINGS",
     "NOISE_SETTINGS",
     "MODES",
@@ -464,3 +470,236 @@ def rank_settings(records, *, metric="median_error_m", n_boot=2000, level=0.95, 
         d["rank"] = i + 1
         d["best_overlap"] = bool(d["ci_low"] <= out[0]["ci_high"])
     return [{k: d[k] for k in ("rank", "settings", "runs", "mean", "ci_low", "ci_high", "best_overlap")} for d in out]
+
+
+# -- the real runs: localisation of one walk with one settings -------------------
+def split_settings(settings):
+    """(map settings, noise settings, filter settings) of a settings dict."""
+    m = {k: v for k, v in settings.items() if k in MAP_SETTINGS}
+    n = {k: v for k, v in settings.items() if k in NOISE_SETTINGS}
+    f = {k: v for k, v in settings.items() if k not in MAP_SETTINGS and k not in NOISE_SETTINGS}
+    return m, n, f
+
+
+def filter_settings(overrides):
+    """``FilterSettings`` with ``overrides`` applied; unknown names raise a
+    ConfigError listing the valid ones."""
+    import dataclasses
+
+    from fingerprint.localise import FilterSettings
+
+    valid = {f.name for f in dataclasses.fields(FilterSettings)}
+    bad = sorted(set(overrides) - valid)
+    if bad:
+        raise ConfigError(
+            f"unknown setting(s) {bad}; valid: {sorted(valid | set(MAP_SETTINGS) | set(NOISE_SETTINGS))}"
+        )
+    return dataclasses.replace(FilterSettings(), **overrides)
+
+
+def perturb_walk(walk, noise, rng):
+    """The walk with the ``noise_*`` settings applied.
+
+    noise_mag_ut : white noise (µT, 1 sd) added to every field component
+    noise_heading_deg : constant error added to every step heading
+    noise_step_scale : factor on every step length
+    """
+    import dataclasses
+
+    if not noise:
+        return walk
+    motion = walk.motion
+    mag = walk.mag_earth_ut
+    noise_ut = walk.mag_noise_ut
+    if noise.get("noise_mag_ut"):
+        sd = float(noise["noise_mag_ut"])
+        mag = mag + rng.normal(0.0, sd, size=mag.shape)
+        noise_ut = float(np.hypot(noise_ut, sd))
+    dh = math.radians(float(noise.get("noise_heading_deg", 0.0)))
+    sc = float(noise.get("noise_step_scale", 1.0))
+    if dh or sc != 1.0:
+        motion = dataclasses.replace(motion, heading_rad=motion.heading_rad + dh, length_m=motion.length_m * sc)
+    return dataclasses.replace(walk, mag_earth_ut=mag, mag_noise_ut=noise_ut, motion=motion,
+                               heading_rad=walk.heading_rad + dh)
+
+
+_MAP_CACHE = {}
+
+
+def _load_map_cached(path):
+    from fingerprint.mapfile import load_map
+
+    key = str(path)
+    if key not in _MAP_CACHE:
+        if len(_MAP_CACHE) > 4:
+            _MAP_CACHE.clear()
+        _MAP_CACHE[key] = load_map(path)
+    return _MAP_CACHE[key]
+
+
+def evaluation_run(task):
+    """One sweep run: localise ``task["walk_files"]`` on ``task["map_path"]``
+    with ``task["settings"]`` and the task's seed; returns its scores.
+
+    Returns
+    -------
+    dict: checkpoints, median/mean/p75/p95/max_error_m, converged,
+    convergence_distance_m, localise_time_s, duration_s, distance_m,
+    errors_m (list, the scored checkpoints)
+    """
+    from . import metrics as M
+    from .evaluate import evaluate_walk, load_walk
+    from .walkset import WalkFiles
+
+    wf = WalkFiles(**{k: (None if v is None else Path(v)) if k != "name" else v for k, v in task["walk_files"].items()})
+    _, noise, filt = split_settings(task["settings"])
+    s = filter_settings(filt)
+    ss = np.random.SeedSequence(task["seed"]["entropy"], spawn_key=tuple(task["seed"]["spawn_key"]))
+    noise_ss, run_ss = ss.spawn(2)
+    walk, cps, truth = load_walk(wf)
+    if cps is None:
+        raise ConfigError(f"walk {wf.name} has no checkpoints file beside {wf.log}")
+    walk = perturb_walk(walk, noise, np.random.default_rng(noise_ss))
+    fmap = _load_map_cached(task["map_path"])
+    we = evaluate_walk(wf.name, walk, cps, fmap, mode=task["mode"], settings=s, seed=run_ss, baselines=())
+    r = we.main_result
+    st = M.error_stats(r.scored_errors_m)
+    return {
+        "checkpoints": st["n"],
+        "median_error_m": M.json_number(st["median"]),
+        "mean_error_m": M.json_number(st["mean"]),
+        "p75_error_m": M.json_number(st["p75"]),
+        "p95_error_m": M.json_number(st["p95"]),
+        "max_error_m": M.json_number(st["max"]),
+        "converged": bool(we.converged),
+        "convergence_distance_m": M.json_number(we.convergence_distance_m),
+        "localise_time_s": round(r.time_s, 4),
+        "duration_s": round(we.duration_s, 3),
+        "distance_m": round(float(we.distance_m[-1]), 3),
+        "errors_m": [round(float(e), 4) for e in r.scored_errors_m],
+    }
+
+
+def _map_key(cfg, map_settings):
+    ident = {"data": cfg.data_identity(), "map": map_settings, "seed": cfg.seed}
+    return hashlib.sha256(json.dumps(ident, sort_keys=True, default=str).encode()).hexdigest()[:16]
+
+
+def prepare_maps(cfg, settings_list, out_dir, *, progress=True):
+    """Build (or reuse from ``out_dir/maps``) one map per distinct map
+    setting. Returns dict: json of map settings -> map path."""
+    out = {}
+    distinct = []
+    for s in settings_list:
+        m, _, _ = split_settings(s)
+        k = json.dumps(m, sort_keys=True)
+        if k not in out:
+            out[k] = None
+            distinct.append(m)
+    for m in distinct:
+        k = json.dumps(m, sort_keys=True)
+        if not m and cfg.map is not None:
+            out[k] = cfg.map
+            continue
+        path = Path(out_dir) / "maps" / f"{_map_key(cfg, m)}.map"
+        if not path.exists():
+            from fingerprint.mapfile import save_map
+
+            from .mapbuild import build_floor_map
+            from .site import load_site
+            from .walkset import find_walks
+
+            site = load_site(cfg.site)
+            survey = find_walks(cfg.survey)
+            kw = {}
+            if "map_resolution_m" in m:
+                kw["resolution_m"] = float(m["map_resolution_m"])
+            if "map_kernel" in m:
+                kw["kernel"] = str(m["map_kernel"])
+            fmap = build_floor_map(site, cfg.floor, survey, seed=cfg.seed, progress=progress, **kw)
+            save_map(path, fmap)
+        out[k] = path
+    return out
+
+
+def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=None):
+    """Run a whole sweep: maps, runs (resumable), tidy CSV and ranking.
+
+    Returns
+    -------
+    dict: counts (done/skipped/total), ranking (list of dict), paths
+    """
+    from .walkset import find_walks
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    settings_list = expand_settings(cfg)
+    # validate names before anything runs
+    for s in settings_list:
+        _, _, f = split_settings(s)
+        filter_settings(f)
+    walks = [w for w in find_walks(cfg.walks) if w.checkpoints is not None]
+    if not walks:
+        raise ConfigError(f"{cfg.path}: none of the walks has a checkpoints file")
+    names = [w.name for w in walks]
+    dup = sorted({n for n in names if names.count(n) > 1})
+    if dup:
+        raise ConfigError(f"{cfg.path}: walks with the same name in different folders: {dup}")
+    maps = prepare_maps(cfg, settings_list, out, progress=progress)
+    by_name = {w.name: w for w in walks}
+    tasks = make_tasks(settings_list, names, seeds=cfg.seeds, root_seed=cfg.seed, mode=cfg.mode,
+                       data=cfg.data_identity())
+    for t in tasks:
+        m, _, _ = split_settings(t["settings"])
+        w = by_name[t["walk"]]
+        t["map_path"] = str(maps[json.dumps(m, sort_keys=True)])
+        t["walk_files"] = {"name": w.name, "log": str(w.log),
+                           "checkpoints": None if w.checkpoints is None else str(w.checkpoints),
+                           "track": None if w.track is None else str(w.track)}
+    store = RunStore(out / "runs")
+    counts = execute(tasks, run_fn or evaluation_run, store=store, jobs=jobs, scheduler=scheduler, progress=progress)
+    wanted = {t["key"] for t in tasks}
+    records = [store.load(k) for k in store.keys() if k in wanted]
+    write_tidy_csv(out / "results.csv", records)
+    ranking = rank_settings(records, metric=cfg.metric, rng=np.random.default_rng(cfg.seed))
+    cols = ["rank", "settings", "runs", "mean", "ci_low", "ci_high", "best_overlap"]
+    write_text_atomic(out / "ranking.csv", _csv_text(cols, [[r[c] for c in cols] for r in ranking]))
+    write_json_atomic(out / "sweep.json", {
+        "config": cfg.path, "mode": cfg.mode, "search": cfg.search, "seed": cfg.seed, "seeds": cfg.seeds,
+        "metric": cfg.metric, "settings": settings_list, "walks": names, "counts": counts,
+        "maps": {k: str(v) for k, v in maps.items()}, "ranking": ranking,
+    })
+    _sweep_report(out / "report.html", cfg, ranking, records, counts)
+    return {"counts": counts, "ranking": ranking,
+            "paths": {"results": out / "results.csv", "ranking": out / "ranking.csv", "report": out / "report.html"}}
+
+
+def _sweep_report(path, cfg, ranking, records, counts):
+    from . import report as R
+
+    secs = [R.Section("Ranking", R.html_table(
+        ["rank", "settings", "runs", f"mean {cfg.metric}", "95 % CI low", "95 % CI high", "CI overlaps best"],
+        [[r["rank"], r["settings"], r["runs"], r["mean"], r["ci_low"], r["ci_high"], r["best_overlap"]]
+         for r in ranking]))]
+    if ranking:
+        fig = R._new_figure((7.0, 0.5 + 0.35 * len(ranking)))
+        ax = fig.add_subplot(1, 1, 1)
+        y = np.arange(len(ranking))[::-1]
+        mean = np.array([r["mean"] for r in ranking])
+        lo = mean - np.array([r["ci_low"] for r in ranking])
+        hi = np.array([r["ci_high"] for r in ranking]) - mean
+        ax.errorbar(mean, y, xerr=[lo, hi], fmt="o", capsize=3)
+        ax.set_yticks(y)
+        ax.set_yticklabels([r["settings"][:60] for r in ranking], fontsize=7)
+        ax.set_xlabel(f"mean over runs of {cfg.metric} (95 % bootstrap CI)")
+        ax.grid(alpha=0.3)
+        secs.append(R.Section("Settings compared", R.img_tag(R.figure_to_base64(fig), "ranking")))
+    secs.append(R.Section("Sweep", R.html_table(["item", "value"], [
+        ["config", cfg.path], ["mode", cfg.mode], ["search", cfg.search], ["root seed", cfg.seed],
+        ["seeds per settings and walk", cfg.seeds], ["runs done now / already stored / total",
+                                                      f"{counts['done']} / {counts['skipped']} / {counts['total']}"],
+        ["runs in this table", len(records)]])))
+    secs.append(R.Section("Cautions", "<ul><li>The intervals resample runs (walks x seeds) with replacement; runs of "
+                          "the same walk are correlated, so the intervals are optimistic when walks are few.</li>"
+                          "<li>A setting that wins on these walks may not win elsewhere.</li></ul>"))
+    R.write_report(path, "lodemap sweep", secs, subtitle=f"seed {cfg.seed}")

@@ -203,3 +203,45 @@ def test_tidy_csv_and_ranking(tmp_path):
     # reproducible ranking for the same generator seed
     assert rank_settings(records, rng=np.random.default_rng(0)) == rank
     json.dumps(rank)
+
+
+def test_run_sweep_end_to_end_with_a_fake_run(tmp_path):
+    from mapping.sweep import run_sweep
+
+    walks = tmp_path / "walks"
+    walks.mkdir()
+    for n in ("walk_000", "walk_001"):
+        (walks / f"{n}.log.csv").write_text("t\n")
+        (walks / f"{n}.checkpoints.csv").write_text("t,x,y\n")
+    (tmp_path / "floor.map").write_bytes(b"")
+    cfg = _cfg(tmp_path, BASE + "[grid]\nn_particles = [100, 400]\nfield_temper = [0.1, 0.2]\n")
+    res = run_sweep(cfg, tmp_path / "out", jobs=1, progress=False, run_fn=fake_run)
+    assert res["counts"] == {"done": 16, "skipped": 0, "total": 16}  # 4 settings x 2 walks x 2 seeds
+    with open(tmp_path / "out" / "results.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 16 and {r["walk"] for r in rows} == {"walk_000", "walk_001"}
+    assert res["ranking"][0]["settings"].startswith("field_temper=") and "n_particles=400" in res["ranking"][0]["settings"]
+    html = (tmp_path / "out" / "report.html").read_text()
+    assert "Ranking" in html and "data:image/png;base64," in html
+    again = run_sweep(cfg, tmp_path / "out", jobs=1, progress=False, run_fn=fake_run)
+    assert again["counts"]["done"] == 0 and again["counts"]["skipped"] == 16
+    with pytest.raises(ConfigError, match="unknown setting"):
+        bad = _cfg(tmp_path, BASE + "[grid]\nn_partickles = [100]\n")
+        run_sweep(bad, tmp_path / "out2", progress=False, run_fn=fake_run)
+
+
+def test_perturb_walk_noise_settings():
+    import math as _m
+
+    from eval_fakes import fake_walk
+    from mapping.sweep import perturb_walk
+
+    walk, _, _ = fake_walk(noise_ut=0.0)
+    p = perturb_walk(walk, {"noise_mag_ut": 2.0, "noise_heading_deg": 10.0, "noise_step_scale": 1.1},
+                     np.random.default_rng(0))
+    diff = p.mag_earth_ut - walk.mag_earth_ut
+    assert abs(diff.std() - 2.0) < 0.1  # sample sd of 3N normal draws
+    np.testing.assert_allclose(p.motion.heading_rad - walk.motion.heading_rad, _m.radians(10.0))
+    np.testing.assert_allclose(p.motion.length_m, 1.1 * walk.motion.length_m)
+    assert p.mag_noise_ut == pytest.approx(2.0)
+    assert perturb_walk(walk, {}, np.random.default_rng(0)) is walk
