@@ -1,0 +1,214 @@
+"""The sensor chain: a :class:`~fingerprint.records.WalkLog` in, a
+:class:`~fingerprint.records.ProcessedWalk` out.
+
+1. Missing samples (NaN cells) are filled by linear interpolation in time,
+   per sensor; a sensor with no sample at all is treated as absent.
+2. Magnetometer: an explicit :class:`~fingerprint.calibration.Calibration`
+   is applied to the columns it was fitted on; otherwise a log marked
+   ``magnetometer_calibrated: yes`` is used as given (its residual is only
+   checked, see :func:`calibration_verdict`), and an uncalibrated log is
+   calibrated from the walk itself (ellipsoid fit, or the circle fallback
+   for planar motion).
+3. Attitude (:mod:`fingerprint.attitude`), earth-frame field, heading.
+4. Motion: steps with Weinberg lengths (handheld) or grouped odometry
+   (robot with ``odom_*`` columns).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.spatial.transform import Rotation
+
+from .attitude import FORWARD_AXIS, AttitudeSettings, estimate_attitude
+from .calibration import Calibration, fit_calibration
+from .errors import ConvergenceError, DataError
+from .odometry import OdometrySettings, odometry_motion
+from .records import Motion, ProcessedWalk, WalkLog
+from .steps import DEFAULT_STEP_CONSTANT, StepSettings, detect_steps, weinberg_length
+
+__all__ = ["PipelineSettings", "process_walk", "mag_noise_ut", "fill_gaps", "calibration_verdict"]
+
+
+@dataclass(frozen=True)
+class PipelineSettings:
+    attitude: AttitudeSettings = field(default_factory=AttitudeSettings)
+    steps: StepSettings = field(default_factory=StepSettings)
+    odometry: OdometrySettings = field(default_factory=OdometrySettings)
+    #: calibrate an uncalibrated log from the walk itself
+    self_calibrate: bool = True
+
+
+def fill_gaps(t, x):
+    """Linear interpolation of NaN rows of ``x`` ((N, 3)) over time ``t``.
+
+    Returns the filled (N, 3) array, or None when no row has a sample.
+    """
+    x = np.asarray(x, float)
+    ok = np.isfinite(x).all(axis=1)
+    if ok.all():
+        return x
+    if not ok.any():
+        return None
+    out = np.empty_like(x)
+    for j in range(x.shape[1]):
+        out[:, j] = np.interp(t, t[ok], x[ok, j])
+    return out
+
+
+def mag_noise_ut(mag_ut):
+    """1-sigma per-sample magnetometer noise (µT) from second differences.
+
+    The field changes smoothly at walking speed, so the second difference
+    of consecutive samples is mostly noise: for white noise of sd σ it has
+    sd σ·√6. A robust sd (1.4826 × median absolute deviation) is used, and
+    the three axes are pooled by their median. Quantised sensors report at
+    least resolution / √12 (the standard uniform-quantisation noise).
+    """
+    m = np.asarray(mag_ut, float)
+    if m.shape[0] < 5:
+        return float("nan")
+    d2 = m[2:] - 2 * m[1:-1] + m[:-2]
+    mad = np.median(np.abs(d2 - np.median(d2, axis=0)), axis=0) * 1.4826
+    sig = float(np.median(mad) / np.sqrt(6.0))
+    if sig == 0.0:
+        steps = np.abs(np.diff(m, axis=0))
+        steps = steps[steps > 0]
+        sig = float(np.min(steps) / np.sqrt(12.0)) if steps.size else 0.0
+    return sig
+
+
+def calibration_verdict(mag_ut, *, calibrated_flag):
+    """Short verdict on how well the magnetometer readings are calibrated.
+
+    Uses the spread of |B| (sd / mean) over the walk: a well-calibrated
+    sensor rotated in a steady field keeps |B| nearly constant; indoor
+    disturbances add some spread, a hard-iron offset much more.
+
+    Returns dict with ``verdict`` (str), ``b_mean_ut``, ``b_sd_ut``, ``flag``.
+    """
+    b = np.linalg.norm(mag_ut, axis=1)
+    mean, sd = float(np.mean(b)), float(np.std(b))
+    rel = sd / mean if mean > 0 else np.inf
+    if rel < 0.1:
+        v = "good (|B| spread {:.0%} of its mean)".format(rel)
+    elif rel < 0.25:
+        v = "fair (|B| spread {:.0%}: indoor disturbances or residual offset)".format(rel)
+    else:
+        v = "poor (|B| spread {:.0%}: offset not removed?)".format(rel)
+    return {"verdict": v, "b_mean_ut": mean, "b_sd_ut": sd, "flag": "yes" if calibrated_flag else "no"}
+
+
+def _choose_mag(log, calibration, settings, meta):
+    t = log.t
+    if calibration is not None:
+        src = log.mag_raw if calibration.source == "mag_raw" else log.mag
+        if src is None:
+            raise DataError(
+                f"calibration applies to the {calibration.source} columns, which this log does not have",
+                path=log.path,
+            )
+        src = fill_gaps(t, src)
+        if src is None:
+            return None
+        meta["calibration"] = {"method": "given", "source": calibration.source}
+        return calibration.apply(src)
+    mag = fill_gaps(t, log.mag)
+    if mag is None:
+        return None
+    if log.magnetometer_calibrated or not settings.self_calibrate:
+        meta["calibration"] = {"method": "device" if log.magnetometer_calibrated else "none", "source": "mag"}
+        return mag
+    try:
+        cal, rep = fit_calibration(mag, source="mag")
+    except (DataError, ConvergenceError) as err:
+        meta["calibration"] = {"method": "none", "source": "mag", "message": f"self-calibration failed: {err}"}
+        return mag
+    meta["calibration"] = {"method": "self:" + rep["method"], "source": "mag", "message": rep["message"],
+                           "offset_ut": rep["offset_ut"]}
+    return cal.apply(mag)
+
+
+def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_constant=None, settings=None):
+    """Turn a walk log into a processed walk.
+
+    Parameters
+    ----------
+    log : WalkLog
+    calibration : Calibration, optional
+    step_constant : float, optional
+        Weinberg constant K (handheld); default
+        :data:`~fingerprint.steps.DEFAULT_STEP_CONSTANT`.
+    settings : PipelineSettings, optional
+
+    Returns
+    -------
+    ProcessedWalk
+        ``meta`` holds ``calibration``, ``calibration_verdict``, ``attitude``,
+        ``step_constant``, ``n_steps`` (handheld), ``mag_noise_ut``.
+    """
+    s = settings or PipelineSettings()
+    if log.n < 10:
+        raise DataError(f"a walk needs at least 10 samples to process, got {log.n}", path=log.path)
+    t = log.t
+    platform = log.platform
+    meta = {"platform": platform}
+    acc = fill_gaps(t, log.acc)
+    if acc is None:
+        raise DataError("the log has no accelerometer sample; attitude needs gravity", path=log.path)
+    gyro = fill_gaps(t, log.gyro)
+    if gyro is None:
+        gyro = np.zeros_like(acc)
+        meta["warning"] = "no gyroscope samples: heading from the magnetometer only"
+    mag = _choose_mag(log, calibration, s, meta)
+    fwd = FORWARD_AXIS.get(platform, FORWARD_AXIS["handheld"])
+    att_set = s.attitude
+    if "warning" in meta and np.isfinite(att_set.mag_time_constant_s):
+        # without a gyro the magnetometer must carry the heading
+        from dataclasses import replace
+
+        att_set = replace(att_set, mag_time_constant_s=0.5)
+    att = estimate_attitude(t, acc, gyro, mag, forward_axis=fwd, settings=att_set)
+    meta["attitude"] = att.meta
+    if mag is None:
+        mag_earth = np.full((log.n, 3), np.nan)
+        noise = float("nan")
+    else:
+        mag_earth = Rotation.from_quat(att.quat).apply(mag)
+        noise = mag_noise_ut(mag)
+        meta["calibration_verdict"] = calibration_verdict(mag, calibrated_flag=log.magnetometer_calibrated)
+    meta["mag_noise_ut"] = noise
+    if platform == "robot" and log.odom is not None:
+        motion = odometry_motion(t, log.odom, att.heading_rad, settings=s.odometry)
+    else:
+        k = DEFAULT_STEP_CONSTANT if step_constant is None else float(step_constant)
+        if not (np.isfinite(k) and k > 0):
+            raise DataError(f"step constant must be a positive number, got {step_constant!r}")
+        ev = detect_steps(t, acc, settings=s.steps)
+        if ev.n:
+            head = _circular_interp(ev.t, t, att.heading_rad)
+            motion = Motion(t=ev.end_s, length_m=weinberg_length(ev.a_max, ev.a_min, k), heading_rad=head,
+                            kind="steps")
+        else:
+            e = np.empty(0)
+            motion = Motion(t=e, length_m=e, heading_rad=e, kind="steps")
+        meta["step_constant"] = k
+        meta["n_steps"] = ev.n
+    return ProcessedWalk(
+        t=t.copy(),
+        quat=att.quat,
+        mag_earth_ut=mag_earth,
+        heading_rad=att.heading_rad,
+        mag_noise_ut=noise,
+        motion=motion,
+        platform=platform,
+        meta=meta,
+        source=log.path,
+    )
+
+
+def _circular_interp(tq, t, ang):
+    c = np.interp(tq, t, np.cos(ang))
+    s = np.interp(tq, t, np.sin(ang))
+    return np.arctan2(s, c)
