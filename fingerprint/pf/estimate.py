@@ -39,8 +39,8 @@ class Estimate:
 def cluster_estimate(xy, w, *, radius_m):
     """Weighted mean and covariance of the dominant cluster.
 
-    The particles are binned on a square grid of cell ``radius_m``; the cell
-    with the most weight and its 8 neighbours give a centre (weighted mean);
+    The particles are binned on a square grid of cell ``radius_m``; the 3 x 3
+    block of cells with the most weight gives a centre (its weighted mean);
     the cluster is every particle within ``radius_m`` of that centre.
 
     Parameters
@@ -62,9 +62,11 @@ def cluster_estimate(xy, w, *, radius_m):
         span = cell.max(axis=0) + 1
         if span[0] * span[1] <= 4_000_000:
             mass = np.bincount(cell[:, 0] * span[1] + cell[:, 1], weights=w, minlength=span[0] * span[1])
-            k = int(np.argmax(mass))
+            pad = np.pad(mass.reshape(span[0], span[1]), 1)
+            box = sum(pad[i : i + span[0], j : j + span[1]] for i in range(3) for j in range(3))
+            k = int(np.argmax(box))
             best = np.array([k // span[1], k % span[1]])
-        else:
+        else:  # a huge, sparse spread: the heaviest occupied cell
             keys, inv = np.unique(cell, axis=0, return_inverse=True)
             mass = np.bincount(inv.reshape(-1), weights=w, minlength=keys.shape[0])
             best = keys[np.argmax(mass)]

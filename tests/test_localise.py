@@ -1,0 +1,216 @@
+"""Batch and streaming localisation on synthetic floors: identical results
+for the same seed, invariances, modes, recovery, bad input.
+
+The synthetic floor (tests/_pf_synth.py) is a corridor grid with a smooth
+analytic field; truth and dead reckoning are simulated. Sources: the
+invariances (a constant added to every log-weight, a permutation of the
+particles) follow from the definition of a weighted particle
+approximation (A. Doucet, A. Johansen, "A tutorial on particle filtering
+and smoothing", 2009); the rest is common practice, no source.
+"""
+
+import dataclasses
+
+import numpy as np
+import pytest
+
+from fingerprint.errors import ConfigError, ConvergenceError, DataError
+from fingerprint.localise import FilterSettings, Localiser, localise
+from fingerprint.pf.estimate import cluster_estimate
+from fingerprint.pf.loop import RecoveryTracker, filter_step
+from fingerprint.pf.measurement import window_observation
+
+import _pf_synth as S
+
+E2P = 0.3  # earth-to-plan rotation of the synthetic map, rad
+
+
+@pytest.fixture(scope="module")
+def floor():
+    g = S.grid_graph()
+    return g, S.field_map(g, earth_to_plan_rad=E2P)
+
+
+def make_walk(g, seed, *, n_legs=20, bias=(2.0, -1.0, 1.5)):
+    rng = np.random.default_rng(seed)
+    t, xy, hp = S.graph_walk(g, rng, n_legs=n_legs)
+    w = S.processed_walk(lambda q: S.bump_field(q), t, xy, hp, rng, earth_to_plan_rad=E2P, bias_dev_ut=bias)
+    return w, t, xy
+
+
+def stream(fmap, walk, *, settings, start_xy, seed):
+    """Feed sample by sample and increment by increment, as a live app would."""
+    loc = Localiser(fmap, settings=settings, start_xy=start_xy, start_sigma_m=1.0, rng=seed,
+                    sensor_noise_ut=walk.mag_noise_ut)
+    m = walk.motion
+    k = 0
+    for i in range(walk.n):
+        while k < m.n and m.t[k] < walk.t[i]:
+            loc.push_motion(m.t[k], m.length_m[k], m.heading_rad[k])
+            k += 1
+        loc.push(walk.t[i], walk.mag_earth_ut[i], walk.heading_rad[i])
+    while k < m.n:
+        loc.push_motion(m.t[k], m.length_m[k], m.heading_rad[k])
+        k += 1
+    loc.flush()
+    return loc.track()
+
+
+@pytest.mark.parametrize("mode", ["tracking", "global"])
+def test_streaming_equals_batch(floor, mode):
+    g, fm = floor
+    w, t, xy = make_walk(g, 1, n_legs=8)
+    s = FilterSettings(n_particles=500, n_particles_global=3000)
+    start = xy[0] if mode == "tracking" else None
+    a = localise(w, fm, settings=s, start_xy=start, start_sigma_m=1.0, rng=42)
+    b = stream(fm, w, settings=s, start_xy=start, seed=42)
+    np.testing.assert_array_equal(a.t, b.t)
+    np.testing.assert_array_equal(a.xy, b.xy)
+    for key in ("sigma_m", "confidence", "converged", "lost"):
+        np.testing.assert_array_equal(a.extra[key], b.extra[key])
+    c = localise(w, fm, settings=s, start_xy=start, start_sigma_m=1.0, rng=43)
+    assert not np.array_equal(a.xy, c.xy)  # the seed matters
+
+
+def test_track_columns_and_lengths(floor):
+    g, fm = floor
+    w, t, xy = make_walk(g, 2, n_legs=6)
+    tr = localise(w, fm, settings=FilterSettings(n_particles=300), start_xy=xy[0], rng=0)
+    k = tr.t.shape[0]
+    assert k > 10 and tr.xy.shape == (k, 2)
+    assert set(tr.extra) >= {"sigma_m", "confidence", "converged", "lost"}
+    assert all(v.shape == (k,) for v in tr.extra.values())
+    assert np.all((tr.extra["confidence"] >= 0) & (tr.extra["confidence"] <= 1 + 1e-12))
+    # estimates are placed on the graph
+    _, _, d = g.project(tr.xy)
+    assert d.max() < 1e-9
+
+
+def test_field_beats_no_field_and_tracks_well(floor):
+    g, fm = floor
+    err = {True: [], False: []}
+    for seed in range(4):
+        w, t, xy = make_walk(g, 10 + seed, n_legs=25)
+        for use in (True, False):
+            s = FilterSettings(n_particles=1000, use_field=use)
+            tr = localise(w, fm, settings=s, start_xy=xy[0], rng=seed)
+            err[use].append(S.errors(tr, t, xy))
+    f, nf = np.concatenate(err[True]), np.concatenate(err[False])
+    assert np.median(f) < 0.5 and np.percentile(f, 95) < 1.5
+    assert np.percentile(f, 95) < np.percentile(nf, 95)
+
+
+def test_global_mode_converges(floor):
+    g, fm = floor
+    walked = []
+    for seed in range(3):
+        w, t, xy = make_walk(g, 20 + seed, n_legs=20)
+        tr = localise(w, fm, settings=FilterSettings(n_particles_global=8000), start_xy=None, rng=seed)
+        e = S.errors(tr, t, xy)
+        bad = np.flatnonzero(e >= 3.0)
+        k = bad[-1] + 1 if bad.size else 0
+        assert k < len(e) - 5, "never settled under 3 m"
+        walked.append(np.sum(w.motion.length_m[w.motion.t <= tr.t[k]]) if k < len(e) else np.inf)
+        assert tr.extra["converged"][-5:].all()
+    assert max(walked) < 40.0
+
+
+def test_recovers_from_wrong_start_and_flags_it(floor):
+    # kidnapped walker: the filter is told a start 15 m away from the truth
+    g, fm = floor
+    w, t, xy = make_walk(g, 5, n_legs=40)
+    wrong = xy[0] + np.array([15.0, 9.0]) if xy[0, 0] < 15 else xy[0] - np.array([15.0, 9.0])
+    s = FilterSettings(n_particles=3000, recovery_warmup=3)
+    tr = localise(w, fm, settings=s, start_xy=wrong, start_sigma_m=1.0, rng=3)
+    e = S.errors(tr, t, xy)
+    assert tr.extra["lost"].any()
+    assert np.median(e[-20:]) < 1.0
+    off = localise(w, fm, settings=dataclasses.replace(s, recovery=False), start_xy=wrong, start_sigma_m=1.0, rng=3)
+    assert not off.extra["lost"].any()
+    assert np.median(S.errors(off, t, xy)[-20:]) > np.median(e[-20:])
+
+
+def test_no_coverage_equals_no_field(floor):
+    # with the whole map beyond coverage_max_m the field must have no effect
+    # at all: the same track as use_field=False for the same seed.
+    g, _ = floor
+    fm = S.field_map(g, earth_to_plan_rad=E2P, coverage_m=10.0)
+    w, t, xy = make_walk(g, 6, n_legs=6)
+    s = FilterSettings(n_particles=400, coverage_max_m=3.0)
+    a = localise(w, fm, settings=s, start_xy=xy[0], rng=5)
+    b = localise(w, fm, settings=dataclasses.replace(s, use_field=False), start_xy=xy[0], rng=5)
+    np.testing.assert_array_equal(a.xy, b.xy)
+
+
+def _one_step(fm, state_mod, seed=0):
+    loc = Localiser(fm, settings=FilterSettings(n_particles=800, ess_threshold=0.0), start_xy=(9.0, 6.0), rng=seed)
+    st = state_mod(loc.state)
+    obs = window_observation(np.array([[10.0, 15.0, -40.0]] * 5), np.zeros(5))
+    new, _, info = filter_step(st, 0.7, 0.2, obs, loc._ctx, np.random.default_rng(seed), RecoveryTracker())
+    return new, info
+
+
+def test_adding_a_constant_to_log_weights_changes_nothing(floor):
+    _, fm = floor
+    a, ia = _one_step(fm, lambda st: st)
+    b, ib = _one_step(fm, lambda st: st.replace(log_w=st.log_w + 123.0))
+    np.testing.assert_allclose(a.log_w, b.log_w, atol=1e-9)
+    np.testing.assert_array_equal(a.edge, b.edge)
+
+
+def test_cluster_estimate_permutation_and_scale_invariant():
+    rng = np.random.default_rng(0)
+    xy = np.vstack([rng.normal([0, 0], 0.5, (300, 2)), rng.normal([20, 5], 0.5, (100, 2))])
+    w = rng.uniform(0.5, 1.0, 400)
+    w /= w.sum()
+    m1, c1, f1 = cluster_estimate(xy, w, radius_m=3.0)
+    p = rng.permutation(400)
+    m2, c2, f2 = cluster_estimate(xy[p], w[p], radius_m=3.0)
+    np.testing.assert_allclose(m1, m2, atol=1e-12)
+    np.testing.assert_allclose(c1, c2, atol=1e-12)
+    assert f1 == pytest.approx(f2)
+    # the dominant cluster is the heavier blob, its mean its weighted mean
+    sel = np.arange(300)
+    np.testing.assert_allclose(m1, (w[sel] @ xy[sel]) / w[sel].sum(), atol=1e-9)
+    assert f1 == pytest.approx(w[sel].sum())
+
+
+def test_nan_map_is_an_error(floor):
+    g, _ = floor
+    fm = S.field_map(g, earth_to_plan_rad=E2P)
+    fm.mean_ut[...] = np.nan
+    w, t, xy = make_walk(g, 7, n_legs=3)
+    with pytest.raises(ConvergenceError, match="NaN"):
+        localise(w, fm, settings=FilterSettings(n_particles=100), start_xy=xy[0], rng=0)
+
+
+def test_bad_input_raises(floor):
+    g, fm = floor
+    with pytest.raises(DataError, match="start_xy"):
+        Localiser(fm, start_xy=(1.0, 2.0, 3.0))
+    with pytest.raises(DataError, match="start_sigma_m"):
+        Localiser(fm, start_xy=(1.0, 2.0), start_sigma_m=0.0)
+    with pytest.raises(ConfigError, match="feature_set"):
+        FilterSettings(feature_set="nope")
+    with pytest.raises(ConfigError, match="likelihood"):
+        FilterSettings(likelihood="cauchy")
+    with pytest.raises(ConfigError, match="n_particles"):
+        FilterSettings(n_particles=0)
+    with pytest.raises(ConfigError, match="unknown filter settings"):
+        FilterSettings.from_dict({"n_particles": 10, "bogus": 1})
+    loc = Localiser(fm, start_xy=(3.0, 3.0), settings=FilterSettings(n_particles=10))
+    with pytest.raises(DataError, match="length"):
+        loc.push_motion(1.0, -0.5, 0.0)
+    loc.push_motion(2.0, 0.1, 0.0)
+    with pytest.raises(DataError, match="time order"):
+        loc.push_motion(1.5, 0.1, 0.0)
+
+
+@pytest.mark.parametrize("features", ["full", "vertical+horizontal", "total"])
+@pytest.mark.parametrize("likelihood", ["gaussian", "student-t"])
+def test_every_feature_set_and_likelihood_tracks(floor, features, likelihood):
+    g, fm = floor
+    w, t, xy = make_walk(g, 8, n_legs=12)
+    s = FilterSettings(n_particles=600, feature_set=features, likelihood=likelihood)
+    tr = localise(w, fm, settings=s, start_xy=xy[0], rng=1)
+    assert np.median(S.errors(tr, t, xy)) < 1.0
