@@ -52,6 +52,7 @@ __all__ = [
     "write_outputs",
     "summary_of",
     "report_sections",
+    "tracks_html",
     "per_walk_rows",
     "per_checkpoint_rows",
     "method_label",
@@ -476,8 +477,40 @@ def summary_table_html(summary, *, ci=None):
     return html_table(["key", "value", "meaning"], rows)
 
 
-def report_sections(ev, fmap, *, extra_cautions=()):
+TRACKS_NOTE = ('<p class="note">Blue: estimate; dashed orange: dead reckoning from the first checkpoint; green: '
+               "true path where known; red circles: checkpoints, joined to the estimate at their time.</p>")
+
+
+def tracks_html(ev, fmap, *, prefix="tracks", title=None):
+    """HTML (note + embedded figures) of every track of ``ev`` over the plan
+    of ``fmap``, and the images as dict of file name -> base64 PNG."""
+    from . import report as R
+
+    main = MODES[ev.mode]
+    base_for_plot = "dead-reckoning" if main != "dead-reckoning" else None
+    items = []
+    for w in ev.walks:
+        r = w.main_result
+        items.append({"name": w.name, "track": r.track, "checkpoints": w.checkpoints, "errors_m": r.scored_errors_m,
+                      "truth": w.truth,
+                      "baseline": w.results[base_for_plot].track if base_for_plot in w.results else None})
+    if not items:
+        return "", {}
+    images = {}
+    body = TRACKS_NOTE
+    figs = R.plot_tracks(fmap, items, title=title or f"{method_label(main)}: estimate (blue) vs checkpoints (red)")
+    for i, f in enumerate(figs):
+        name = f"{prefix}.png" if i == 0 else f"{prefix}_{i + 1}.png"
+        images[name] = R.figure_to_base64(f)
+        body += R.img_tag(images[name], f"{prefix} {i + 1}")
+    return body, images
+
+
+def report_sections(ev, fmap, *, extra_cautions=(), tracks_body=None, extra_methods_rows=()):
     """Sections of the HTML report and the PNG images (base64) it embeds.
+
+    ``fmap`` None (walks of several floors pooled): no track plots and no
+    map-based cautions; pass ``tracks_body`` (HTML) to fill that section.
 
     Returns
     -------
@@ -501,6 +534,7 @@ def report_sections(ev, fmap, *, extra_cautions=()):
     for k in ("path", "floor", "kernel", "resolution_m", "earth_to_plan_deg", "survey_walks"):
         if k in mi:
             info_rows.append([f"map {k}", mi[k]])
+    info_rows.extend(list(r) for r in extra_methods_rows)
     body = R.html_table(["item", "value"], info_rows)
     body += ("<p>Error at a checkpoint: distance in the plan between the checkpoint and the estimated position "
              "at its time (track interpolated linearly in time). Tracking, no-field, dead reckoning and DTW start at "
@@ -519,22 +553,13 @@ def report_sections(ev, fmap, *, extra_cautions=()):
     sections.append(R.Section("Error CDF", R.img_tag(images["error_cdf.png"], "error CDF")))
 
     # tracks
-    base_for_plot = "dead-reckoning" if main != "dead-reckoning" else None
-    items = []
-    for w in ev.walks:
-        r = w.main_result
-        items.append({"name": w.name, "track": r.track, "checkpoints": w.checkpoints, "errors_m": r.scored_errors_m,
-                      "truth": w.truth,
-                      "baseline": w.results[base_for_plot].track if base_for_plot in w.results else None})
-    tb = ""
-    if items:
-        figs = R.plot_tracks(fmap, items, title=f"{method_label(main)}: estimate (blue) vs checkpoints (red)")
-        for i, f in enumerate(figs):
-            name = "tracks.png" if i == 0 else f"tracks_{i + 1}.png"
-            images[name] = R.figure_to_base64(f)
-            tb += R.img_tag(images[name], f"tracks {i + 1}")
-        tb = ('<p class="note">Blue: estimate; dashed orange: dead reckoning from the first checkpoint; green: true '
-              "path where known; red circles: checkpoints, joined to the estimate at their time.</p>") + tb
+    if tracks_body is not None:
+        tb = tracks_body
+    elif fmap is not None:
+        tb, imgs = tracks_html(ev, fmap)
+        images.update(imgs)
+    else:
+        tb = ""
     sections.append(R.Section("Tracks", tb or "<p>No walk scored.</p>"))
 
     # per-walk table
@@ -571,7 +596,7 @@ def report_sections(ev, fmap, *, extra_cautions=()):
     if not any(w.truth is not None for w in ev.walks):
         cautions.append("Checkpoints are the reference: where they were tapped by hand on a plan they are off by "
                         "about a metre themselves, so errors below that are not resolved.")
-    if ev.walks:
+    if ev.walks and fmap is not None:
         cp_xy = np.vstack([w.checkpoints.xy for w in ev.walks])
         _, _, cov = fmap.lookup(cp_xy)
         far = int(np.sum(~(cov <= 3.0)))

@@ -1,0 +1,236 @@
+"""The whole chain on the invented demo building (``demo_building/``):
+simulate survey and test walks, build each floor's map from its survey
+walks, evaluate tracking, global and dead-reckoning modes on the test
+walks, and write one HTML report over all floors.
+
+Output layout (``out``)::
+
+    sim/<floor>/survey|test/...   simulated walks with exact truth
+    maps/<floor>.map              one map per floor
+    eval/<floor>/<mode>/          lodemap evaluate outputs per floor and mode
+    demo.json                     every summary (per floor and pooled, per mode)
+    report.html                   the demo report
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from fingerprint._atomic import write_json_atomic
+from fingerprint.errors import ConfigError, LodemapError
+
+from . import evaluate as E
+
+__all__ = ["DemoResult", "run_demo", "find_demo_site", "DEMO_MODES"]
+
+DEMO_MODES = ("tracking", "global", "dead-reckoning")
+
+
+@dataclass
+class DemoResult:
+    out: Path
+    report: Path
+    summaries: dict  # mode -> {"all": summary, floor: summary}
+    timings_s: dict = field(default_factory=dict)
+
+
+def find_demo_site(site_dir=None):
+    """The demo building's folder: ``site_dir`` or ``demo_building/`` beside
+    the installed package (editable install) or in the working folder."""
+    if site_dir is not None:
+        p = Path(site_dir)
+        if not (p / "site.json").exists():
+            raise ConfigError(f"no site.json in {p}")
+        return p
+    here = Path(__file__).resolve().parent.parent / "demo_building"
+    for p in (here, Path.cwd() / "demo_building"):
+        if (p / "site.json").exists():
+            return p
+    raise ConfigError("cannot find demo_building/site.json; pass --site DIR (the demo building folder)")
+
+
+def _simulate(site_dir, sim_dir, *, seed, quick):
+    """Run ``lodemap simulate`` into ``sim_dir`` unless a finished run with
+    the same seed and size is there already."""
+    from .cli import main as cli_main
+
+    marker = sim_dir / "demo-simulation.json"
+    want = {"seed": int(seed), "quick": bool(quick), "site": str(site_dir)}
+    if marker.exists():
+        try:
+            if json.loads(marker.read_text(encoding="utf-8")) == want:
+                return False
+        except (OSError, ValueError):
+            pass
+    argv = ["simulate", str(site_dir), "--out", str(sim_dir), "--seed", str(seed)]
+    if quick:
+        argv += ["--walks", "4"]
+    rc = cli_main(argv)
+    if rc != 0:
+        raise LodemapError(f"lodemap {' '.join(argv)} failed with status {rc}")
+    write_json_atomic(marker, want)
+    return True
+
+
+def _pool(evs, mode, seed):
+    """One Evaluation holding the walks of several floors (names prefixed
+    with the floor)."""
+    walks, skipped, runtime = [], [], 0.0
+    for floor, ev in evs.items():
+        for w in ev.walks:
+            walks.append(dataclasses.replace(w, name=f"{floor}/{w.name}"))
+        skipped += [(f"{floor}/{n}", r) for n, r in ev.skipped]
+        runtime += ev.runtime_s
+    first = next(iter(evs.values()))
+    pooled = E.Evaluation(mode=mode, seed=seed, settings=first.settings, walks=walks, skipped=skipped,
+                          runtime_s=runtime, summary={}, map_info={"floor": "+".join(evs)}, baselines=first.baselines)
+    pooled.summary = E.summary_of(pooled)
+    return pooled
+
+
+def run_demo(out, *, quick=False, seed=0, site_dir=None, progress=True, jobs=1, log=print):
+    """Run the demo; returns a :class:`DemoResult`.
+
+    Parameters
+    ----------
+    out : folder for everything (created)
+    quick : fewer walks, a coarser map and fewer particles (a smoke run)
+    seed : root seed of simulation, maps and filters
+    """
+    from fingerprint.localise import FilterSettings
+    from fingerprint.mapfile import save_map
+
+    from . import report as R
+    from .mapbuild import build_floor_map
+    from .site import load_site
+    from .walkset import find_walks
+
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    site_dir = find_demo_site(site_dir)
+    site = load_site(site_dir / "site.json")
+    timings = {}
+    t0 = time.perf_counter()
+    log(f"[1/3] simulating walks in {site.name} ...")
+    _simulate(site_dir, out / "sim", seed=seed, quick=quick)
+    timings["simulate_s"] = time.perf_counter() - t0
+
+    settings = FilterSettings()
+    if quick:
+        settings = dataclasses.replace(settings, n_particles=min(settings.n_particles, 1000),
+                                       n_particles_global=min(settings.n_particles_global, 8000))
+    resolution = 0.5 if quick else 0.25
+    fmaps = {}
+    t1 = time.perf_counter()
+    for floor in site.floors:
+        survey = find_walks(out / "sim" / floor / "survey")
+        log(f"[2/3] building the map of floor {floor} from {len(survey)} survey walks ...")
+        fmap = build_floor_map(site, floor, survey, resolution_m=resolution, seed=seed, progress=progress)
+        save_map(out / "maps" / f"{floor}.map", fmap)
+        fmaps[floor] = fmap
+    timings["maps_s"] = time.perf_counter() - t1
+
+    t2 = time.perf_counter()
+    per_mode = {}
+    ss = np.random.SeedSequence(int(seed))
+    mode_seeds = dict(zip(DEMO_MODES, ss.generate_state(len(DEMO_MODES))))
+    for mode in DEMO_MODES:
+        evs = {}
+        baselines = ("dead-reckoning", "no-field", "dtw") if mode == "tracking" else ("dead-reckoning", "no-field")
+        if mode == "dead-reckoning":
+            baselines = ("no-field",)
+        for floor, fmap in fmaps.items():
+            test = find_walks(out / "sim" / floor / "test")
+            log(f"[3/3] evaluating {mode} on floor {floor} ({len(test)} test walks) ...")
+            ev = E.evaluate_walks(fmap, test, mode=mode, settings=settings, seed=int(mode_seeds[mode]),
+                                  baselines=baselines, jobs=jobs, progress=progress,
+                                  map_info={"floor": floor, "path": str(out / "maps" / f"{floor}.map"),
+                                            "resolution_m": resolution, "kernel": fmap.meta.get("kernel", "?")})
+            E.write_outputs(ev, fmap, out / "eval" / floor / mode,
+                            title=f"lodemap demo: floor {floor}, {mode}")
+            evs[floor] = ev
+        per_mode[mode] = evs
+    timings["evaluate_s"] = time.perf_counter() - t2
+    timings["total_s"] = time.perf_counter() - t0
+
+    summaries = {}
+    pooled = {}
+    for mode, evs in per_mode.items():
+        pooled[mode] = _pool(evs, mode, int(mode_seeds[mode]))
+        summaries[mode] = {"all": pooled[mode].summary, **{f: ev.summary for f, ev in evs.items()}}
+    write_json_atomic(out / "demo.json", {"seed": int(seed), "quick": bool(quick), "site": str(site_dir),
+                                          "timings_s": {k: round(v, 2) for k, v in timings.items()},
+                                          "summaries": summaries})
+    report = out / "report.html"
+    _write_demo_report(report, site, pooled, per_mode, fmaps, summaries, timings, seed=seed, quick=quick)
+    return DemoResult(out=out, report=report, summaries=summaries, timings_s=timings)
+
+
+_TABLE_KEYS = ("walks", "checkpoints", "median_error_m", "p95_error_m", "max_error_m", "converged_fraction",
+               "median_convergence_distance_m", "dead_reckoning_median_error_m", "no_field_median_error_m",
+               "realtime_factor")
+
+
+def summary_rows(summaries):
+    """Rows (mode, scope, figures...) of the demo summary table."""
+    rows = []
+    for mode, per in summaries.items():
+        for scope, s in per.items():
+            rows.append([mode, scope] + [s[k] for k in _TABLE_KEYS])
+    return ["mode", "floors"] + list(_TABLE_KEYS), rows
+
+
+def _write_demo_report(path, site, pooled, per_mode, fmaps, summaries, timings, *, seed, quick):
+    import html as _html
+
+    from . import report as R
+
+    tr = pooled["tracking"]
+    cols, rows = summary_rows(summaries)
+    head = R.html_table(cols, rows, left=2)
+    s_all = summaries["tracking"]["all"]
+    med, dr = s_all["median_error_m"], s_all["dead_reckoning_median_error_m"]
+    if med is not None and dr is not None and med > 0:
+        head += (f"<p>Tracking on all floors: median error {med:.2f} m against {dr:.2f} m for dead reckoning "
+                 f"alone ({dr / med:.1f} times smaller).</p>")
+    secs, _ = E.report_sections(
+        tr, None,
+        tracks_body="".join(
+            f"<h3>Floor {_html.escape(f)}</h3>" + E.tracks_html(per_mode["tracking"][f], fm, prefix=f"tracks_{f}",
+                                                               title=f"floor {f}: tracking")[0]
+            for f, fm in fmaps.items()
+        ),
+        extra_cautions=["All walks here are simulated in an invented building: the sensors, the field and the "
+                        "walkers follow models, so real buildings and phones do worse (see the real-data numbers "
+                        "in the README)."],
+        extra_methods_rows=[["site", site.name], ["floors", ", ".join(fmaps)], ["seed", seed],
+                            ["quick", quick], ["map resolution (m)", 0.5 if quick else 0.25]]
+        + [[f"time {k}", round(v, 1)] for k, v in timings.items()],
+    )
+    # the pooled error CDF of all modes and baselines
+    errs = {}
+    for mode, ev in pooled.items():
+        main = E.MODES[mode]
+        errs[E.method_label(main)] = ev.pooled(main)
+    for m in ("no-field", "dtw"):
+        if any(m in w.results for w in tr.walks):
+            errs[E.method_label(m)] = tr.pooled(m)
+    cdf = R.figure_to_base64(R.plot_error_cdf(errs, title="Error at checkpoints, all floors, all modes"))
+    for s in secs:
+        if s.title == "Summary":
+            s.body = head + "<h3>Tracking mode, all floors</h3>" + s.body
+        if s.title == "Error CDF":
+            s.body = R.img_tag(cdf, "error CDF of all modes") + ('<p class="note">Global mode scores every '
+                                                                 "checkpoint, the others all but the first.</p>")
+        if s.title == "Per-walk results":
+            g = pooled["global"]
+            gc, gr = E.per_walk_rows(g)
+            s.body = "<h3>Tracking</h3>" + s.body + "<h3>Global</h3>" + R.html_table(gc, gr)
+    R.write_report(path, "lodemap demo", secs,
+                   subtitle=f"{site.name}; seed {seed}; {'quick run' if quick else 'full run'}")
