@@ -313,11 +313,17 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         W = np.eye(3)
         report["condition_number"] = float(np.linalg.cond(q.T @ q))
         report["circle_radius_ut"] = r
+        ang = np.arctan2(q[:, 1] - c2[1], q[:, 0] - c2[0])
+        arc = np.unique(np.floor((ang + np.pi) / (2 * np.pi) * 36).astype(int) % 36).size / 36
+        report["arc_fraction"] = float(arc)
         report["plane_normal"] = n.tolist()
         message += (
             "circle fit (Kåsa 1976) in the plane of the readings: offset within the plane only; "
             "offset along the normal left at 0 and soft-iron left at identity (not identifiable)"
         )
+        if report["arc_fraction"] < 0.5:
+            message += f"; the readings cover only {report['arc_fraction']:.0%} of the circle, so the offset is weakly determined"
+
     cal = Calibration(offset, W, source=source)
     after_v = cal.apply(m)
     after = np.linalg.norm(after_v, axis=1)

@@ -91,7 +91,9 @@ def calibration_verdict(mag_ut, *, calibrated_flag):
     b = np.linalg.norm(mag_ut, axis=1)
     mean, sd = float(np.mean(b)), float(np.std(b))
     rel = sd / mean if mean > 0 else np.inf
-    if rel < 0.1:
+    if not (20.0 <= mean <= 80.0):
+        v = "poor (mean |B| {:.0f} µT, the Earth's field is 25-65 µT: offset not removed?)".format(mean)
+    elif rel < 0.1:
         v = "good (|B| spread {:.0%} of its mean)".format(rel)
     elif rel < 0.25:
         v = "fair (|B| spread {:.0%}: indoor disturbances or residual offset)".format(rel)
