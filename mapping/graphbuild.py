@@ -144,7 +144,9 @@ def _subdivide(xy, edges, max_edge_m, flags=None):
     if len(edges) == 0 or max_edge_m is None:
         return xy, edges, flags
     length = _lengths(xy, edges)
-    pieces = np.maximum(1, np.ceil(length / max_edge_m - 1e-9).astype(np.int64))
+    # 0.1 % slack so that edges of exactly max_edge_m read back from rounded
+    # coordinates are not split in two
+    pieces = np.maximum(1, np.ceil(length / max_edge_m - 1e-3).astype(np.int64))
     n_new = pieces - 1
     total_new = int(n_new.sum())
     if total_new == 0:
@@ -242,16 +244,16 @@ def _medial_axis(free, *, boundary_step_m, min_clearance_m, spur_factor, spur_ex
 
 def _prune_spurs(xy, radius, edges, *, spur_factor, spur_extra_m, rounds=3):
     """Remove leaf branches shorter than ``spur_factor * r_junction +
-    spur_extra_m`` (r_junction = clearance where the branch meets the rest);
-    a few rounds so that forks of spurs go too."""
+    spur_extra_m`` (r_junction = clearance where the branch meets the rest).
+    All short branches of a round go at once (so both corner branches at
+    the end of a corridor go); a junction keeps its longest branch when all
+    of its branches are short. A few rounds so that forks of spurs go too."""
     g = nx.Graph()
     g.add_nodes_from(range(len(xy)))
     g.add_edges_from(map(tuple, edges))
     for _ in range(rounds):
-        removed = False
+        by_junction = {}
         for leaf in [n for n, d in g.degree() if d == 1]:
-            if leaf not in g or g.degree(leaf) != 1:
-                continue
             chain, prev, cur, length = [leaf], None, leaf, 0.0
             while True:
                 nbrs = [m for m in g.neighbors(cur) if m != prev]
@@ -263,11 +265,20 @@ def _prune_spurs(xy, radius, edges, *, spur_factor, spur_extra_m, rounds=3):
                 if g.degree(cur) != 2:
                     break
                 chain.append(cur)
-            if g.degree(cur) >= 3 and length < spur_factor * radius[cur] + spur_extra_m:
+            if g.degree(cur) >= 3:
+                by_junction.setdefault(cur, []).append((length, chain))
+        removed = False
+        for junction, branches in by_junction.items():
+            limit = spur_factor * radius[junction] + spur_extra_m
+            short = [b for b in branches if b[0] < limit]
+            if len(short) >= g.degree(junction):
+                short.remove(max(short, key=lambda b: b[0]))
+            for _, chain in short:
                 g.remove_nodes_from(chain)
                 removed = True
         if not removed:
             break
+    g.remove_nodes_from([n for n, d in g.degree() if d == 0])
     return np.array(list(g.edges), dtype=np.int64).reshape(-1, 2)
 
 
@@ -608,41 +619,64 @@ def build_graph(plan, *, lattice_spacing_m=1.0, wide_threshold_m=3.0, **options)
 # hand-drawn graphs
 # --------------------------------------------------------------------------
 def graph_from_lines(lines, *, snap_m=0.05, max_edge_m=1.0) -> FloorGraph:
-    """A graph from polylines: lines are noded where they cross, end points
-    within ``snap_m`` of another line are snapped onto it, and each piece of
-    line becomes edges between its vertices.
+    """A graph from polylines: lines are noded where they cross; an end
+    point within ``snap_m`` of another line is joined to it (T-junctions
+    drawn a little short), dangling bits shorter than ``snap_m`` (lines
+    drawn a little past another) are removed; each piece of line becomes
+    edges between its vertices.
 
     Parameters
     ----------
-    lines : sequence of shapely LineString
-    snap_m : float, snapping tolerance, metres
+    lines : sequence of shapely LineString, metres
+    snap_m : float, snapping tolerance, metres (0 = none)
     max_edge_m : float or None, split longer edges
 
     Returns
     -------
     FloorGraph
     """
-    lines = [ln for ln in lines if not ln.is_empty]
+    lines = [ln for ln in lines if not ln.is_empty and ln.length > 0]
     if not lines:
         raise DataError("no path lines to build a graph from")
-    if snap_m and snap_m > 0 and len(lines) > 1:
-        # end points drawn a little short of (or past) another line are
-        # snapped onto it: snap to a finely segmentised copy of the others
-        arr = np.array(lines, dtype=object)
-        snapped = []
-        for i, ln in enumerate(lines):
-            others = shapely.segmentize(shapely.union_all(np.delete(arr, i)), snap_m)
-            snapped.append(shapely.snap(ln, others, snap_m))
-        lines = snapped
-    merged = shapely.union_all(lines)
-    noded = [p for p in shapely.get_parts(merged) if p.length > 0]
-    coords = [shapely.get_coordinates(ln) for ln in noded]
+    parts = [p for p in shapely.get_parts(shapely.union_all(lines)) if p.length > 0]
+    if snap_m and snap_m > 0 and len(parts) > 1:
+        ends = np.vstack([shapely.get_coordinates(p)[[0, -1]] for p in parts])
+        key, counts = np.unique(np.round(ends, 9), axis=0, return_counts=True)
+        leaves = key[counts == 1]
+        tree = shapely.STRtree(parts)
+        pts = shapely.points(leaves)
+        q_pt, q_part = tree.query(pts, predicate="dwithin", distance=snap_m)
+        connectors = []
+        best = {}
+        for i, j in zip(q_pt, q_part):
+            d = shapely.distance(pts[i], parts[j])
+            if d > 1e-9 and (i not in best or d < best[i][0]):
+                best[i] = (d, j)
+        for i, (d, j) in best.items():
+            a = leaves[i]
+            b = shapely.get_coordinates(shapely.shortest_line(pts[i], parts[j]))[1]
+            u = (b - a) / np.hypot(*(b - a))
+            connectors.append(shapely.LineString([a, b + 1e-6 * u]))  # just across, so noding splits the line
+        if connectors:
+            parts = [p for p in shapely.get_parts(shapely.union_all(parts + connectors)) if p.length > 0]
+    coords = [shapely.get_coordinates(ln) for ln in parts]
     xy = np.vstack(coords)
-    idx = np.arange(len(xy))
     last = np.zeros(len(xy), dtype=bool)
     last[np.cumsum([len(c) for c in coords]) - 1] = True
+    idx = np.arange(len(xy))
     edges = np.column_stack([idx[~last], idx[~last] + 1])
-    xy, edges, _ = _dedupe(xy, edges, tol=1e-6)
+    xy, edges, _ = _dedupe(xy, edges, tol=1e-5)
+    if snap_m and snap_m > 0:
+        for _ in range(2):  # dangling stubs shorter than the tolerance
+            deg = np.bincount(edges.ravel(), minlength=len(xy))
+            stub = (_lengths(xy, edges) < snap_m) & ((deg[edges[:, 0]] == 1) | (deg[edges[:, 1]] == 1))
+            if not stub.any():
+                break
+            edges = edges[~stub]
+        used = np.unique(edges)
+        remap = np.full(len(xy), -1, dtype=np.int64)
+        remap[used] = np.arange(len(used))
+        xy, edges = xy[used], remap[edges]
     xy, edges, _ = _subdivide(xy, edges, max_edge_m)
     return FloorGraph.from_arrays(xy, edges)
 

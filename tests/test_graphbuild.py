@@ -1,0 +1,267 @@
+"""Automatic floor graph and hand-drawn graphs.
+
+References: networkx (connectivity, degrees, shortest paths), shapely
+(edge-in-free-space checks one LineString at a time, distances to the union
+of the edges), the textbook medial axis of a rectangle (the mid-line between
+the long sides, with branches to the corners; common practice, no source),
+and the real checkpoints of shared/real_data (acceptance: >= 95 % within
+2 m of the graph)."""
+
+import json
+from pathlib import Path
+
+import networkx as nx
+import numpy as np
+import pytest
+import shapely
+from shapely.geometry import LineString
+
+from fingerprint.errors import ConfigError, DataError, FormatError
+from fingerprint.floorgraph import FloorGraph
+from mapping.floorplan import load_floor_plan, plan_from_geojson
+from mapping.graphbuild import (
+    build_graph,
+    build_graph_with_report,
+    graph_components,
+    graph_from_lines,
+    load_graph_geojson,
+    plan_summary,
+)
+
+ROOT = Path(__file__).resolve().parent
+
+
+def _real_dir():
+    for cand in (ROOT / "data" / "real" / "siteA", Path("/work/shared/real_data/siteA")):
+        if (cand / "F1" / "floor.plan.geojson").is_file():
+            return cand
+    return None
+
+
+REAL = _real_dir()
+needs_real = pytest.mark.skipif(REAL is None, reason="real-data sample not available")
+
+
+def feat(kind, coords, gtype="Polygon"):
+    return {"type": "Feature", "properties": {"kind": kind}, "geometry": {"type": gtype, "coordinates": coords}}
+
+
+def rect(x0, y0, x1, y1):
+    return [[[x0, y0], [x1, y0], [x1, y1], [x0, y1], [x0, y0]]]
+
+
+def plan_of(*features):
+    return plan_from_geojson({"type": "FeatureCollection", "features": list(features)})
+
+
+def edges_inside_slow(plan, graph, skip=()):
+    """Slow twin: one shapely LineString per edge."""
+    skip = set(skip)
+    return np.array(
+        [e in skip or plan.free.contains(LineString(graph.nodes_xy[graph.edges[e]])) for e in range(graph.n_edges)]
+    )
+
+
+def union_distance(graph, xy):
+    lines = shapely.union_all(shapely.linestrings(graph.nodes_xy[graph.edges]))
+    return shapely.distance(shapely.points(xy), lines)
+
+
+# -- fixtures of the zoo ------------------------------------------------------
+CORRIDOR = plan_of(feat("walkable", rect(0, 0, 20, 2)))
+L_CORRIDOR = plan_of(feat("walkable", [[[0, 0], [20, 0], [20, 12], [18, 12], [18, 2], [0, 2], [0, 0]]]))
+HALL_WITH_PILLARS = plan_of(
+    feat("walkable", rect(0, 0, 12, 9)),
+    feat("obstacle", rect(3, 3, 4, 4)),
+    feat("obstacle", rect(7, 4, 9, 6)),
+)
+# two 8 x 6 rooms joined by a 0.9 m wide, 2 m long door passage
+TWO_ROOMS = plan_of(
+    feat("walkable", rect(0, 0, 8, 6)),
+    feat("walkable", rect(8, 2.55, 10, 3.45)),
+    feat("walkable", rect(10, 0, 18, 6)),
+)
+# two rooms 5 m apart, not connected in the drawing
+SEPARATE = plan_of(feat("walkable", rect(0, 0, 6, 6)), feat("walkable", rect(11, 0, 17, 6)))
+
+
+def test_corridor_graph_is_its_centre_line():
+    g, rep = build_graph_with_report(CORRIDOR)
+    # medial axis of a 20 x 2 rectangle: y = 1 from x = 1 to 19 (corner
+    # branches of length ~1.4 are pruned as spurs)
+    np.testing.assert_allclose(g.nodes_xy[:, 1], 1.0, atol=0.05)
+    assert g.nodes_xy[:, 0].min() < 1.6 and g.nodes_xy[:, 0].max() > 18.4
+    assert rep.lattice_length_m == 0 and g.total_length_m == pytest.approx(18.0, abs=1.0)
+    assert nx.is_connected(g.to_networkx())
+    assert g.length_m.max() <= 1.001
+    # a path graph: two ends, the rest of degree 2 (networkx reference)
+    deg = np.array([d for _, d in g.to_networkx().degree()])
+    assert (deg == 1).sum() == 2 and set(deg) <= {1, 2}
+
+
+def test_l_corridor_follows_both_legs():
+    g = build_graph(L_CORRIDOR)
+    assert nx.is_connected(g.to_networkx())
+    assert edges_inside_slow(L_CORRIDOR, g).all()
+    # points along both centre lines are close to the graph (shapely distance)
+    probe = np.vstack([np.column_stack([np.linspace(2, 17, 20), np.full(20, 1.0)]),
+                       np.column_stack([np.full(20, 19.0), np.linspace(3, 10, 20)])])
+    assert union_distance(g, probe).max() < 0.2
+
+
+@pytest.mark.parametrize("kind, max_deg", [("triangular", 6), ("square", 4), ("diagonal", 8)])
+def test_hall_lattice_covers_width_and_avoids_pillars(kind, max_deg):
+    g, rep = build_graph_with_report(HALL_WITH_PILLARS, lattice=kind)
+    assert rep.lattice_length_m > 0.8 * g.total_length_m
+    assert nx.is_connected(g.to_networkx())
+    assert edges_inside_slow(HALL_WITH_PILLARS, g).all()
+    assert rep.edges_outside_free == 0
+    assert g.length_m.max() <= 1.001
+    degrees = g.degree()
+    ref = np.array([d for _, d in sorted(g.to_networkx().degree())])
+    np.testing.assert_array_equal(degrees, ref)
+    assert degrees.max() <= max_deg
+    # every point of free space is near the graph: a position across the
+    # width can be represented. Bound: lattice nodes sit on multiples of the
+    # 1 m spacing, so a point is at most one cell diagonal (sqrt 2) from a
+    # node; inside the lattice at most half a cell diagonal from an edge.
+    rng = np.random.default_rng(0)
+    pts = rng.uniform([0, 0], [12, 9], size=(3000, 2))
+    pts = pts[HALL_WITH_PILLARS.contains(pts)]
+    d = union_distance(g, pts)
+    assert d.max() < np.sqrt(2.0) + 0.01
+    assert np.median(d) < 0.5 * np.sqrt(2.0) / 2 + 0.05
+
+
+def test_two_rooms_joined_through_the_door():
+    g, rep = build_graph_with_report(TWO_ROOMS)
+    gx = g.to_networkx()
+    assert nx.is_connected(gx) and rep.bridge_edges == []
+    assert edges_inside_slow(TWO_ROOMS, g).all()
+    a = int(np.argmin(np.hypot(*(g.nodes_xy - [2, 3]).T)))
+    b = int(np.argmin(np.hypot(*(g.nodes_xy - [16, 3]).T)))
+    path = nx.shortest_path(gx, a, b, weight="length")
+    xs = g.nodes_xy[path]
+    # the path passes the door passage (x in 8..10 only at 2.55 < y < 3.45)
+    mid = (xs[:, 0] > 8.2) & (xs[:, 0] < 9.8)
+    assert mid.any() and np.all(np.abs(xs[mid, 1] - 3.0) < 0.45)
+
+
+def test_parts_closed_off_in_the_drawing_are_bridged_and_reported():
+    g, rep = build_graph_with_report(SEPARATE)
+    assert nx.is_connected(g.to_networkx())
+    assert len(rep.bridge_edges) >= 5  # a link of >= 5 m split into <= 1 m edges
+    assert rep.bridge_length_m >= 5.0
+    inside = edges_inside_slow(SEPARATE, g, skip=rep.bridge_edges)
+    assert inside.all()
+    # with no bridges allowed the smaller part is dropped and reported
+    g2, rep2 = build_graph_with_report(SEPARATE, max_bridge_m=1.0)
+    assert rep2.dropped_pieces == 1 and rep2.bridge_edges == []
+    assert g2.total_length_m < 0.6 * g.total_length_m
+
+
+def test_bad_options_and_too_narrow_plans():
+    with pytest.raises(ConfigError):
+        build_graph(CORRIDOR, lattice_spacing_m=0)
+    with pytest.raises(ConfigError, match="triangular"):
+        build_graph(HALL_WITH_PILLARS, lattice="hexagonal")
+    with pytest.raises(DataError):
+        build_graph(plan_of(feat("walkable", rect(0, 0, 10, 0.3))))  # a 0.3 m slit: nothing walkable
+
+
+def test_plan_summary_counts():
+    g = build_graph(HALL_WITH_PILLARS)
+    s = plan_summary(HALL_WITH_PILLARS, g)
+    assert s["free_area_m2"] == pytest.approx(108 - 1 - 4)  # by hand
+    assert s["walkable_area_m2"] == pytest.approx(108)
+    assert s["obstacles"] == 2 and s["graph_components"] == 1
+    assert s["graph_edges"] == g.n_edges and s["graph_nodes"] == g.n_nodes
+    assert s["graph_length_m"] == pytest.approx(g.total_length_m, abs=1e-3)
+    assert json.loads(json.dumps(s)) == s
+
+
+# -- hand-drawn graphs ------------------------------------------------------
+def _lines_file(tmp_path, lines, kind="path", extra=()):
+    feats = [{"type": "Feature", "properties": {"kind": kind},
+              "geometry": {"type": "LineString", "coordinates": ln}} for ln in lines]
+    p = tmp_path / "g.graph.geojson"
+    p.write_text(json.dumps({"type": "FeatureCollection", "features": feats + list(extra)}), encoding="utf-8")
+    return p
+
+
+def test_hand_drawn_crossing_and_short_t_junction(tmp_path):
+    p = _lines_file(
+        tmp_path,
+        [[[0, 0], [10, 0]], [[5, -4], [5, 4]],  # a crossing: noded at (5, 0)
+         [[8, 3.97], [8, 0.03]]],  # drawn 3 cm short of the first line
+        extra=[feat("walkable", rect(-1, -5, 11, 5))],  # plan features are ignored
+    )
+    g = load_graph_geojson(p)
+    gx = g.to_networkx()
+    assert nx.is_connected(gx)
+    assert g.length_m.max() <= 1.001
+    assert g.total_length_m == pytest.approx(10 + 8 + 3.97, abs=0.05)
+    deg = dict(gx.degree())
+    cross = int(np.argmin(np.hypot(*(g.nodes_xy - [5, 0]).T)))
+    tee = int(np.argmin(np.hypot(*(g.nodes_xy - [8, 0]).T)))
+    assert deg[cross] == 4 and deg[tee] == 3
+    assert sum(1 for d in deg.values() if d == 1) == 5
+
+
+def test_hand_drawn_errors(tmp_path):
+    with pytest.raises(FormatError, match="kind must be 'path'"):
+        load_graph_geojson(_lines_file(tmp_path, [[[0, 0], [1, 0]]], kind="corridor"))
+    poly = {"type": "Feature", "properties": {"kind": "path"}, "geometry": {"type": "Polygon", "coordinates": rect(0, 0, 1, 1)}}
+    with pytest.raises(FormatError, match="LineString"):
+        load_graph_geojson(_lines_file(tmp_path, [], extra=[poly]))
+    with pytest.raises(DataError, match="no path line"):
+        load_graph_geojson(_lines_file(tmp_path, []))
+
+
+def test_geojson_export_reads_back(tmp_path):
+    g = build_graph(HALL_WITH_PILLARS)
+    p = tmp_path / "hall.graph.geojson"
+    p.write_text(json.dumps(g.to_geojson(floor="G")), encoding="utf-8")
+    back = load_graph_geojson(p)
+    assert back.n_edges == g.n_edges and back.n_nodes == g.n_nodes
+    assert back.total_length_m == pytest.approx(g.total_length_m, rel=1e-4)
+    n_comp, _ = graph_components(back)
+    assert n_comp == 1
+
+
+def test_graph_from_lines_matches_networkx_lengths():
+    lines = [LineString([(0, 0), (3, 0), (3, 4)]), LineString([(3, 4), (0, 0)])]
+    g = graph_from_lines(lines, max_edge_m=None)
+    # a 3-4-5 triangle (by hand): three edges, perimeter 12
+    assert g.n_edges == 3 and g.total_length_m == pytest.approx(12.0)
+    gx = g.to_networkx()
+    assert nx.cycle_basis(gx) and len(nx.cycle_basis(gx)[0]) == 3
+
+
+# -- the real plans -------------------------------------------------------
+@needs_real
+@pytest.mark.realdata
+@pytest.mark.parametrize("floor", ["F1", "B1"])
+def test_real_plan_graph_covers_checkpoints(floor):
+    from fingerprint.logio import read_checkpoints
+
+    plan = load_floor_plan(REAL / floor / "floor.plan.geojson")
+    g, rep = build_graph_with_report(plan)
+    print(f"{floor}: {rep.to_dict() | {'bridge_edges': len(rep.bridge_edges)}}")
+    assert graph_components(g)[0] == 1
+    assert rep.edges_outside_free == 0
+    assert g.length_m.max() <= 1.001
+    cps = np.vstack([read_checkpoints(p).xy for p in sorted((REAL / floor).glob("*.checkpoints.csv"))])
+    _, _, d = g.project(cps, chunk=32)
+    # reference twin: shapely distance to the union of the edges
+    np.testing.assert_allclose(d[::10], union_distance(g, cps[::10]), atol=1e-6)
+    assert np.mean(d <= 2.0) >= 0.95
+    # the concourses get a lattice across their width (5-10 m wide)
+    assert rep.lattice_length_m > rep.centreline_length_m
+    # non-bridge edges inside free space, checked edge by edge on a sample
+    rng = np.random.default_rng(0)
+    sample = rng.choice(g.n_edges, size=300, replace=False)
+    bridges = set(rep.bridge_edges)
+    for e in sample:
+        if e not in bridges:
+            assert plan.free.contains(LineString(g.nodes_xy[g.edges[e]]))
