@@ -28,6 +28,9 @@ def _real_dir():
 
 REAL = _real_dir()
 needs_real = pytest.mark.skipif(REAL is None, reason="real-data sample not available")
+# the full shared copy, for checks against the README's whole-floor totals
+FULL = Path("/work/shared/real_data/siteA")
+needs_full = pytest.mark.skipif(not (FULL / "F1" / "split.json").is_file(), reason="full real-data copy not available")
 
 
 def feat(kind, coords, gtype="Polygon"):
@@ -144,7 +147,7 @@ def test_plan_hash_ignores_layout_not_geometry(tmp_path):
     assert plan_from_geojson(moved).plan_hash != load_floor_plan(a).plan_hash
 
 
-@needs_real
+@needs_full
 @pytest.mark.realdata
 @pytest.mark.parametrize(
     # README "Measured summary": walkable area, free-space area, obstacles,
@@ -155,12 +158,12 @@ def test_plan_hash_ignores_layout_not_geometry(tmp_path):
 def test_real_plans_match_readme(floor, walkable_m2, free_m2, n_obst, share_free):
     from fingerprint.logio import read_checkpoints
 
-    plan = load_floor_plan(REAL / floor / "floor.plan.geojson")
+    plan = load_floor_plan(FULL / floor / "floor.plan.geojson")
     assert plan.floor == floor
     assert plan.walkable.area == pytest.approx(walkable_m2, abs=1.0)
     assert plan.free_area_m2 == pytest.approx(free_m2, abs=1.0)
     assert plan.n_obstacles == n_obst
-    cps = np.vstack([read_checkpoints(p).xy for p in sorted((REAL / floor).glob("*.checkpoints.csv"))])
+    cps = np.vstack([read_checkpoints(p).xy for p in sorted((FULL / floor).glob("*.checkpoints.csv"))])
     outside, dist = check_points(plan, cps)
     assert 1 - outside.mean() == pytest.approx(share_free, abs=0.0006)
     if floor == "B1":
@@ -169,3 +172,12 @@ def test_real_plans_match_readme(floor, walkable_m2, free_m2, n_obst, share_free
         assert 0.1 < dist[outside].min() and dist[outside].max() < 6.5
     # every checkpoint inside the walkable outline (README: 100 %)
     assert shapely.contains_xy(plan.walkable, cps[:, 0], cps[:, 1]).all()
+
+
+@needs_real
+@pytest.mark.realdata
+def test_vendored_plans_are_the_shared_plans():
+    # the vendored plan must give the README's free area (7904 / 19180 m²)
+    for floor, free_m2 in (("F1", 7904), ("B1", 19180)):
+        plan = load_floor_plan(REAL / floor / "floor.plan.geojson")
+        assert plan.free_area_m2 == pytest.approx(free_m2, abs=1.0)

@@ -26,6 +26,9 @@ def _real_site_dir():
 
 REAL = _real_site_dir()
 needs_real = pytest.mark.skipif(REAL is None, reason="real-data sample not available")
+# the full shared copy, for checks against the README's whole-floor totals
+FULL = Path("/work/shared/real_data/siteA")
+needs_full = pytest.mark.skipif(not (FULL / "F1" / "split.json").is_file(), reason="full real-data copy not available")
 
 
 def _write(path, obj):
@@ -141,14 +144,14 @@ def test_split_selection(tmp_path):
         load_split(bad)
 
 
-@needs_real
+@needs_full
 @pytest.mark.realdata
 def test_real_split_counts():
     # README: F1 80 survey / 26 test, B1 118 survey / 39 test; the split is
     # numpy.random.RandomState(0).permutation(n) over the sorted names
     # (numpy is the reference for the permutation)
     for floor, (n_survey, n_test) in {"F1": (80, 26), "B1": (118, 39)}.items():
-        d = REAL / floor
+        d = FULL / floor
         split = load_split(d / "split.json")
         survey = find_walks(d, split=split, part="survey")
         test = find_walks(d, split=split, part="test")
@@ -158,3 +161,16 @@ def test_real_split_counts():
         perm = np.random.RandomState(0).permutation(len(names))
         expect = sorted(names[i] for i in perm[: round(0.75 * len(names))])
         assert sorted(w.name for w in survey) == expect
+
+
+@needs_real
+@pytest.mark.realdata
+def test_vendored_split_is_a_subset_with_companions():
+    # tests/data/real/README: the vendored split keeps the first survey and
+    # test walks; every listed walk has its log and checkpoints beside it
+    for floor in ("F1", "B1"):
+        d = REAL / floor
+        split = load_split(d / "split.json")
+        survey = find_walks(d, split=split, part="survey")
+        assert [w.name for w in survey] == sorted(split["survey"])
+        assert all(w.checkpoints is not None and w.log.is_file() for w in survey)
