@@ -36,6 +36,7 @@ body{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;margin:2em auto;m
 color:#222;line-height:1.45;padding:0 1em}
 h1{font-size:1.6em;border-bottom:2px solid #446;padding-bottom:.2em}
 h2{font-size:1.25em;margin-top:1.8em;color:#334}
+div.tw{overflow-x:auto}
 table{border-collapse:collapse;margin:.6em 0;font-size:.9em}
 th,td{border:1px solid #ccd;padding:.25em .6em;text-align:right}
 th{background:#eef;text-align:center}
@@ -89,9 +90,11 @@ def html_table(columns, rows, *, left=1):
     head = "".join(f'<th class="{"l" if i < left else ""}">{html.escape(str(c))}</th>' for i, c in enumerate(columns))
     body = []
     for r in rows:
-        cells = "".join(f'<td class="{"l" if i < left else ""}">{_cell(v)}</td>' for i, v in enumerate(r))
+        cells = "".join(
+            f'<td class="{"l" if (i < left or isinstance(v, str)) else ""}">{_cell(v)}</td>' for i, v in enumerate(r)
+        )
         body.append(f"<tr>{cells}</tr>")
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+    return (f'<div class="tw"><table><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table></div>')
 
 
 def figure_to_base64(fig, *, dpi=100):

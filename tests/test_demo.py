@@ -1,0 +1,147 @@
+"""The command line end to end on the invented demo building: ``lodemap
+demo --quick`` once (module fixture), then ``lodemap evaluate`` and
+``lodemap sweep`` on what it left, and their error paths."""
+
+import csv
+import json
+import textwrap
+from html.parser import HTMLParser
+
+import numpy as np
+import pytest
+
+from mapping.cli import main
+from mapping.metrics import SUMMARY_KEYS
+
+
+class _H2(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.h2, self.imgs, self._on = [], 0, False
+
+    def handle_starttag(self, tag, attrs):
+        if tag == "h2":
+            self._on = True
+            self.h2.append("")
+        if tag == "img" and dict(attrs).get("src", "").startswith("data:image/png;base64,"):
+            self.imgs += 1
+
+    def handle_endtag(self, tag):
+        if tag == "h2":
+            self._on = False
+
+    def handle_data(self, d):
+        if self._on:
+            self.h2[-1] += d
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo")
+    import contextlib
+    import io
+
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        rc = main(["demo", "--quick", "--out", str(out), "--seed", "3", "--no-progress"])
+    assert rc == 0
+    return out, buf.getvalue()
+
+
+def test_demo_outputs(demo):
+    out, stdout = demo
+    lines = stdout.strip().splitlines()
+    assert lines[-1].startswith("report: ") and lines[-1].endswith("report.html")
+    assert "median m" in stdout and "DR median m" in stdout
+    info = json.loads((out / "demo.json").read_text())
+    assert info["seed"] == 3
+    floors = sorted(p.name for p in (out / "maps").glob("*.map"))
+    assert floors == ["G.map", "L1.map"]
+    for mode in ("tracking", "global", "dead-reckoning"):
+        per = info["summaries"][mode]
+        assert set(per) == {"all", "G", "L1"}
+        for s in per.values():
+            assert tuple(s) == SUMMARY_KEYS
+        # pooled counts are the sums over the floors
+        assert per["all"]["walks"] == per["G"]["walks"] + per["L1"]["walks"]
+        assert per["all"]["checkpoints"] == per["G"]["checkpoints"] + per["L1"]["checkpoints"]
+        for f in ("G", "L1"):
+            s = json.loads((out / "eval" / f / mode / "summary.json").read_text())
+            assert s == per[f]
+    # in every floor's tracking run the DR baseline figure is the DR mode's figure on the same walks
+    for f in ("G", "L1"):
+        t = info["summaries"]["tracking"][f]
+        d = info["summaries"]["dead-reckoning"][f]
+        assert t["dead_reckoning_median_error_m"] == pytest.approx(d["median_error_m"], abs=1e-3)
+    p = _H2()
+    p.feed((out / "report.html").read_text(encoding="utf-8"))
+    assert [h.strip() for h in p.h2] == ["Summary", "Method and settings", "Error CDF", "Tracks",
+                                         "Per-walk results", "Baselines", "Cautions"]
+    assert p.imgs >= 3  # CDF + one tracks figure per floor
+
+
+def test_demo_tracking_beats_dead_reckoning(demo):
+    # The simulated test walks have exact truth; the map-aided filter should
+    # be far better than dead reckoning alone even in the quick run.
+    out, _ = demo
+    s = json.loads((out / "demo.json").read_text())["summaries"]["tracking"]["all"]
+    assert s["median_error_m"] < s["dead_reckoning_median_error_m"]
+
+
+def test_evaluate_cli_json_matches_files(demo, tmp_path, capsys):
+    out, _ = demo
+    res = tmp_path / "ev"
+    rc = main(["evaluate", "--map", str(out / "maps" / "G.map"), str(out / "sim" / "G" / "test"), "--out", str(res),
+               "--mode", "dead-reckoning", "--baselines", "none", "--json", "--seed", "5", "--no-progress"])
+    assert rc == 0
+    printed = json.loads(capsys.readouterr().out)
+    assert printed == json.loads((res / "summary.json").read_text())
+    assert tuple(printed) == SUMMARY_KEYS
+    assert json.loads((res / "run.json").read_text())["seed"] == 5
+    # the headline figures follow from the per-checkpoint table (recomputed here)
+    with open(res / "checkpoints.csv", newline="") as fh:
+        rows = [r for r in csv.DictReader(fh) if r["scored"] == "True"]
+    e = np.array([float(r["error_m"]) for r in rows])
+    assert printed["checkpoints"] == e.size
+    assert printed["median_error_m"] == pytest.approx(np.median(e), abs=1e-3)
+    assert printed["max_error_m"] == pytest.approx(e.max(), abs=1e-3)
+    assert printed["no_field_median_error_m"] is None  # baselines off
+
+
+def test_evaluate_cli_errors(demo, tmp_path, capsys):
+    out, _ = demo
+    rc = main(["evaluate", "--map", str(tmp_path / "missing.map"), str(out / "sim" / "G" / "test"),
+               "--out", str(tmp_path / "x")])
+    assert rc == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("lodemap evaluate: error:")
+    rc = main(["evaluate", "--map", str(out / "maps" / "G.map"), str(out / "sim" / "G" / "test"),
+               "--out", str(tmp_path / "y"), "--baselines", "magic"])
+    assert rc == 2 and "magic" in capsys.readouterr().err
+
+
+def test_sweep_cli_on_the_demo_map_and_resume(demo, tmp_path, capsys):
+    out, _ = demo
+    walks = sorted((out / "sim" / "G" / "test").glob("*.log.csv*"))[:2]
+    cfg = tmp_path / "sweep.toml"
+    cfg.write_text(textwrap.dedent(f"""
+        [sweep]
+        mode = "tracking"
+        seeds = 1
+        seed = 4
+        [data]
+        walks = {json.dumps([str(w) for w in walks])}
+        map = "{out / 'maps' / 'G.map'}"
+        [grid]
+        n_particles = [200, 600]
+    """), encoding="utf-8")
+    rc = main(["sweep", str(cfg), "--out", str(tmp_path / "sw"), "--no-progress"])
+    assert rc == 0
+    text = capsys.readouterr().out
+    assert "4 done now" in text
+    with open(tmp_path / "sw" / "results.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 4 and {r["n_particles"] for r in rows} == {"200", "600"}
+    assert all(float(r["median_error_m"]) >= 0 for r in rows)
+    rc = main(["sweep", str(cfg), "--out", str(tmp_path / "sw"), "--no-progress"])
+    assert rc == 0 and "0 done now, 4 already stored" in capsys.readouterr().out
