@@ -13,6 +13,10 @@ import pytest
 from mapping.cli import main
 from mapping.metrics import SUMMARY_KEYS
 
+# the demo needs the map builder, the map file and the simulator command
+for _mod in ("mapping.mapbuild", "fingerprint.mapfile", "mapping.commands.simulate"):
+    pytest.importorskip(_mod)
+
 
 class _H2(HTMLParser):
     def __init__(self):
