@@ -1,0 +1,719 @@
+"""Field-map models: fit the plan-frame field vector ``(b_x, b_y, b_up)``
+(µT) as a function of plan position, with predictive variance.
+
+Registry :data:`MAP_KERNELS` (name -> class):
+
+``"curl-free"`` (default)
+    The curl-free Gaussian process of Solin, Kok, Wahlström, Schön and
+    Särkkä (2018), "Modeling and interpolation of the ambient magnetic field
+    by Gaussian processes", IEEE Trans. Robotics 34(4): the field is
+    ``B = -grad(phi)`` of a scalar potential ``phi ~ GP(0, k_SE)`` plus a
+    constant field, in the reduced-rank Hilbert-space form of Solin &
+    Särkkä (2020) (:mod:`mapping.gp_hilbert`).
+
+    Height: all samples are at one sensor height. For a 3-D SE potential
+    restricted to one plane, ``cov(b_up, b_x)`` and ``cov(b_up, b_y)`` are
+    ``-d^2 k / (dz dx)`` at ``dz = 0``, which vanish, while
+    ``cov(b_up, b_up) = -d^2 k / dz^2 = (s^2 / l^2) exp(-r^2 / (2 l^2))``.
+    So on the plane the 3-D model is exactly: ``(b_x, b_y) = -grad_2D phi``
+    with ``phi ~ GP(0, s^2 k_SE_2D(l))``, and ``b_up`` an independent 2-D SE
+    process with variance ``s^2 / l^2``, the same variance as each
+    horizontal component. We therefore use a 2-D box basis (no thin 3-D
+    extent to resolve) and parametrise by the field magnitude
+    ``sigma_f = s / l``.
+
+``"per-component"``
+    Independent reduced-rank SE processes for ``b_x, b_y, b_up`` (shared
+    magnitude and length scale), plus a constant.
+
+``"nearest"``
+    k-nearest-neighbour average (``scipy.spatial.cKDTree``); variance is the
+    spread of the neighbours' values.
+
+``"constant"``
+    Per-component mean; variance is the sample variance.
+
+Estimator contract (scikit-learn style): ``__init__`` only stores
+parameters; ``fit(xy (N, 2), b (N, 3), *, groups=None, rotations=None)``
+validates, sets attributes ending in ``_`` and returns ``self``;
+``predict(xy (M, 2), return_var=True) -> (mean (M, 3), var (M, 3))``
+checks it was fitted.
+
+Walk offsets: with ``groups`` (one integer or string per sample naming its
+walk) the GP models estimate, and integrate out, one constant offset per
+walk in the device frame (``rotations`` (N, 3, 3), device-to-plan; identity
+when omitted), because the residual calibration error of a phone differs
+per walk and turns with the device. ``predict``'s variance then also
+carries a between-walk term ``tau_c^2`` per component, fitted on held-out
+walks (group k-fold) so that about 68 % of held-out residuals fall within
+``±sqrt(var + noise_var_)``. Without groups the term is zero.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.optimize
+from scipy.spatial import cKDTree
+from threadpoolctl import threadpool_limits
+
+from fingerprint.errors import ConfigError, DataError
+
+from . import _linmodel
+from .gp_hilbert import BoxBasis, se_spectral_density_2d
+
+__all__ = [
+    "MAP_KERNELS",
+    "make_model",
+    "CurlFreeGP",
+    "PerComponentGP",
+    "NearestMap",
+    "ConstantMap",
+    "NotFittedError",
+]
+
+#: Share of a Gaussian within ±1 sd.
+ONE_SIGMA = 0.6826894921370859
+
+
+class NotFittedError(ConfigError):
+    """``predict`` was called before ``fit``."""
+
+
+def _check_xy_b(xy, b):
+    xy = np.asarray(xy, dtype=float)
+    b = np.asarray(b, dtype=float)
+    if xy.ndim != 2 or xy.shape[1] != 2:
+        raise DataError(f"positions must have shape (N, 2), got {xy.shape}")
+    if b.ndim != 2 or b.shape[1] != 3 or b.shape[0] != xy.shape[0]:
+        raise DataError(f"field samples must have shape ({xy.shape[0]}, 3), got {b.shape}")
+    if xy.shape[0] < 2:
+        raise DataError(f"need at least 2 survey samples to fit a map, got {xy.shape[0]}")
+    bad = ~(np.all(np.isfinite(xy), axis=1) & np.all(np.isfinite(b), axis=1))
+    if bad.any():
+        raise DataError(f"{int(bad.sum())} survey samples have non-finite position or field (first at index {int(np.argmax(bad))})")
+    return xy, b
+
+
+def _check_query(xy):
+    xy = np.asarray(xy, dtype=float)
+    if xy.ndim != 2 or xy.shape[1] != 2:
+        raise DataError(f"query positions must have shape (M, 2), got {xy.shape}")
+    return xy
+
+
+def _encode_groups(groups, n):
+    if groups is None:
+        return None, []
+    groups = np.asarray(groups)
+    if groups.shape != (n,):
+        raise DataError(f"groups must have shape ({n},), got {groups.shape}")
+    names, codes = np.unique(groups, return_inverse=True)
+    return codes.astype(np.int64), [str(v) for v in names]
+
+
+class _Fitted:
+    def _check_fitted(self):
+        if not hasattr(self, "n_samples_"):
+            raise NotFittedError(f"{type(self).__name__} is not fitted yet; call fit() first")
+
+    def get_params(self):
+        return {k: getattr(self, k) for k in self._param_names}
+
+    def __repr__(self):
+        args = ", ".join(f"{k}={getattr(self, k)!r}" for k in self._param_names)
+        return f"{type(self).__name__}({args})"
+
+
+class _ReducedRankGP(_Fitted):
+    """Shared machinery of the two reduced-rank GP models."""
+
+    _param_names = (
+        "n_basis",
+        "margin_m",
+        "length_scale_m",
+        "magnitude_ut",
+        "noise_h_ut",
+        "noise_up_ut",
+        "constant_ut",
+        "offset_ut",
+        "optimize",
+        "between_walk",
+        "n_folds",
+        "domain",
+        "seed",
+        "chunk",
+    )
+
+    #: optimised hyperparameters, in the order of the log-parameter vector
+    _hyper_names = ("magnitude_ut", "length_scale_m", "noise_h_ut", "noise_up_ut", "constant_ut", "offset_ut")
+
+    def __init__(
+        self,
+        n_basis=1024,
+        *,
+        margin_m=5.0,
+        length_scale_m=None,
+        magnitude_ut=None,
+        noise_h_ut=None,
+        noise_up_ut=None,
+        constant_ut=None,
+        offset_ut=None,
+        optimize=True,
+        between_walk=True,
+        n_folds=4,
+        domain=None,
+        seed=0,
+        chunk=2048,
+    ):
+        self.n_basis = n_basis
+        self.margin_m = margin_m
+        self.length_scale_m = length_scale_m
+        self.magnitude_ut = magnitude_ut
+        self.noise_h_ut = noise_h_ut
+        self.noise_up_ut = noise_up_ut
+        self.constant_ut = constant_ut
+        self.offset_ut = offset_ut
+        self.optimize = optimize
+        self.between_walk = between_walk
+        self.n_folds = n_folds
+        self.domain = domain
+        self.seed = seed
+        self.chunk = chunk
+
+    # -- to be provided by subclasses ----------------------------------------
+    def _layout(self, m):
+        """-> (n_field, idx list of 3 arrays)"""
+        raise NotImplementedError
+
+    def _design(self, basis, xy):
+        """-> [F_0, F_1, F_2] for the components"""
+        raise NotImplementedError
+
+    def _prior_var(self, hyper):
+        """(m_f,) prior variances from the hyperparameter dict."""
+        raise NotImplementedError
+
+    #: lower bound of the length scale, in units of 1 / omega_max of the basis
+    _kappa = 3.5
+
+    # -- fitting -------------------------------------------------------------
+    def fit(self, xy, b, *, groups=None, rotations=None):
+        """Fit the map.
+
+        Parameters
+        ----------
+        xy : (N, 2) float, metres, plan frame
+        b : (N, 3) float, µT, plan-frame field ``b_x, b_y, b_up``
+        groups : (N,) walk label of each sample, or None
+        rotations : (N, 3, 3) float or None, device-to-plan rotation of each
+            sample (for device-frame walk offsets); identity when None
+
+        Returns
+        -------
+        self
+        """
+        xy, b = _check_xy_b(xy, b)
+        n = xy.shape[0]
+        codes, names = _encode_groups(groups, n)
+        if rotations is not None:
+            rotations = np.asarray(rotations, dtype=float)
+            if rotations.shape != (n, 3, 3):
+                raise DataError(f"rotations must have shape ({n}, 3, 3), got {rotations.shape}")
+        if self.domain is not None:
+            lo, hi = np.asarray(self.domain[0], float), np.asarray(self.domain[1], float)
+            lo = np.minimum(lo, xy.min(axis=0))
+            hi = np.maximum(hi, xy.max(axis=0))
+        else:
+            lo, hi = xy.min(axis=0), xy.max(axis=0)
+        basis = BoxBasis.covering(lo, hi, margin_m=float(self.margin_m), n_basis=int(self.n_basis))
+        n_field, idx = self._layout(basis.n)
+        self.basis_ = basis
+        self.idx_ = idx
+        self.n_field_ = n_field
+        n_walks = len(names)
+
+        def design(q):
+            return self._design(basis, q)
+
+        stats = _linmodel.accumulate(
+            design, idx, xy, b, groups=codes, rotations=rotations, n_walks=n_walks, chunk=int(self.chunk)
+        )
+        hyper = self._initial_hyper(b, basis, use_offsets=codes is not None)
+        # Many small factorisations: one BLAS thread is much faster than
+        # two on a shared, busy machine (thread spin-waits).
+        with threadpool_limits(limits=1, user_api="blas"):
+            if self.optimize:
+                hyper, info = self._optimise(stats, hyper, use_offsets=codes is not None)
+            else:
+                info = {"optimised": False}
+            post = _linmodel.posterior(stats, self._prior_var(hyper), self._noise(hyper), hyper["offset_ut"] ** 2)
+        self.hyper_ = hyper
+        self.optim_info_ = info
+        self.log_marginal_likelihood_ = post.log_ml
+        self.mean_f_ = post.mean_f
+        self.cov_f_ = post.cov_f
+        self.walk_names_ = names
+        self.walk_offsets_ut_ = post.mean_o
+        self.noise_var_ = np.array([hyper["noise_h_ut"] ** 2, hyper["noise_h_ut"] ** 2, hyper["noise_up_ut"] ** 2])
+        self.between_walk_var_ = np.zeros(3)
+        self.calibration_ = {}
+        if codes is not None and self.between_walk and n_walks >= 2:
+            with threadpool_limits(limits=1, user_api="blas"):
+                self._fit_between_walk(stats, design, xy, b, codes, rotations, n_walks, hyper)
+        self.n_samples_ = n
+        return self
+
+    def _noise(self, hyper):
+        return np.array([hyper["noise_h_ut"] ** 2, hyper["noise_up_ut"] ** 2])
+
+    def _length_bounds(self, basis):
+        lo = self._kappa / basis.omega_max
+        hi = float(2.0 * basis.half_width_m.max())
+        return lo, max(hi, 2 * lo)
+
+    def _initial_hyper(self, b, basis, *, use_offsets):
+        centred = b - b.mean(axis=0)
+        sd = float(np.sqrt(np.mean(centred**2))) or 1.0
+        lo, hi = self._length_bounds(basis)
+        given = {
+            "magnitude_ut": self.magnitude_ut,
+            "length_scale_m": self.length_scale_m,
+            "noise_h_ut": self.noise_h_ut,
+            "noise_up_ut": self.noise_up_ut,
+            "constant_ut": self.constant_ut,
+            "offset_ut": self.offset_ut,
+        }
+        default = {
+            "magnitude_ut": sd,
+            "length_scale_m": float(np.clip(2.0, lo * 1.05, hi)),
+            "noise_h_ut": 0.3 * sd,
+            "noise_up_ut": 0.3 * sd,
+            "constant_ut": max(float(np.max(np.abs(b.mean(axis=0)))), 1.0),
+            "offset_ut": 0.3 * sd if use_offsets else 1.0,
+        }
+        out = {}
+        for k in self._hyper_names:
+            v = given[k] if given[k] is not None else default[k]
+            if not (np.isfinite(v) and v > 0):
+                raise ConfigError(f"{k} must be a positive number, got {v!r}")
+            out[k] = float(v)
+        fixed = {k for k in self._hyper_names if given[k] is not None}
+        if not use_offsets:
+            fixed.add("offset_ut")
+        self.fixed_hyper_ = sorted(fixed)
+        return out
+
+    def _optimise(self, stats, hyper, *, use_offsets):
+        free = [k for k in self._hyper_names if k not in self.fixed_hyper_]
+        if not free:
+            return hyper, {"optimised": False}
+        lo_l, hi_l = self._length_bounds(self.basis_)
+        bounds = []
+        for k in free:
+            if k == "length_scale_m":
+                bounds.append((np.log(lo_l), np.log(hi_l)))
+            elif k == "constant_ut":
+                bounds.append((np.log(1e-2), np.log(1e4)))
+            else:
+                bounds.append((np.log(1e-3), np.log(1e3)))
+        bounds = np.array(bounds)
+
+        def unpack(theta):
+            h = dict(hyper)
+            for k, v in zip(free, theta):
+                h[k] = float(np.exp(v))
+            return h
+
+        def objective(theta):
+            h = unpack(theta)
+            val, d_prior, d_noise, d_off = _linmodel.log_marginal_and_grad(
+                stats, self._prior_var(h), self._noise(h), h["offset_ut"] ** 2
+            )
+            if not np.isfinite(val):
+                return 1e300, np.zeros_like(theta)
+            jac = self._dlog_prior(h)
+            grad = []
+            for k in free:
+                if k in jac:
+                    grad.append(float(d_prior @ jac[k]))
+                elif k == "noise_h_ut":
+                    grad.append(2.0 * d_noise[0])
+                elif k == "noise_up_ut":
+                    grad.append(2.0 * d_noise[1])
+                else:  # offset_ut
+                    grad.append(2.0 * d_off)
+            return -val, -np.array(grad)
+
+        theta0 = np.clip(np.log([hyper[k] for k in free]), bounds[:, 0], bounds[:, 1])
+        # A coarse scan of the length scale first: the likelihood can be
+        # multimodal in it.
+        if "length_scale_m" in free:
+            j = free.index("length_scale_m")
+            best = (objective(theta0)[0], theta0)
+            for ell in np.geomspace(lo_l * 1.05, min(hi_l, 20 * lo_l), 6):
+                t = theta0.copy()
+                t[j] = np.log(ell)
+                v = objective(t)[0]
+                if v < best[0]:
+                    best = (v, t)
+            theta0 = best[1]
+        res = scipy.optimize.minimize(
+            objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": 80, "ftol": 1e-8}
+        )
+        h = unpack(res.x)
+        at_bound = [k for k, v, (a, c) in zip(free, res.x, bounds) if v <= a + 1e-6 or v >= c - 1e-6]
+        return h, {
+            "optimised": True,
+            "success": bool(res.success),
+            "n_evaluations": int(res.nfev),
+            "neg_log_ml": float(res.fun),
+            "at_bound": at_bound,
+            "length_scale_bounds_m": [float(lo_l), float(hi_l)],
+        }
+
+    def _fit_between_walk(self, stats, design, xy, b, codes, rotations, n_walks, hyper):
+        """Between-walk variance from group k-fold predictions (see module
+        docstring)."""
+        rng = np.random.default_rng(self.seed)
+        k = int(min(max(int(self.n_folds), 2), n_walks))
+        fold_of_walk = np.empty(n_walks, dtype=np.int64)
+        fold_of_walk[rng.permutation(n_walks)] = np.arange(n_walks) % k
+        fold = fold_of_walk[codes]
+        prior = self._prior_var(hyper)
+        noise = self._noise(hyper)
+        res, var = [], []
+        for f in range(k):
+            sel = fold == f
+            held = _linmodel.accumulate(
+                design,
+                self.idx_,
+                xy[sel],
+                b[sel],
+                groups=codes[sel],
+                rotations=None if rotations is None else rotations[sel],
+                n_walks=n_walks,
+                chunk=int(self.chunk),
+            )
+            post = _linmodel.posterior(stats - held, prior, noise, hyper["offset_ut"] ** 2)
+            mean, latent = self._predict_with(post.mean_f, post.cov_f, xy[sel])
+            res.append(b[sel] - mean)
+            var.append(latent)
+        res = np.concatenate(res)
+        var = np.concatenate(var)
+        excess = res**2 - var - self.noise_var_[None, :]
+        tau2 = np.maximum(np.quantile(excess, ONE_SIGMA, axis=0), 0.0)
+        self.between_walk_var_ = tau2
+        sd = np.sqrt(var + self.noise_var_ + tau2)
+        self.calibration_ = {
+            "n_folds": k,
+            "heldout_rmse_ut": [float(v) for v in np.sqrt(np.mean(res**2, axis=0))],
+            "heldout_within_1sd_before": [
+                float(v) for v in np.mean(np.abs(res) <= np.sqrt(var + self.noise_var_), axis=0)
+            ],
+            "heldout_within_1sd_after": [float(v) for v in np.mean(np.abs(res) <= sd, axis=0)],
+        }
+
+    # -- prediction ------------------------------------------------------------
+    def _predict_with(self, mean_f, cov_f, xy, chunk=4096):
+        out_m = np.empty((xy.shape[0], 3))
+        out_v = np.empty((xy.shape[0], 3))
+        blocks = [cov_f[np.ix_(ix, ix)] for ix in self.idx_]
+        for s in range(0, xy.shape[0], chunk):
+            feats = self._design(self.basis_, xy[s : s + chunk])
+            for c in range(3):
+                f = feats[c]
+                out_m[s : s + chunk, c] = f @ mean_f[self.idx_[c]]
+                out_v[s : s + chunk, c] = np.einsum("ij,ij->i", f @ blocks[c], f)
+        return out_m, np.maximum(out_v, 0.0)
+
+    def predict(self, xy, return_var=True):
+        """Mapped field at plan positions.
+
+        Parameters
+        ----------
+        xy : (M, 2) float, metres
+        return_var : bool
+
+        Returns
+        -------
+        mean : (M, 3) float, µT
+        var : (M, 3) float, µT², latent variance of the map plus the
+            between-walk variance (sensor noise not included; it is
+            ``noise_var_``); only if ``return_var``
+        """
+        self._check_fitted()
+        xy = _check_query(xy)
+        mean, var = self._predict_with(self.mean_f_, self.cov_f_, xy)
+        if not return_var:
+            return mean
+        return mean, var + self.between_walk_var_[None, :]
+
+    def predict_grid(self, xs, ys):
+        """Mapped field on the raster ``xs`` (nx,) x ``ys`` (ny,) using the
+        separable basis: ``mean (ny, nx, 3)``, ``var (ny, nx, 3)`` (as
+        :meth:`predict`). Cost ``O(ny m^2 + nx ny J^2)`` instead of
+        ``O(nx ny m^2)`` for point-wise evaluation."""
+        self._check_fitted()
+        xs = np.asarray(xs, float)
+        ys = np.asarray(ys, float)
+        fx, dfx, fy, dfy = self.basis_.factors(xs, ys)
+        nb = self.basis_.n
+        order = np.argsort(self.basis_.jx, kind="stable")
+        jx = self.basis_.jx[order] - 1
+        jy = self.basis_.jy[order] - 1
+        used, starts = np.unique(jx, return_index=True)
+        mean = np.empty((ys.size, xs.size, 3))
+        var = np.empty((ys.size, xs.size, 3))
+        for c, (gx, gy) in enumerate(self._grid_factors(fx, dfx, fy, dfy)):
+            ix = self.idx_[c]
+            w = self.mean_f_[ix]
+            cov = self.cov_f_[np.ix_(ix, ix)]
+            # Mean: sum_j w_j gx[a, jx_j] gy[b, jy_j] = (gy @ W @ gx^T)[b, a].
+            wm = np.zeros((fy.shape[1], fx.shape[1]))
+            np.add.at(wm, (jy, jx), w[:nb][order])
+            mean[..., c] = gy @ wm @ gx.T + w[nb]
+            # Variance of basis part + constant: per raster row b, scale the
+            # covariance by gy[b, jy_j] gy[b, jy_k], sum it over basis
+            # functions sharing a jx mode (-> J x J), then a quadratic form
+            # in gx[a, :].
+            cbb = cov[:nb, :nb][np.ix_(order, order)]
+            cbc = cov[:nb, nb][order]
+            ccc = cov[nb, nb]
+            gxu = gx[:, used]
+            cm = np.zeros((fy.shape[1], fx.shape[1]))
+            np.add.at(cm, (jy, jx), cbc)
+            cross = gy @ cm @ gx.T  # (ny, nx): sum_j g_j C_jc
+            gyb_all = gy[:, jy]  # (ny, nb)
+            for r in range(ys.size):
+                gyb = gyb_all[r]
+                ct = cbb * gyb[:, None] * gyb[None, :]
+                mm = np.add.reduceat(np.add.reduceat(ct, starts, axis=0), starts, axis=1)
+                var[r, :, c] = np.einsum("ap,pq,aq->a", gxu, mm, gxu, optimize=True)
+            var[..., c] += 2.0 * cross + ccc
+        var = np.maximum(var, 0.0) + self.between_walk_var_[None, None, :]
+        return mean, var
+
+    def summary(self):
+        """JSON-able hyperparameters and fit diagnostics."""
+        self._check_fitted()
+        return {
+            "kernel": self.name,
+            "hyperparameters": {k: float(v) for k, v in self.hyper_.items()},
+            "noise_sd_ut": [float(v) for v in np.sqrt(self.noise_var_)],
+            "between_walk_sd_ut": [float(v) for v in np.sqrt(self.between_walk_var_)],
+            "log_marginal_likelihood": float(self.log_marginal_likelihood_),
+            "basis": self.basis_.to_dict(),
+            "optimisation": self.optim_info_,
+            "calibration": self.calibration_,
+            "n_samples": int(self.n_samples_),
+            "n_walks": len(self.walk_names_),
+        }
+
+
+class CurlFreeGP(_ReducedRankGP):
+    """Reduced-rank curl-free GP (see module docstring).
+
+    Parameters
+    ----------
+    n_basis : int, basis functions per block (potential, vertical)
+    margin_m : float, box margin around the data (and ``domain``)
+    length_scale_m, magnitude_ut, noise_h_ut, noise_up_ut, constant_ut,
+    offset_ut : float or None
+        Hyperparameters; None = estimated by marginal likelihood (given
+        values are held fixed). ``magnitude_ut`` is the prior sd of each
+        field component, ``constant_ut`` the prior sd of the constant field,
+        ``offset_ut`` the prior sd of each device-frame walk-offset axis.
+    optimize : bool, maximise the marginal likelihood over the free ones
+    between_walk : bool, fit the between-walk variance (needs groups)
+    n_folds : int, group folds for it
+    domain : ((2,), (2,)) or None, plan box the map must cover
+    seed : int, for the fold assignment
+    """
+
+    name = "curl-free"
+
+    def _layout(self, m):
+        pot = np.arange(m)
+        up = np.arange(m, 2 * m)
+        c = 2 * m
+        return 2 * m + 3, [np.append(pot, c), np.append(pot, c + 1), np.append(up, c + 2)]
+
+    def _design(self, basis, xy):
+        dx, dy = basis.gradients(xy)
+        phi = basis.values(xy)
+        one = np.ones((xy.shape[0], 1))
+        # B = -grad(phi): the potential weights enter with a minus sign.
+        return [np.hstack([-dx, one]), np.hstack([-dy, one]), np.hstack([phi, one])]
+
+    def _prior_var(self, h):
+        w = self.basis_.omega
+        ell = h["length_scale_m"]
+        s2 = h["magnitude_ut"] ** 2
+        pot = se_spectral_density_2d(w, s2 * ell**2, ell)  # potential variance s^2 l^2
+        up = se_spectral_density_2d(w, s2, ell)
+        c2 = h["constant_ut"] ** 2
+        return np.concatenate([pot, up, [c2, c2, c2]])
+
+    def _dlog_prior(self, h):
+        """d log(prior_var) / d log(hyperparameter), (m_f,) each."""
+        w2l2 = (self.basis_.omega * h["length_scale_m"]) ** 2
+        m = self.basis_.n
+        z = np.zeros(3)
+        return {
+            "magnitude_ut": np.concatenate([np.full(2 * m, 2.0), z]),
+            "length_scale_m": np.concatenate([4.0 - w2l2, 2.0 - w2l2, z]),
+            "constant_ut": np.concatenate([np.zeros(2 * m), np.full(3, 2.0)]),
+        }
+
+    def _grid_factors(self, fx, dfx, fy, dfy):
+        # b_x = -d phi/dx, b_y = -d phi/dy, b_up uses phi itself
+        return [(-dfx, fy), (fx, -dfy), (fx, fy)]
+
+
+class PerComponentGP(_ReducedRankGP):
+    """Independent reduced-rank SE GPs for ``b_x, b_y, b_up`` with a shared
+    magnitude and length scale, plus a constant; same parameters as
+    :class:`CurlFreeGP` (``n_basis`` per component)."""
+
+    name = "per-component"
+
+    def _layout(self, m):
+        c = 3 * m
+        return 3 * m + 3, [np.append(np.arange(k * m, (k + 1) * m), c + k) for k in range(3)]
+
+    def _design(self, basis, xy):
+        phi = basis.values(xy)
+        f = np.hstack([phi, np.ones((xy.shape[0], 1))])
+        return [f, f, f]
+
+    def _prior_var(self, h):
+        s = se_spectral_density_2d(self.basis_.omega, h["magnitude_ut"] ** 2, h["length_scale_m"])
+        c2 = h["constant_ut"] ** 2
+        return np.concatenate([s, s, s, [c2, c2, c2]])
+
+    _kappa = 3.0
+
+    def _dlog_prior(self, h):
+        w2l2 = (self.basis_.omega * h["length_scale_m"]) ** 2
+        m = self.basis_.n
+        z = np.zeros(3)
+        return {
+            "magnitude_ut": np.concatenate([np.full(3 * m, 2.0), z]),
+            "length_scale_m": np.concatenate([np.tile(2.0 - w2l2, 3), z]),
+            "constant_ut": np.concatenate([np.zeros(3 * m), np.full(3, 2.0)]),
+        }
+
+    def _grid_factors(self, fx, dfx, fy, dfy):
+        return [(fx, fy)] * 3
+
+
+class NearestMap(_Fitted):
+    """k-nearest-neighbour map.
+
+    Parameters
+    ----------
+    k : int, neighbours averaged (1 = plain nearest neighbour)
+    """
+
+    name = "nearest"
+    _param_names = ("k",)
+
+    def __init__(self, k=5):
+        self.k = k
+
+    def fit(self, xy, b, *, groups=None, rotations=None):
+        """Store the samples (``groups``/``rotations`` accepted and unused).
+
+        Returns self."""
+        xy, b = _check_xy_b(xy, b)
+        k = int(self.k)
+        if k < 1:
+            raise ConfigError(f"k must be >= 1, got {self.k}")
+        self.tree_ = cKDTree(xy)
+        self.b_ = b.copy()
+        self.k_ = min(k, xy.shape[0])
+        # Floor for the spread: the global variance of neighbour differences
+        # would be overkill; a single neighbour has no spread, so use the
+        # median squared nearest-pair difference / 2.
+        d, j = self.tree_.query(xy, k=2)
+        self.floor_var_ = np.median((b - b[j[:, 1]]) ** 2, axis=0) / 2.0
+        self.noise_var_ = np.zeros(3)
+        self.n_samples_ = xy.shape[0]
+        return self
+
+    def predict(self, xy, return_var=True):
+        """Mean of the k nearest samples; var = their spread (at least
+        ``floor_var_``). Shapes as the GP models."""
+        self._check_fitted()
+        xy = _check_query(xy)
+        _, j = self.tree_.query(xy, k=self.k_)
+        j = j.reshape(xy.shape[0], -1)
+        vals = self.b_[j]  # (M, k, 3)
+        mean = vals.mean(axis=1)
+        if not return_var:
+            return mean
+        if self.k_ > 1:
+            var = vals.var(axis=1, ddof=1)
+        else:
+            var = np.zeros_like(mean)
+        return mean, np.maximum(var, self.floor_var_[None, :])
+
+    def summary(self):
+        self._check_fitted()
+        return {"kernel": self.name, "hyperparameters": {"k": self.k_}, "n_samples": int(self.n_samples_)}
+
+
+class ConstantMap(_Fitted):
+    """Per-component mean field; variance = sample variance."""
+
+    name = "constant"
+    _param_names = ()
+
+    def fit(self, xy, b, *, groups=None, rotations=None):
+        """Returns self."""
+        xy, b = _check_xy_b(xy, b)
+        self.mean_ = b.mean(axis=0)
+        self.var_ = b.var(axis=0, ddof=1)
+        self.noise_var_ = np.zeros(3)
+        self.n_samples_ = xy.shape[0]
+        return self
+
+    def predict(self, xy, return_var=True):
+        self._check_fitted()
+        xy = _check_query(xy)
+        mean = np.broadcast_to(self.mean_, (xy.shape[0], 3)).copy()
+        if not return_var:
+            return mean
+        return mean, np.broadcast_to(self.var_, (xy.shape[0], 3)).copy()
+
+    def summary(self):
+        self._check_fitted()
+        return {"kernel": self.name, "hyperparameters": {}, "n_samples": int(self.n_samples_)}
+
+
+#: kernel name -> model class
+MAP_KERNELS = {
+    "curl-free": CurlFreeGP,
+    "per-component": PerComponentGP,
+    "nearest": NearestMap,
+    "constant": ConstantMap,
+}
+
+
+def make_model(kernel="curl-free", **params):
+    """Instantiate the map model registered as ``kernel``.
+
+    Raises
+    ------
+    ConfigError
+        Unknown kernel name (the message lists the valid ones) or a
+        parameter the model does not take.
+    """
+    try:
+        cls = MAP_KERNELS[kernel]
+    except KeyError:
+        raise ConfigError(f"unknown map kernel {kernel!r}; valid: {', '.join(MAP_KERNELS)}") from None
+    try:
+        return cls(**params)
+    except TypeError as err:
+        raise ConfigError(f"map kernel {kernel!r}: {err}") from err

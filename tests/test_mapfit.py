@@ -1,0 +1,337 @@
+"""Field-map models against exact Gaussian-process regression.
+
+Reference library: scikit-learn's ``GaussianProcessRegressor`` (exact GP,
+Cholesky of the full covariance) with the equivalent kernel:
+
+- curl-free: a custom sklearn ``Kernel`` holding the analytic covariance of
+  ``B = -grad(phi)``, ``phi ~ GP(0, s^2 exp(-r^2 / 2 l^2))``, which is
+  ``cov(b_i, b_j) = (s^2 / l^2) (delta_ij - d_i d_j / l^2) exp(-r^2 / 2 l^2)``
+  (second derivatives of the SE kernel; Solin et al. 2018, IEEE T-RO,
+  sec. III; Rasmussen & Williams 2006 sec. 9.4 for derivative covariances),
+  plus ``cov(b_up, b_up) = (s^2 / l^2) exp(-r^2 / 2 l^2)`` (the vertical
+  derivative of the 3-D SE potential on one plane, see mapping.mapfit), a
+  constant field and per-walk device-frame offsets;
+- per-component: sklearn's own ``ConstantKernel * RBF + ConstantKernel``.
+"""
+
+import numpy as np
+import pytest
+from scipy.spatial.transform import Rotation
+from sklearn.gaussian_process import GaussianProcessRegressor
+from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Kernel
+
+from fingerprint.errors import ConfigError, DataError
+from mapping.mapfit import MAP_KERNELS, ConstantMap, CurlFreeGP, NearestMap, NotFittedError, PerComponentGP, make_model
+
+
+class CurlFreeExact(Kernel):
+    """Exact covariance of the model of mapping.mapfit.CurlFreeGP for
+    stacked scalar observations. Input columns: x, y, component (0, 1, 2),
+    walk id (-1 = none), then the three entries of the sample's
+    device-to-plan rotation row for that component."""
+
+    def __init__(self, magnitude=1.0, length=1.0, constant=1.0, offset=0.0):
+        self.magnitude = magnitude
+        self.length = length
+        self.constant = constant
+        self.offset = offset
+
+    def __call__(self, X, Y=None, eval_gradient=False):
+        if eval_gradient:
+            raise NotImplementedError
+        Y = X if Y is None else Y
+        d = X[:, None, :2] - Y[None, :, :2]
+        r2 = np.sum(d**2, axis=-1)
+        ell2 = self.length**2
+        k = self.magnitude**2 * np.exp(-0.5 * r2 / ell2)
+        ci = X[:, 2].astype(int)[:, None]
+        cj = Y[:, 2].astype(int)[None, :]
+        out = np.zeros(r2.shape)
+        for a in range(2):
+            for b in range(2):
+                m = (ci == a) & (cj == b)
+                val = ((a == b) - d[..., a] * d[..., b] / ell2) * k
+                out[m] = val[m]
+        up = (ci == 2) & (cj == 2)
+        out[up] = k[up]
+        out += self.constant**2 * (ci == cj)
+        same = (X[:, 3][:, None] == Y[:, 3][None, :]) & (X[:, 3][:, None] >= 0)
+        out += self.offset**2 * same * (X[:, 4:7] @ Y[:, 4:7].T)
+        return out
+
+    def diag(self, X):
+        return np.diag(self(X))
+
+    def is_stationary(self):
+        return False
+
+
+def _stack(xy, comp_rows, groups=None, rot=None):
+    """(N, 2) positions -> (3N, 7) sklearn inputs (component-major)."""
+    n = xy.shape[0]
+    rows = []
+    for c in comp_rows:
+        g = np.full(n, -1.0) if groups is None else groups.astype(float)
+        r = np.tile(np.eye(3)[c], (n, 1)) if rot is None else rot[:, c, :]
+        rows.append(np.column_stack([xy, np.full(n, c), g, r]))
+    return np.vstack(rows)
+
+
+def _potential_field(rng, n_bumps=25, box=(12.0, 10.0)):
+    """A curl-free test field: minus the gradient of a sum of Gaussian bumps
+    (vertical part: the bumps' own profile), plus a constant (µT)."""
+    cent = rng.uniform([0, 0], box, size=(n_bumps, 2))
+    amp = rng.normal(size=n_bumps) * 8.0
+    wid = rng.uniform(1.2, 2.5, n_bumps)
+
+    def field(xy):
+        d = xy[:, None, :] - cent[None]
+        g = amp * np.exp(-np.sum(d**2, -1) / (2 * wid**2))
+        gx = np.sum(g * (-d[..., 0] / wid**2), 1)
+        gy = np.sum(g * (-d[..., 1] / wid**2), 1)
+        return np.column_stack([-gx + 18.0, -gy - 6.0, np.sum(g / wid, 1) - 41.0])
+
+    return field
+
+
+HYPER = dict(magnitude_ut=4.0, length_scale_m=1.5, noise_h_ut=0.4, noise_up_ut=0.3, constant_ut=30.0)
+
+
+@pytest.fixture(scope="module")
+def survey():
+    rng = np.random.default_rng(11)
+    field = _potential_field(rng)
+    xy = rng.uniform([0, 0], [12, 10], size=(600, 2))
+    b = field(xy) + rng.normal(size=(600, 3)) * [0.4, 0.4, 0.3]
+    test = rng.uniform([0.5, 0.5], [11.5, 9.5], size=(200, 2))
+    return xy, b, test, field
+
+
+def test_curl_free_matches_exact_sklearn_gp(survey):
+    xy, b, test, _ = survey
+    model = CurlFreeGP(n_basis=700, margin_m=5.0, optimize=False, **HYPER).fit(xy, b)
+    kern = CurlFreeExact(HYPER["magnitude_ut"], HYPER["length_scale_m"], HYPER["constant_ut"])
+    alpha = np.concatenate([np.full(600, 0.4**2), np.full(600, 0.4**2), np.full(600, 0.3**2)])
+    gpr = GaussianProcessRegressor(kern, alpha=alpha, optimizer=None, normalize_y=False)
+    gpr.fit(_stack(xy, range(3)), b.T.ravel())
+    ref_mean, ref_sd = gpr.predict(_stack(test, range(3)), return_std=True)
+    mean, var = model.predict(test)
+    rms = np.sqrt(np.mean((mean.T.ravel() - ref_mean) ** 2))
+    assert rms < 0.2  # acceptance: within 0.2 µT RMS of the exact GP
+    np.testing.assert_allclose(np.sqrt(var.T.ravel()), ref_sd, atol=0.05)
+    # the marginal likelihood of the reduced-rank model approximates the exact one
+    assert model.log_marginal_likelihood_ == pytest.approx(gpr.log_marginal_likelihood_value_, rel=0.01)
+
+
+def test_walk_offsets_match_exact_gp_with_offset_kernel():
+    """Per-walk device-frame offsets integrated out (Schur complement) give
+    the same posterior as an exact GP whose covariance has the term
+    ``offset^2 [same walk] R_i[c] . R_j[c']``."""
+    rng = np.random.default_rng(5)
+    field = _potential_field(rng)
+    n = 360
+    xy = rng.uniform([0, 0], [12, 10], size=(n, 2))
+    groups = np.repeat(np.arange(6), n // 6)
+    ang = np.column_stack([rng.uniform(-np.pi, np.pi, n), rng.normal(size=(n, 2)) * 0.2])
+    rot = Rotation.from_euler("zyx", ang).as_matrix()  # device -> plan, heading and tilt
+    offsets = rng.normal(size=(6, 3)) * 2.5
+    b = field(xy) + np.einsum("nij,nj->ni", rot, offsets[groups]) + rng.normal(size=(n, 3)) * 0.3
+    hyper = dict(HYPER, noise_h_ut=0.3, noise_up_ut=0.3, offset_ut=2.0)
+    model = CurlFreeGP(n_basis=700, optimize=False, between_walk=False, **hyper).fit(
+        xy, b, groups=groups, rotations=rot
+    )
+    kern = CurlFreeExact(hyper["magnitude_ut"], hyper["length_scale_m"], hyper["constant_ut"], hyper["offset_ut"])
+    gpr = GaussianProcessRegressor(kern, alpha=0.3**2, optimizer=None).fit(
+        _stack(xy, range(3), groups, rot), b.T.ravel()
+    )
+    test = rng.uniform([0.5, 0.5], [11.5, 9.5], size=(150, 2))
+    ref = gpr.predict(_stack(test, range(3)))
+    mean = model.predict(test, return_var=False)
+    assert np.sqrt(np.mean((mean.T.ravel() - ref) ** 2)) < 0.2
+    assert model.log_marginal_likelihood_ == pytest.approx(gpr.log_marginal_likelihood_value_, rel=0.01)
+    # the estimated offsets (device frame) track the true ones up to the part
+    # shared by all walks, which trades off against the constant field
+    est = model.walk_offsets_ut_
+    np.testing.assert_allclose(est - est.mean(0), offsets - offsets.mean(0), atol=0.5)
+
+
+def test_per_component_matches_sklearn_rbf(survey):
+    xy, b, test, _ = survey
+    h = HYPER
+    model = PerComponentGP(n_basis=500, optimize=False, **h).fit(xy, b)
+    mean, var = model.predict(test)
+    for c, noise in enumerate([h["noise_h_ut"], h["noise_h_ut"], h["noise_up_ut"]]):
+        k = ConstantKernel(h["magnitude_ut"] ** 2, "fixed") * RBF(h["length_scale_m"], "fixed") + ConstantKernel(
+            h["constant_ut"] ** 2, "fixed"
+        )
+        gpr = GaussianProcessRegressor(k, alpha=noise**2, optimizer=None).fit(xy, b[:, c])
+        ref, sd = gpr.predict(test, return_std=True)
+        assert np.sqrt(np.mean((mean[:, c] - ref) ** 2)) < 0.2
+        np.testing.assert_allclose(np.sqrt(var[:, c]), sd, atol=0.05)
+
+
+def _curl(model, pts, h=1e-3):
+    """Finite-difference d b_y / dx - d b_x / dy (µT/m) and the size of the
+    field's gradient for scale."""
+    ex = np.array([h, 0.0])
+    ey = np.array([0.0, h])
+    by_x = (model.predict(pts + ex, False)[:, 1] - model.predict(pts - ex, False)[:, 1]) / (2 * h)
+    bx_y = (model.predict(pts + ey, False)[:, 0] - model.predict(pts - ey, False)[:, 0]) / (2 * h)
+    bx_x = (model.predict(pts + ex, False)[:, 0] - model.predict(pts - ex, False)[:, 0]) / (2 * h)
+    return by_x - bx_y, np.abs(bx_x)
+
+
+def test_mapped_field_is_curl_free(survey):
+    # curl B = 0 for B = -grad(phi) (vector calculus); the per-component
+    # model is not constrained, so the same check on it must fail
+    xy, b, test, _ = survey
+    cf = CurlFreeGP(n_basis=500, optimize=False, **HYPER).fit(xy, b)
+    curl, scale = _curl(cf, test)
+    assert np.sqrt(np.mean(curl**2)) < 1e-5 * np.sqrt(np.mean(scale**2))
+    pc = PerComponentGP(n_basis=400, optimize=False, **HYPER).fit(xy, b)
+    curl_pc, scale_pc = _curl(pc, test)
+    assert np.sqrt(np.mean(curl_pc**2)) > 0.05 * np.sqrt(np.mean(scale_pc**2))
+
+
+def test_marginal_likelihood_fit_recovers_field(survey):
+    xy, b, test, field = survey
+    model = make_model("curl-free", n_basis=500).fit(xy, b)
+    mean, var = model.predict(test)
+    err = mean - field(test)
+    assert np.sqrt(np.mean(err**2)) < 0.6
+    # the fitted noise is close to the simulated 0.4 / 0.3 µT
+    assert model.hyper_["noise_h_ut"] == pytest.approx(0.4, rel=0.25)
+    assert model.hyper_["noise_up_ut"] == pytest.approx(0.3, rel=0.25)
+    # predictive sd tells the truth about the error of the mean (calibrated
+    # Gaussian: 68 % within 1 sd; loose band for 600 correlated errors)
+    inside = np.mean(np.abs(err) <= np.sqrt(var))
+    assert 0.45 < inside < 0.9
+
+
+def test_predict_grid_equals_pointwise(survey):
+    xy, b, _, _ = survey
+    for cls in (CurlFreeGP, PerComponentGP):
+        m = cls(n_basis=200, optimize=False, **HYPER).fit(xy, b)
+        xs = np.linspace(-1, 13, 15)
+        ys = np.linspace(-1, 11, 9)
+        mg, vg = m.predict_grid(xs, ys)
+        gx, gy = np.meshgrid(xs, ys)
+        mp, vp = m.predict(np.column_stack([gx.ravel(), gy.ravel()]))
+        np.testing.assert_allclose(mg.reshape(-1, 3), mp, atol=1e-9)
+        np.testing.assert_allclose(vg.reshape(-1, 3), vp, rtol=1e-8, atol=1e-10)
+
+
+def test_between_walk_variance_calibrates_heldout_walks():
+    """Walks with their own device-frame offsets: the fitted between-walk
+    term makes about 68 % of residuals on new walks fall within 1 sd."""
+    rng = np.random.default_rng(21)
+    field = _potential_field(rng)
+
+    def walks(n_walks, per):
+        xy = rng.uniform([0, 0], [12, 10], size=(n_walks * per, 2))
+        g = np.repeat(np.arange(n_walks), per)
+        rot = Rotation.from_euler("z", rng.uniform(-np.pi, np.pi, (n_walks * per, 1))).as_matrix()
+        off = rng.normal(size=(n_walks, 3)) * 2.0
+        b = field(xy) + np.einsum("nij,nj->ni", rot, off[g]) + rng.normal(size=xy.shape[0:1] + (3,)) * 0.3
+        return xy, b, g, rot
+
+    xy, b, g, rot = walks(16, 60)
+    model = CurlFreeGP(n_basis=250).fit(xy, b, groups=g, rotations=rot)
+    assert np.all(model.between_walk_var_ > 0.5)  # offsets of sd 2 µT must show
+    txy, tb, _, _ = walks(12, 60)
+    mean, var = model.predict(txy)
+    inside = np.mean(np.abs(tb - mean) <= np.sqrt(var + model.noise_var_), axis=0)
+    assert np.all((inside > 0.58) & (inside < 0.80)), inside
+    # without the term the sd would be far too small
+    m0 = CurlFreeGP(n_basis=250, between_walk=False).fit(xy, b, groups=g, rotations=rot)
+    mean0, var0 = m0.predict(txy)
+    assert np.mean(np.abs(tb - mean0) <= np.sqrt(var0 + m0.noise_var_)) < 0.5
+
+
+def test_nearest_and_constant_baselines():
+    # nearest neighbour checked against a brute-force search (slow twin)
+    rng = np.random.default_rng(2)
+    xy = rng.uniform(0, 10, size=(300, 2))
+    b = rng.normal(size=(300, 3))
+    q = rng.uniform(0, 10, size=(40, 2))
+    m = NearestMap(k=1).fit(xy, b)
+    d = np.linalg.norm(q[:, None] - xy[None], axis=-1)
+    np.testing.assert_allclose(m.predict(q, False), b[np.argmin(d, axis=1)])
+    m3 = NearestMap(k=3).fit(xy, b)
+    idx = np.argsort(d, axis=1)[:, :3]
+    mean, var = m3.predict(q)
+    np.testing.assert_allclose(mean, b[idx].mean(axis=1))
+    np.testing.assert_allclose(var, np.maximum(b[idx].var(axis=1, ddof=1), m3.floor_var_))
+    c = ConstantMap().fit(xy, b)
+    mean, var = c.predict(q)
+    np.testing.assert_allclose(mean, np.broadcast_to(b.mean(0), mean.shape))
+    np.testing.assert_allclose(var[0], np.var(b, axis=0, ddof=1))
+
+
+def test_registry_and_errors():
+    assert set(MAP_KERNELS) == {"curl-free", "per-component", "nearest", "constant"}
+    with pytest.raises(ConfigError, match="valid: curl-free, per-component, nearest, constant"):
+        make_model("kriging")
+    with pytest.raises(ConfigError):
+        make_model("nearest", bogus=1)
+    with pytest.raises(NotFittedError):
+        CurlFreeGP().predict(np.zeros((2, 2)))
+    with pytest.raises(DataError, match="shape"):
+        ConstantMap().fit(np.zeros((5, 3)), np.zeros((5, 3)))
+    with pytest.raises(DataError, match="non-finite"):
+        NearestMap().fit(np.array([[0.0, 0.0], [1.0, np.nan]]), np.zeros((2, 3)))
+    # __init__ only stores parameters
+    m = CurlFreeGP(n_basis=10, length_scale_m=-3)
+    assert m.get_params()["length_scale_m"] == -3
+    with pytest.raises(ConfigError, match="length_scale_m"):
+        m.fit(np.random.default_rng(0).uniform(size=(20, 2)), np.zeros((20, 3)))
+
+
+def test_marginal_likelihood_gradient_matches_finite_differences():
+    # analytic gradient (expectation identities) against central differences
+    from mapping import _linmodel
+
+    rng = np.random.default_rng(8)
+    xy = rng.uniform(0, 8, size=(200, 2))
+    g = rng.integers(0, 4, 200)
+    rot = Rotation.random(200, random_state=3).as_matrix()
+    b = rng.normal(size=(200, 3)) * 3 + 10
+    model = CurlFreeGP(n_basis=60, optimize=False, between_walk=False, offset_ut=1.0, **HYPER).fit(
+        xy, b, groups=g, rotations=rot
+    )
+    st = _linmodel.accumulate(
+        lambda q: model._design(model.basis_, q), model.idx_, xy, b, groups=g, rotations=rot, n_walks=4
+    )
+    prior = model._prior_var(model.hyper_)
+    noise = np.array([0.5, 0.3])
+    val, dp, dn, do = _linmodel.log_marginal_and_grad(st, prior, noise, 1.7)
+    assert val == pytest.approx(_linmodel.log_marginal(st, prior, noise, 1.7), rel=1e-10)
+    h = 1e-5
+    for k in rng.choice(prior.size, 6, replace=False):
+        e = np.zeros(prior.size)
+        e[k] = h
+        num = (
+            _linmodel.log_marginal(st, prior * np.exp(e), noise, 1.7)
+            - _linmodel.log_marginal(st, prior * np.exp(-e), noise, 1.7)
+        ) / (2 * h)
+        assert dp[k] == pytest.approx(num, rel=1e-4, abs=1e-6)
+    for j in range(2):
+        e = np.zeros(2)
+        e[j] = h
+        num = (
+            _linmodel.log_marginal(st, prior, noise * np.exp(e), 1.7)
+            - _linmodel.log_marginal(st, prior, noise * np.exp(-e), 1.7)
+        ) / (2 * h)
+        assert dn[j] == pytest.approx(num, rel=1e-5)
+    num = (
+        _linmodel.log_marginal(st, prior, noise, 1.7 * np.exp(h)) - _linmodel.log_marginal(st, prior, noise, 1.7 * np.exp(-h))
+    ) / (2 * h)
+    assert do == pytest.approx(num, rel=1e-5)
+    # chain rule of the prior's dependence on magnitude and length scale
+    for name in ("magnitude_ut", "length_scale_m", "constant_ut"):
+        hp = dict(model.hyper_)
+        hm = dict(model.hyper_)
+        hp[name] *= np.exp(h)
+        hm[name] *= np.exp(-h)
+        num = (np.log(model._prior_var(hp)) - np.log(model._prior_var(hm))) / (2 * h)
+        np.testing.assert_allclose(model._dlog_prior(model.hyper_)[name], num, rtol=1e-5, atol=1e-6)
