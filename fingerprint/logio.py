@@ -41,6 +41,7 @@ from __future__ import annotations
 
 import gzip
 import io
+import zlib
 import math
 import warnings
 from dataclasses import dataclass, field
@@ -86,22 +87,34 @@ _BOOL_WORDS = {"yes", "no", "true", "false", "1", "0"}
 # --------------------------------------------------------------------------
 def _read_text(path):
     path = Path(path)
-    try:
-        if path.name.endswith(".gz"):
-            with gzip.open(path, "rb") as fh:
-                raw = fh.read()
-        else:
-            raw = path.read_bytes()
-    except (OSError, EOFError) as err:
-        if isinstance(err, (FileNotFoundError, IsADirectoryError, PermissionError)):
-            raise
-        raise FormatError(f"cannot read the file: {err}", path=path) from err
+    if path.name.endswith(".gz"):
+        raw = path.read_bytes()
+        d = zlib.decompressobj(wbits=31)
+        try:
+            data = d.decompress(raw)
+            data += d.flush()
+            complete = d.eof
+        except zlib.error as err:
+            raise FormatError(f"expected a gzip file, the data are corrupt: {err}", path=path, line=1, column=1) from err
+        if not complete:
+            line = data.count(b"\n") + 1
+            col = len(data) - (data.rfind(b"\n") + 1) + 1
+            raise FormatError(
+                "the gzip file ends early (truncated); expected its end-of-stream marker",
+                path=path,
+                line=line,
+                column=col,
+            )
+        raw = data
+    else:
+        raw = path.read_bytes()
     try:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError as err:
         line = raw[: err.start].count(b"\n") + 1
+        col = err.start - (raw.rfind(b"\n", 0, err.start) + 1) + 1
         raise FormatError(
-            f"expected UTF-8 text, got byte 0x{raw[err.start]:02x}", path=path, line=line
+            f"expected UTF-8 text, got byte 0x{raw[err.start]:02x}", path=path, line=line, column=col
         ) from err
     return text
 
@@ -246,6 +259,13 @@ def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names):
         line = line.rstrip("\r")
         if not line.strip():
             continue
+        if line.lstrip().startswith("#"):
+            raise FormatError(
+                "expected a data row; '#' metadata lines must come before the header",
+                path=path,
+                line=lineno,
+                column=1,
+            )
         cells = line.split(",")
         if len(cells) != ncol:
             col = min(len(cells), ncol) + 1 if len(cells) < ncol else ncol + 1
@@ -321,7 +341,7 @@ def _check_time(t, linenos, first_line, path, col, *, strict=True, on_duplicate=
     if back.size:
         r = back[0] + 1
         raise FormatError(
-            f"time goes back: expected t > {t[r - 1]!r} (previous row), got {t[r]!r}",
+            f"time goes back: expected t > {t[r - 1]:.6g} (previous row), got {t[r]:.6g}",
             path=path,
             line=_line_of(r, linenos, first_line),
             column=col,
@@ -334,7 +354,7 @@ def _check_time(t, linenos, first_line, path, col, *, strict=True, on_duplicate=
             else:
                 r = dup[0] + 1
                 raise FormatError(
-                    f"duplicate time stamp {t[r]!r} (same as line "
+                    f"duplicate time stamp {t[r]:.6g} (same as line "
                     f"{_line_of(r - 1, linenos, first_line)}); expected strictly increasing t "
                     "(read with on_duplicate='keep-first' to drop repeats)",
                     path=path,

@@ -1,0 +1,150 @@
+"""Walk-log, checkpoint and track I/O: the reader against Python's csv
+module (reference parser) on a real walk, the fast numpy path against the
+exact line-by-line scan (its slow twin), and write/read round trips."""
+
+import csv
+import gzip
+import io
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from fingerprint import logio
+from fingerprint.logio import (
+    find_gaps,
+    read_checkpoints,
+    read_track,
+    read_walk_log,
+    write_checkpoints,
+    write_track,
+    write_walk_log,
+)
+from fingerprint.records import Checkpoints, Track, WalkLog
+
+REAL = Path(__file__).parent / "data" / "real" / "siteA" / "F1"
+
+
+def _csv_reference(path):
+    """Independent parse with the csv module (reference: Python stdlib)."""
+    with gzip.open(path, "rt", encoding="utf-8") as fh:
+        lines = [ln for ln in fh if not ln.startswith("#")]
+    rows = list(csv.reader(io.StringIO("".join(lines))))
+    names, body = rows[0], rows[1:]
+    return names, np.array([[float(c) for c in r] for r in body])
+
+
+def test_real_walk_matches_csv_module():
+    path = REAL / "walk_001.log.csv.gz"
+    log = read_walk_log(path)
+    names, ref = _csv_reference(path)
+    col = {n: i for i, n in enumerate(names)}
+    np.testing.assert_array_equal(log.t, ref[:, col["t"]])
+    np.testing.assert_array_equal(log.acc, ref[:, [col["ax"], col["ay"], col["az"]]])
+    np.testing.assert_array_equal(log.gyro, ref[:, [col["gx"], col["gy"], col["gz"]]])
+    np.testing.assert_array_equal(log.mag, ref[:, [col["mx"], col["my"], col["mz"]]])
+    np.testing.assert_array_equal(log.mag_raw, ref[:, [col["mx_raw"], col["my_raw"], col["mz_raw"]]])
+    assert log.odom is None
+    assert log.meta["platform"] == "handheld" and log.meta["floor"] == "F1"
+    assert log.magnetometer_calibrated
+
+
+@pytest.mark.parametrize(
+    "body",
+    [
+        "0,1,2\n0.5,3,4\n",
+        "0,1e-3,-2.5E2\n1,  3,4\r\n2,5,6",
+        "0,+1,.5\n1,-0,7.\n",
+    ],
+)
+def test_fast_path_equals_slow_scan(body):
+    """numpy fast path vs the exact scan (slow twin) on clean bodies."""
+    fast = logio._fast_parse(body, 3)
+    slow, _ = logio._slow_parse(body, 1, 3, "x", allow_empty_cols=[True] * 3, names=["a", "b", "c"])
+    assert fast is not None
+    np.testing.assert_array_equal(fast, slow)
+
+
+@pytest.mark.parametrize("body", ["0,1,\n1,2,3\n", "0,1,2\n\n1,2,3\n", "0,1,2,3\n1,2\n", "0,x,2\n"])
+def test_fast_path_declines_what_it_cannot_read(body):
+    assert logio._fast_parse(body, 3) is None
+
+
+def _synthetic_log(n=500, *, odom=True, missing=True):
+    rng = np.random.default_rng(3)
+    t = np.cumsum(rng.uniform(0.009, 0.011, n))
+    acc = rng.normal(0, 0.3, (n, 3)) + [0, 0, 9.81]
+    gyro = rng.normal(0, 0.05, (n, 3))
+    mag = rng.normal(0, 1, (n, 3)) + [15, 10, -42]
+    if missing:
+        mag[::7] = np.nan
+    od = np.column_stack([rng.uniform(0, 0.01, n), np.zeros(n), rng.normal(0, 0.002, n)]) if odom else None
+    return WalkLog(t=t, acc=acc, gyro=gyro, mag=mag, mag_raw=mag + [100, -50, 300], odom=od,
+                   meta={"platform": "robot", "rate_hz": "100", "magnetometer_calibrated": "no"})
+
+
+@pytest.mark.parametrize("suffix", [".log.csv", ".log.csv.gz"])
+def test_walk_log_round_trip(tmp_path, suffix):
+    log = _synthetic_log()
+    p = tmp_path / ("walk" + suffix)
+    write_walk_log(p, log)
+    back = read_walk_log(p)
+    for name in ("t", "acc", "gyro", "mag", "mag_raw", "odom"):
+        a, b = getattr(log, name), getattr(back, name)
+        np.testing.assert_array_equal(np.isnan(a), np.isnan(b))
+        np.testing.assert_allclose(a, b, rtol=1e-8, atol=1e-12, equal_nan=True)
+    assert back.meta == log.meta and back.platform == "robot"
+    # no temporary file left behind by the atomic writer
+    assert sorted(x.name for x in tmp_path.iterdir()) == [p.name]
+    if suffix.endswith(".gz"):
+        # reproducible gzip (fixed time stamp): the same bytes twice
+        q = tmp_path / ("again" + suffix)
+        write_walk_log(q, log)
+        assert q.read_bytes() == p.read_bytes()
+
+
+def test_checkpoints_round_trip(tmp_path):
+    cps = Checkpoints(t=np.array([0.0, 3.5, 3.5, 9.0]), xy=np.array([[0, 1], [2.5, 3], [2.5, 3], [-1, 7.25]]),
+                      floor=np.array(["G", "G", "G", "L1"]), label=np.array(["door, east", "a", "b", "stairs"]))
+    p = tmp_path / "w.checkpoints.csv"
+    write_checkpoints(p, cps)
+    back = read_checkpoints(p)
+    np.testing.assert_array_equal(back.t, cps.t)
+    np.testing.assert_array_equal(back.xy, cps.xy)
+    assert list(back.floor) == list(cps.floor) and list(back.label) == list(cps.label)
+
+
+def test_real_checkpoints():
+    cps = read_checkpoints(REAL / "walk_001.checkpoints.csv")
+    assert cps.n == 7 and cps.t[0] == 0.0
+    assert cps.xy[1].tolist() == [75.3718, 94.8006]
+    assert set(cps.floor) == {"F1"} and cps.label is None
+
+
+def test_track_round_trip(tmp_path):
+    tr = Track(t=np.arange(6.0), xy=np.column_stack([np.arange(6.0), np.ones(6)]), heading_rad=np.linspace(0, 1, 6),
+               extra={"sigma_m": np.array([1, 2, np.nan, 4, 5, 6.0])})
+    p = tmp_path / "w.track.csv.gz"
+    write_track(p, tr)
+    back = read_track(p)
+    np.testing.assert_allclose(back.xy, tr.xy)
+    np.testing.assert_allclose(back.heading_rad, tr.heading_rad)
+    np.testing.assert_allclose(back.extra["sigma_m"], tr.extra["sigma_m"], equal_nan=True)
+
+
+def test_track_time_must_increase(tmp_path):
+    p = tmp_path / "bad.track.csv"
+    p.write_text("t,x,y\n0,0,0\n1,0,0\n0.5,1,1\n")
+    from fingerprint.errors import FormatError
+
+    with pytest.raises(FormatError) as exc:
+        read_track(p)
+    assert (exc.value.line, exc.value.column) == (4, 1)
+
+
+def test_find_gaps_brute_force_twin():
+    rng = np.random.default_rng(0)
+    t = np.cumsum(rng.choice([0.02, 0.5, 1.2, 3.0], size=300, p=[0.9, 0.05, 0.03, 0.02]))
+    g = find_gaps(t, min_gap_s=1.0)
+    ref = [(i, t[i], t[i + 1]) for i in range(len(t) - 1) if t[i + 1] - t[i] > 1.0]
+    np.testing.assert_array_equal(g, np.array(ref).reshape(-1, 3))
