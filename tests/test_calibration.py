@@ -1,0 +1,133 @@
+"""Magnetometer calibration: the Li & Griffiths (2004) ellipsoid fit on a
+known synthetic hard/soft-iron distortion, checked against the truth and
+against a geometric least-squares fit with scipy.optimize (reference
+library); the planar fallback; the calibration file."""
+
+import json
+
+import numpy as np
+import pytest
+from scipy.optimize import least_squares
+from scipy.spatial.transform import Rotation
+
+from fingerprint.calibration import Calibration, circle_fit, fit_calibration, rotation_coverage
+from fingerprint.errors import FormatError
+from mapping.cli import main
+
+B_EARTH = np.array([18.0, 6.0, -44.0])  # µT, a mid-latitude field (from memory)
+F = float(np.linalg.norm(B_EARTH))
+# symmetric soft-iron distortion and hard-iron offset (the usual m = S b + o
+# model; common practice, no source)
+S = np.array([[1.06, 0.04, -0.03], [0.04, 0.93, 0.05], [-0.03, 0.05, 1.01]])
+O = np.array([42.0, -135.0, 260.0])
+
+
+def _distorted(n=4000, noise=0.5, seed=0):
+    rng = np.random.default_rng(seed)
+    rot = Rotation.random(n, random_state=seed)
+    b = rot.inv().apply(B_EARTH)  # field in the device frame
+    return b @ S.T + O + rng.normal(0, noise, (n, 3))
+
+
+def test_ellipsoid_recovers_offset_and_matrix():
+    m = _distorted()
+    cal, rep = fit_calibration(m, field_ut=F)
+    assert rep["method"] == "ellipsoid"
+    # acceptance: offset within 0.5 µT, matrix within 2 % (of S^-1)
+    assert np.abs(cal.offset_ut - O).max() < 0.5
+    Winv = np.linalg.inv(S)
+    assert np.abs(cal.matrix - Winv).max() / np.abs(Winv).max() < 0.02
+    assert rep["b_spread_after_ut"] < 0.1 * rep["b_spread_before_ut"]
+    assert rep["b_mean_after_ut"] == pytest.approx(F, rel=0.01)
+    assert rep["coverage"]["sphere_fraction"] > 0.9
+    assert np.isfinite(rep["condition_number"]) and rep["condition_number"] > 1
+
+
+def test_ellipsoid_matches_scipy_geometric_fit():
+    """Reference: geometric fit | W (m - o) | = F with scipy.optimize.least_squares
+    over a symmetric W (6 parameters) and o (3)."""
+    m = _distorted(n=1500, noise=0.3, seed=5)
+    cal, _ = fit_calibration(m, field_ut=F)
+
+    def resid(p):
+        W = np.array([[p[0], p[3], p[4]], [p[3], p[1], p[5]], [p[4], p[5], p[2]]])
+        return np.linalg.norm((m - p[6:]) @ W.T, axis=1) - F
+
+    p0 = np.r_[1, 1, 1, 0, 0, 0, m.mean(axis=0)]
+    ref = least_squares(resid, p0).x
+    Wref = np.array([[ref[0], ref[3], ref[4]], [ref[3], ref[1], ref[5]], [ref[4], ref[5], ref[2]]])
+    np.testing.assert_allclose(cal.offset_ut, ref[6:], atol=0.3)
+    np.testing.assert_allclose(cal.matrix, Wref, atol=0.01)
+
+
+def test_without_field_keeps_volume():
+    cal, rep = fit_calibration(_distorted(seed=2))
+    assert np.linalg.det(cal.matrix) == pytest.approx(1.0, abs=1e-9)
+    assert rep["b_spread_after_ut"] < 0.1 * rep["b_spread_before_ut"]
+
+
+def test_planar_data_takes_circle_fallback_and_says_so():
+    rng = np.random.default_rng(1)
+    yaw = rng.uniform(0, 2 * np.pi, 3000)
+    rot = Rotation.from_rotvec(np.column_stack([np.zeros_like(yaw), np.zeros_like(yaw), yaw]))
+    m = rot.inv().apply(B_EARTH) + O + rng.normal(0, 0.5, (3000, 3))
+    cal, rep = fit_calibration(m)
+    assert rep["method"] == "circle-fallback"
+    assert "one axis only" in rep["message"] and "not identifiable" in rep["message"]
+    # the in-plane (x, y) offset is identified; z along the normal is not (left 0)
+    assert np.abs(cal.offset_ut[:2] - O[:2]).max() < 0.5
+    assert abs(cal.offset_ut[2]) < 1.0
+    np.testing.assert_array_equal(cal.matrix, np.eye(3))
+    assert rep["coverage"]["spread"][2] < 0.05
+    assert rep["arc_fraction"] == 1.0
+
+
+def test_circle_fit_against_three_point_circle():
+    # the circle through (0,0), (4,0), (0,2) has centre (2,1), radius sqrt(5)
+    # (elementary geometry: perpendicular bisectors)
+    c, r = circle_fit(np.array([[0, 0], [4, 0], [0, 2.0]]))
+    np.testing.assert_allclose(c, [2, 1], atol=1e-12)
+    assert r == pytest.approx(np.sqrt(5), abs=1e-12)
+
+
+def test_rotation_coverage_extremes():
+    full = Rotation.random(5000, random_state=1).apply([1, 0, 0])
+    assert rotation_coverage(full)["sphere_fraction"] > 0.95
+    ev = rotation_coverage(full)["spread"]
+    assert max(ev) - min(ev) < 0.05 and sum(ev) == pytest.approx(1.0)
+    ring = np.column_stack([np.cos(np.linspace(0, 6, 500)), np.sin(np.linspace(0, 6, 500)), np.zeros(500)])
+    assert rotation_coverage(ring)["sphere_fraction"] < 0.3  # a great circle crosses ~1/5 of 100 cells
+
+
+def test_json_round_trip_and_errors(tmp_path):
+    cal, _ = fit_calibration(_distorted(seed=3), field_ut=F, source="mag_raw")
+    p = tmp_path / "calibration.json"
+    cal.save(p)
+    back = Calibration.from_json(p)
+    np.testing.assert_array_equal(back.offset_ut, cal.offset_ut)
+    np.testing.assert_array_equal(back.matrix, cal.matrix)
+    assert back.source == "mag_raw"
+    m = _distorted(n=10, seed=4)
+    np.testing.assert_allclose(back.apply(m), (m - cal.offset_ut) @ cal.matrix.T)
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps({"format": "lodemap-calibration", "version": 1, "offset_ut": [1, 2], "matrix": []}))
+    with pytest.raises(FormatError):
+        Calibration.from_json(bad)
+    bad.write_text("{not json")
+    with pytest.raises(FormatError) as exc:
+        Calibration.from_json(bad)
+    assert exc.value.line == 1
+
+
+def test_cli_calibrate_on_real_walk(tmp_path, capsys):
+    from pathlib import Path
+
+    log = Path(__file__).parent / "data" / "real" / "siteA" / "F1" / "walk_001.log.csv.gz"
+    out = tmp_path / "calibration.json"
+    assert main(["calibrate", str(log), "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    obj = json.loads(out.read_text())
+    assert obj["source"] == "mag_raw"  # the raw columns are present
+    # a phone carried flat: rotations about one axis only -> fallback, said so
+    assert obj["report"]["method"] == "circle-fallback" and "circle-fallback" in text
+    assert obj["report"]["b_spread_after_ut"] < obj["report"]["b_spread_before_ut"]
