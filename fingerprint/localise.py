@@ -58,7 +58,7 @@ class Localiser:
     start_sigma_m : float, spread of the start in tracking mode
     rng : numpy.random.Generator or int seed or None
     sensor_noise_ut : float, 1-sigma noise of one magnetometer sample (µT);
-        ``settings.sensor_noise_ut`` wins when set; default 1.0
+        ``settings.sensor_noise_ut`` wins when set; default (or NaN) 1.0
     """
 
     def __init__(self, fmap, *, settings=None, start_xy=None, start_sigma_m=1.0, rng=None, sensor_noise_ut=None):
@@ -69,7 +69,7 @@ class Localiser:
             raise DataError(f"the map of floor {fmap.floor!r} has an empty graph: nowhere to put particles")
         noise = self.settings.sensor_noise_ut
         if noise is None:
-            noise = 1.0 if sensor_noise_ut is None else float(sensor_noise_ut)
+            noise = 1.0 if sensor_noise_ut is None or not math.isfinite(sensor_noise_ut) else float(sensor_noise_ut)
         if start_xy is not None:
             start_xy = np.asarray(start_xy, dtype=float).reshape(-1)
             if start_xy.shape != (2,) or not np.all(np.isfinite(start_xy)):

@@ -1,8 +1,8 @@
 """Motion model on the floor graph, and the filter's fast map lookup.
 
-Sources: the Gumbel-max trick (E. J. Gumbel 1954; C. Maddison et al.,
-"A* sampling", NIPS 2014) makes argmax(score + Gumbel) a draw from
-softmax(score); von Mises agreement exp(kappa cos(d)) (Mardia & Jupp,
+Sources: an inverse-CDF draw over the options must give the softmax
+probabilities of their scores (common practice, no source), checked here by
+chi-square against the analytic values; von Mises agreement exp(kappa cos(d)) (Mardia & Jupp,
 Directional Statistics, 2000); neighbour lists checked against networkx
 (reference library); bilinear lookup checked against FieldMap.lookup, which
 tests/test_fieldmap.py checks against scipy's RegularGridInterpolator.

@@ -15,7 +15,8 @@ direction of option ``j``::
 with prior 1 for going on and ``reverse_prior`` for turning back (priors are
 scaled so the best-placed option has prior 1: at a dead end turning back is
 the only way and is not penalised). One option is drawn with probability
-``softmax(s)`` (Gumbel-max, vectorised over a padded incidence table) and,
+``softmax(s)`` (inverse CDF with one uniform per particle, vectorised over
+a padded incidence table) and,
 as the importance weight of that optimal proposal, the particle's log-weight
 gains ``min(0, logsumexp(s))``: nothing when some edge follows the heading,
 a penalty when none does (a particle that cannot follow the walker).
@@ -95,47 +96,51 @@ def move(state, length_m, heading_rad, *, graph, tables, settings, rng, earth_to
     """
     s = settings
     n = state.n
+    z = rng.standard_normal((4, n))
     # nuisance random walks
     hoff = state.heading_offset_rad
     if s.heading_rw_rad > 0:
-        hoff = hoff + s.heading_rw_rad * rng.standard_normal(n)
+        hoff = hoff + s.heading_rw_rad * z[0]
     scale = state.scale
     if s.scale_rw > 0:
-        scale = np.clip(scale + s.scale_rw * rng.standard_normal(n), 0.5, 1.5)
+        scale = np.clip(scale + s.scale_rw * z[1], 0.5, 1.5)
     hp = heading_rad + earth_to_plan_rad + hoff
     ch, sh = np.cos(hp), np.sin(hp)
     dist = length_m * scale
     if s.length_sigma_frac > 0:
-        dist = dist * (1.0 + s.length_sigma_frac * rng.standard_normal(n))
+        dist = dist * (1.0 + s.length_sigma_frac * z[2])
     if s.length_sigma_m > 0:
-        dist = dist + s.length_sigma_m * rng.standard_normal(n)
+        dist = dist + s.length_sigma_m * z[3]
     remaining = np.maximum(dist, 0.0)
 
     kappa = s.heading_kappa
     lp_rev = _log_prior(s.reverse_prior)
-    log_lik = np.zeros(n)
     edge = state.edge.copy()
     off = state.offset_m.copy()
     direc = state.direction.copy()
 
-    # decision 1: go on or turn back on the current edge
-    cosf = (ch * graph.unit[edge, 0] + sh * graph.unit[edge, 1]) * direc
-    s_on = kappa * (cosf - 1.0)
-    s_back = kappa * (-cosf - 1.0) + lp_rev
-    p_back = np.exp(s_back - np.logaddexp(s_on, s_back))
-    back = rng.random(n) < p_back
+    # decision 1: go on or turn back on the current edge.
+    # s_on = kappa (c - 1), s_back = kappa (-c - 1) + log p_rev, so with
+    # x = exp(s_back - s_on): P(back) = x / (1 + x), lse = s_on + log1p(x)
+    unit = graph.unit[edge]
+    cosf = (ch * unit[:, 0] + sh * unit[:, 1]) * direc
+    x = np.exp(lp_rev - 2.0 * kappa * cosf)
+    u = rng.random(n)
+    back = u * (1.0 + x) < x
     direc = np.where(back, -direc, direc).astype(np.int8)
-    log_lik += np.minimum(0.0, np.logaddexp(s_on, s_back))
+    log_lik = np.minimum(0.0, kappa * (cosf - 1.0) + np.log1p(x))
 
-    # travel, choosing an edge at each node reached
+    # travel, choosing an edge at each node reached (inverse-CDF draw over
+    # the padded incident edges)
     moving = np.flatnonzero(remaining > 0)
+    lengths = graph.length_m
     for _ in range(max_hops):
         if moving.size == 0:
             break
         e = edge[moving]
         o = off[moving]
         dr = direc[moving]
-        el = graph.length_m[e]
+        el = lengths[e]
         to_end = np.where(dr > 0, el - o, o)
         rem = remaining[moving]
         stp = np.minimum(rem, to_end)
@@ -155,10 +160,12 @@ def move(state, length_m, heading_rad, *, graph, tables, settings, rng, earth_to
         prior = prior - prior.max(axis=1, keepdims=True)
         cosang = ch[moving, None] * tables.out_cos[node] + sh[moving, None] * tables.out_sin[node]
         score = kappa * (cosang - 1.0) + prior
-        slot = np.argmax(score + rng.gumbel(size=score.shape), axis=1)
         top = score.max(axis=1)
-        lse = top + np.log(np.sum(np.exp(score - top[:, None]), axis=1))
-        log_lik[moving] += np.minimum(0.0, lse)
+        cdf = np.cumsum(np.exp(score - top[:, None]), axis=1)
+        total = cdf[:, -1]
+        slot = np.sum(cdf < rng.random(moving.size)[:, None] * total[:, None], axis=1)
+        slot = np.minimum(slot, cand.shape[1] - 1)
+        log_lik[moving] += np.minimum(0.0, top + np.log(total))
         edge[moving] = cand[np.arange(moving.size), slot]
         direc[moving] = tables.out_dir[node, slot]
         off[moving] = tables.start_offset_m[node, slot]
