@@ -18,7 +18,9 @@ closed, vectorised form, run offline over a whole walk:
    difference from the gyro heading is smoothed as a unit phasor with a
    Gaussian window of ``mag_time_constant_s`` (default 20 s), each sample
    weighted down where the field magnitude or dip departs from the walk's
-   median (a local disturbance). Only this slowly varying correction is
+   median (a local disturbance), and then, in ``robust_passes`` reweighting
+   passes, where the azimuth disagrees with the smoothed correction by much
+   more than ``robust_scale_rad``. Only this slowly varying correction is
    added to the gyro heading: a disturbance lasting a few seconds moves the
    heading by a small fraction of its angle, while gyro drift over minutes
    is removed. This is the frequency split of a complementary filter, with
@@ -75,6 +77,8 @@ class AttitudeSettings:
     still_acc_sd : max sd of |a| (m/s²) in a still window
     still_gyro_rad_s : max |ω| (rad/s) in a still window
     disturbance_ut : scale (µT) of the magnitude/dip down-weighting
+    robust_passes : reweighting passes of the heading correction
+    robust_scale_rad : scale of the azimuth residual down-weighting
     """
 
     tilt_cutoff_hz: float = 0.4
@@ -83,6 +87,8 @@ class AttitudeSettings:
     still_acc_sd: float = 0.12
     still_gyro_rad_s: float = 0.08
     disturbance_ut: float = 8.0
+    robust_passes: int = 2
+    robust_scale_rad: float = 0.25
 
 
 @dataclass(frozen=True, eq=False)
@@ -220,12 +226,24 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
             corr[:] = d[k]
             meta["heading_reference"] = "first magnetometer azimuth, gyro only after"
         elif wgt.sum() > 0:
-            sig = s.mag_time_constant_s * fs
-            zr = gaussian_filter1d(wgt * np.cos(d), sig, mode="nearest")
-            zi = gaussian_filter1d(wgt * np.sin(d), sig, mode="nearest")
-            corr = np.arctan2(zi, zr)
-            # unwrap the (slow) correction so the heading stays continuous
-            corr = np.unwrap(corr)
+            # the correction is slow: smooth on 0.25 s bins (sums of the
+            # weighted phasors), then interpolate back to the samples
+            bw = 0.25
+            b = np.floor((t - t[0]) / bw).astype(np.int64)
+            nb = int(b[-1]) + 1
+            tb = t[0] + (np.arange(nb) + 0.5) * bw
+            sig = s.mag_time_constant_s / bw
+            w_it = wgt
+            for _ in range(1 + s.robust_passes):
+                zr = gaussian_filter1d(np.bincount(b, w_it * np.cos(d), nb), sig, mode="nearest")
+                zi = gaussian_filter1d(np.bincount(b, w_it * np.sin(d), nb), sig, mode="nearest")
+                cb = np.unwrap(np.arctan2(zi, zr))
+                corr = np.interp(t, tb, cb)
+                # iteratively reweighted: azimuths that disagree with the
+                # gyro-propagated heading by much more than the residual
+                # scale are disturbances, not drift
+                res = np.angle(np.exp(1j * (d - corr)))
+                w_it = wgt * np.exp(-0.5 * (res / s.robust_scale_rad) ** 2)
             meta["heading_reference"] = f"magnetometer, smoothed over {s.mag_time_constant_s:g} s"
             meta["mag_weight_mean"] = float(wgt.mean())
     else:
