@@ -16,10 +16,12 @@ Method
    dropped.
 2. *Lattice.* Spaces wider than ``wide_threshold_m`` are found by a
    morphological opening of free space with a disc of that diameter
-   (shapely buffers); a square lattice of ``lattice_spacing_m`` covers them,
-   keeping ``wall_margin_m`` from the walls. Centre lines inside those spaces
-   are replaced by the lattice.
-3. *Joining.* Centre-line ends are tied to nearby lattice nodes; remaining
+   (shapely buffers); a regular lattice (triangular by default) of
+   ``lattice_spacing_m`` covers them, keeping ``wall_margin_m`` from the
+   walls. Centre lines are replaced by the lattice where it covers them
+   (within 0.75 spacing of a lattice node), and kept elsewhere.
+3. *Joining.* Centre-line ends are tied to the nearest lattice node in
+   reach (a corridor opening into a hall is entered there); remaining
    pieces are joined by the shortest straight links that lie inside free
    space (Kruskal order); pieces in free-space parts that touch nowhere (the
    drawing closes them off, e.g. doors drawn shut) are tied by the shortest
@@ -405,6 +407,36 @@ def _lattice(free, wide, *, spacing_m, wall_margin_m, kind="triangular"):
 # --------------------------------------------------------------------------
 # joining
 # --------------------------------------------------------------------------
+def _tie_ends(xy, edges, sk_e, n_sk, la_e, free, *, radius_m, k=8):
+    """Link each centre-line end (degree 1 among centre-line edges) to the
+    nearest lattice node within ``radius_m`` whose link lies inside free
+    space. ``xy`` holds the ``n_sk`` centre-line nodes first."""
+    if len(sk_e) == 0 or len(la_e) == 0:
+        return edges
+    deg = np.bincount(sk_e.ravel(), minlength=n_sk)
+    leaves = np.nonzero(deg == 1)[0]
+    if len(leaves) == 0:
+        return edges
+    lat = np.unique(la_e) + n_sk
+    dist, idx = cKDTree(xy[lat]).query(xy[leaves], k=min(k, len(lat)), distance_upper_bound=radius_m)
+    dist = dist.reshape(len(leaves), -1)
+    idx = idx.reshape(len(leaves), -1)
+    done = np.zeros(len(leaves), dtype=bool)
+    new = []
+    for col in range(dist.shape[1]):
+        todo = np.nonzero(~done & np.isfinite(dist[:, col]))[0]
+        if len(todo) == 0:
+            break
+        a = leaves[todo]
+        b = lat[idx[todo, col]]
+        ok = _segments_inside(free, xy[a], xy[b])
+        new.extend(zip(a[ok], b[ok]))
+        done[todo[ok]] = True
+    if new:
+        edges = np.vstack([edges, np.array(new, dtype=np.int64)])
+    return edges
+
+
 def _join_local(xy, edges, free, *, radius_m):
     """Kruskal over candidate links between different pieces, shortest
     first, keeping links inside free space."""
@@ -536,19 +568,14 @@ def build_graph_with_report(
     free = shapely.union_all(kept)
     shapely.prepare(free)
 
-    # 1. centre lines, cut where the lattice takes over
+    # 1. centre lines
     sk_xy, sk_r, sk_e = _medial_axis(
         free, boundary_step_m=boundary_step_m, min_clearance_m=min_clearance_m,
         spur_factor=spur_factor, spur_extra_m=spur_extra_m,
     )
-    r_wide = 0.5 * wide_threshold_m
-    if np.isfinite(wide_threshold_m) and len(sk_e):
-        narrow = sk_r < r_wide
-        sk_e = sk_e[narrow[sk_e[:, 0]] & narrow[sk_e[:, 1]]]
-    sk_xy, sk_e = _simplify_chains(sk_xy, sk_e, free, tolerance_m=simplify_m)
-    rep.centreline_length_m = float(_lengths(sk_xy, sk_e).sum()) if len(sk_e) else 0.0
 
     # 2. lattice over wide spaces
+    r_wide = 0.5 * wide_threshold_m
     if np.isfinite(wide_threshold_m):
         wide = shapely.buffer(shapely.buffer(free, -r_wide, quad_segs=8), r_wide, quad_segs=8)
         wide = shapely.intersection(wide, free)
@@ -557,8 +584,22 @@ def build_graph_with_report(
         la_xy, la_e = np.zeros((0, 2)), np.zeros((0, 2), dtype=np.int64)
     rep.lattice_length_m = float(_lengths(la_xy, la_e).sum()) if len(la_e) else 0.0
 
+    # 3. centre lines give way where the lattice covers them (a vertex
+    # within 0.75 spacing of a lattice node), so passages of about the
+    # threshold width, too narrow for the opening, keep their centre line
+    if len(la_e) and len(sk_e):
+        cover = cKDTree(la_xy[np.unique(la_e)]).query(sk_xy, distance_upper_bound=0.75 * lattice_spacing_m)[0]
+        keep = ~np.isfinite(cover)
+        sk_e = sk_e[keep[sk_e[:, 0]] & keep[sk_e[:, 1]]]
+    sk_xy, sk_e = _simplify_chains(sk_xy, sk_e, free, tolerance_m=simplify_m)
+    rep.centreline_length_m = float(_lengths(sk_xy, sk_e).sum()) if len(sk_e) else 0.0
+
     xy = np.vstack([sk_xy, la_xy])
     edges = np.vstack([sk_e, la_e + len(sk_xy)]).astype(np.int64)
+    # centre-line ends near the lattice are tied to it (a corridor opening
+    # into a hall), even when the two are already joined elsewhere
+    join_r = max(2.0 * lattice_spacing_m, wide_threshold_m if np.isfinite(wide_threshold_m) else 3.0)
+    edges = _tie_ends(xy, edges, sk_e, len(sk_xy), la_e, free, radius_m=join_r)
     # keep only nodes that belong to an edge
     used = np.unique(edges)
     if len(used) == 0:
@@ -568,8 +609,7 @@ def build_graph_with_report(
     xy, edges = xy[used], remap[edges]
     xy, edges, _ = _dedupe(xy, edges)
 
-    # 3. join pieces: inside free space first, then bridges
-    join_r = max(2.0 * lattice_spacing_m, wide_threshold_m if np.isfinite(wide_threshold_m) else 3.0)
+    # 4. join pieces: inside free space first, then bridges
     edges = _join_local(xy, edges, free, radius_m=join_r)
     flags = np.zeros(len(edges), dtype=bool)
     edges, flags = _join_bridges(xy, edges, flags, free, max_bridge_m=max_bridge_m)
@@ -589,7 +629,7 @@ def build_graph_with_report(
         remap[used] = np.arange(len(used))
         xy, edges = xy[used], remap[edges]
 
-    # 4. subdivide
+    # 5. subdivide
     xy, edges, flags = _subdivide(xy, edges, max_edge_m, flags)
     graph = FloorGraph.from_arrays(xy, edges)
     inside = _segments_inside(free, xy[edges[:, 0]], xy[edges[:, 1]])

@@ -136,6 +136,31 @@ def test_hall_lattice_covers_width_and_avoids_pillars(kind, max_deg):
     assert np.median(d) < 0.5 * np.sqrt(2.0) / 2 + 0.05
 
 
+@pytest.mark.parametrize("aisle_w", [2.4, 2.9, 3.0, 3.1, 3.6])
+def test_aisles_near_the_threshold_width_are_entered_from_both_ends(aisle_w):
+    # a comb: a 30 x 6 m concourse below, a 30 x 4 m one above, joined by
+    # three aisles between 12 m long shelves. Walking from the bottom of an
+    # aisle to the concourse just below it must not detour through the top:
+    # on the graph the route is at most 1.5 x the straight distance + 1 m
+    gap = 2.0 * aisle_w
+    xs = [3.0 + i * (aisle_w + gap) for i in range(3)]
+    shelves = [feat("obstacle", rect(x - gap, 6, x, 18)) for x in xs[1:]]
+    plan = plan_of(feat("walkable", rect(0, 0, xs[-1] + aisle_w + 3, 22)),
+                   feat("obstacle", rect(0, 6, xs[0], 18)),
+                   feat("obstacle", rect(xs[-1] + aisle_w, 6, xs[-1] + aisle_w + 3, 18)), *shelves)
+    g = build_graph(plan)
+    gx = g.to_networkx()
+    assert nx.is_connected(gx)
+    assert edges_inside_slow(plan, g).all()
+    for x in xs:
+        a_xy, b_xy = np.array([x + aisle_w / 2, 7.0]), np.array([x + aisle_w / 2, 3.0])
+        a = int(np.argmin(np.hypot(*(g.nodes_xy - a_xy).T)))
+        b = int(np.argmin(np.hypot(*(g.nodes_xy - b_xy).T)))
+        assert np.hypot(*(g.nodes_xy[a] - a_xy)) < 1.0 and np.hypot(*(g.nodes_xy[b] - b_xy)) < 1.0
+        route = nx.shortest_path_length(gx, a, b, weight="length")
+        assert route <= 1.5 * np.hypot(*(g.nodes_xy[a] - g.nodes_xy[b])) + 1.0
+
+
 def test_two_rooms_joined_through_the_door():
     g, rep = build_graph_with_report(TWO_ROOMS)
     gx = g.to_networkx()
