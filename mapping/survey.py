@@ -172,6 +172,7 @@ def reconstruct_positions(
     track_sigma_m=0.05,
     scale_range=(0.6, 1.6),
     max_rotation_rad=np.radians(45.0),
+    max_extrapolate_m=None,
 ) -> SurveyPositions:
     """Positions for the samples of ``walk`` (see module docstring).
 
@@ -191,6 +192,9 @@ def reconstruct_positions(
     track_sigma_m : float, sigma of track positions without a sigma_m column
     scale_range : (lo, hi), allowed fitted scale per segment
     max_rotation_rad : float, allowed fitted rotation per segment
+    max_extrapolate_m : float or None, with ``outside="extrapolate"``,
+        samples farther than this (distance walked) beyond the end
+        checkpoints are left out; None keeps them all (their sigma grows)
 
     Returns
     -------
@@ -217,7 +221,7 @@ def reconstruct_positions(
         out = _from_checkpoints(
             walk, checkpoints, earth_to_plan_rad=earth_to_plan_rad, outside=outside, tap_sigma_m=tap_sigma_m,
             drift_m2_per_m=drift_m2_per_m, extrapolate_frac=extrapolate_frac, scale_range=scale_range,
-            max_rotation_rad=max_rotation_rad,
+            max_rotation_rad=max_rotation_rad, max_extrapolate_m=max_extrapolate_m,
         )
     if plan is not None and out.n:
         inside = plan.contains(out.xy)
@@ -230,13 +234,17 @@ def reconstruct_positions(
 
 
 def _from_checkpoints(walk, cps, *, earth_to_plan_rad, outside, tap_sigma_m, drift_m2_per_m, extrapolate_frac,
-                      scale_range, max_rotation_rad):
+                      scale_range, max_rotation_rad, max_extrapolate_m=None):
     t = np.asarray(walk.t, dtype=float)
     tc, xyc = _merge_checkpoints(cps.t, cps.xy)
     k = tc.size
     keep = np.ones(t.size, dtype=bool)
     if outside == "drop":
         keep = (t >= tc[0]) & (t <= tc[-1])
+    elif max_extrapolate_m is not None:
+        _, s_all = dead_reckoning(walk, t)
+        _, s_end = dead_reckoning(walk, tc[[0, -1]])
+        keep = (s_all >= s_end[0] - max_extrapolate_m) & (s_all <= s_end[1] + max_extrapolate_m)
     idx = np.nonzero(keep)[0]
     tq = t[idx]
     has_motion = walk.motion is not None and walk.motion.n > 0

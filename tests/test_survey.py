@@ -88,6 +88,15 @@ def test_samples_outside_the_checkpoints(policy):
         assert np.all(np.diff(sa) >= -1e-12) and sa[-1] > 1.0
 
 
+def test_extrapolation_can_be_limited_to_a_short_way():
+    truth, walk = _walk(t_before_s=3.0, t_after_s=2.0)  # 3 m before, 2 m after at 1 m/s
+    cps = checkpoints_of(truth)
+    sp = reconstruct_positions(walk, checkpoints=cps, earth_to_plan_rad=E2P, max_extrapolate_m=1.0)
+    assert sp.t.min() == pytest.approx(cps.t[0] - 1.0, abs=0.03)
+    assert sp.t.max() == pytest.approx(cps.t[-1] + 1.0, abs=0.03)
+    np.testing.assert_allclose(sp.xy, truth["xy"][sp.index], atol=1e-6)
+
+
 def test_positions_are_pulled_into_free_space():
     # a 2 m wide corridor along y = 1 .. 3 but the walker's true path (and
     # the checkpoints) run at y = 1.2; a heading bias without correction
