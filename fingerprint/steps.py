@@ -48,9 +48,9 @@ __all__ = [
 ]
 
 #: Default Weinberg constant (m per (m/s²)^(1/4)) when none is fitted: the
-#: value fitted on the survey split of the real F1 walks (tests/data/real),
-#: see tests/test_pipeline_realdata.py.
-DEFAULT_STEP_CONSTANT = 0.47
+#: value fitted on the full 80-walk survey split of the real F1 walks
+#: (``lodemap bench sensors --real-dir``), for one phone held flat in front of the body.
+DEFAULT_STEP_CONSTANT = 0.475
 
 
 @dataclass(frozen=True)
@@ -63,6 +63,7 @@ class StepSettings:
     window_s: float = 2.0
     rel_prominence: float = 1.0
     min_prominence: float = 0.6
+    max_step_period_s: float = 1.0
 
 
 @dataclass(frozen=True, eq=False)
@@ -139,7 +140,10 @@ def detect_steps(t, acc, *, settings=None):
     sd = np.sqrt(np.clip(uniform_filter1d(x * x, w, mode="nearest") - mean**2, 0, None))
     prom = np.maximum(s.rel_prominence * sd, s.min_prominence)
     dist = max(1, int(round(s.min_interval_s * fs)))
-    peaks, _ = find_peaks(x, height=mean, prominence=(prom, None), distance=dist)
+    # prominence measured within one stride either side (wlen), so a bump on
+    # a raised plateau is not credited with the depth of distant troughs
+    wlen = max(3, int(round(2 * s.max_step_period_s * fs)) | 1)
+    peaks, _ = find_peaks(x, height=mean, prominence=(prom, None), distance=dist, wlen=wlen)
     m = peaks.size
     if m == 0:
         e = np.empty(0)
