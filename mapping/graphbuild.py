@@ -228,7 +228,8 @@ def _medial_axis(free, *, boundary_step_m, min_clearance_m, spur_factor, spur_ex
     inside = shapely.contains_xy(free, vx[:, 0], vx[:, 1])
     radius = np.full(len(vx), -1.0)
     radius[inside] = cKDTree(pts).query(vx[inside])[0]
-    rv = np.array([r for r in vor.ridge_vertices if -1 not in r], dtype=np.int64).reshape(-1, 2)
+    rv = np.asarray(vor.ridge_vertices, dtype=np.int64).reshape(-1, 2)  # 2-D: two vertices per ridge
+    rv = rv[(rv >= 0).all(axis=1)]
     ok = inside[rv[:, 0]] & inside[rv[:, 1]]
     ok &= (radius[rv[:, 0]] >= min_clearance_m) & (radius[rv[:, 1]] >= min_clearance_m)
     rv = rv[ok]

@@ -66,8 +66,12 @@ def edges_inside_slow(plan, graph, skip=()):
 
 
 def union_distance(graph, xy):
-    lines = shapely.union_all(shapely.linestrings(graph.nodes_xy[graph.edges]))
-    return shapely.distance(shapely.points(xy), lines)
+    """Distance to the nearest edge by shapely's spatial index (STRtree)."""
+    tree = shapely.STRtree(shapely.linestrings(graph.nodes_xy[graph.edges]))
+    (i_pt, _), dist = tree.query_nearest(shapely.points(xy), return_distance=True, all_matches=False)
+    out = np.empty(len(xy))
+    out[i_pt] = dist
+    return out
 
 
 # -- fixtures of the zoo ------------------------------------------------------
