@@ -168,3 +168,20 @@ def test_map_table_lookup_equals_fieldmap_lookup():
     b = fm.lookup(q)
     for u, v in zip(a, b):
         np.testing.assert_allclose(u, v, rtol=1e-12, atol=1e-12)
+
+
+def test_indexed_projection_equals_brute_force():
+    # the STRtree projection (shapely 2) against FloorGraph.project (brute force)
+    from fingerprint.pf._project import GraphProjector
+
+    g = grid_graph(9, 6, 1.7)
+    rng = np.random.default_rng(8)
+    q = rng.uniform([-3, -3], [17, 11], size=(3000, 2))
+    q[:50] = g.nodes_xy[rng.integers(g.n_nodes, size=50)]  # exactly on nodes (ties)
+    e1, o1, d1 = GraphProjector(g).project(q)
+    e2, o2, d2 = g.project(q)
+    np.testing.assert_allclose(d1, d2, atol=1e-9)
+    # the returned (edge, offset) really is at that distance
+    np.testing.assert_allclose(np.hypot(*(g.point(e1, o1) - q).T), d2, atol=1e-9)
+    same = e1 == e2
+    np.testing.assert_allclose(o1[same], o2[same], atol=1e-9)

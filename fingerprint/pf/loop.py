@@ -10,6 +10,7 @@ import numpy as np
 
 from ..errors import ConvergenceError
 from ._lookup import MapTable
+from ._project import GraphProjector
 from .measurement import field_log_likelihood
 from .motion import graph_tables, move
 from .resampling import get_resampler
@@ -25,6 +26,7 @@ class FilterContext:
     fmap: object
     table: object
     graph: object
+    projector: object
     tables: object
     settings: object
     earth_to_plan_rad: float
@@ -37,6 +39,7 @@ def make_context(fmap, settings, *, sensor_noise_ut):
         fmap=fmap,
         table=MapTable(fmap),
         graph=fmap.graph,
+        projector=GraphProjector(fmap.graph),
         tables=graph_tables(fmap.graph),
         settings=settings,
         earth_to_plan_rad=float(fmap.earth_to_plan_rad),
@@ -61,11 +64,6 @@ def _nuisance_prior(n, settings, rng):
     return hoff, scale, bias, bias_var
 
 
-def _project(graph, xy):
-    chunk = max(1, int(2_000_000 // max(graph.n_edges, 1)))
-    return graph.project(xy, chunk=chunk)
-
-
 def initial_state(ctx, rng, *, start_xy=None, start_sigma_m=1.0):
     """Particles for tracking (around ``start_xy`` (2,), projected onto the
     graph) or global mode (``start_xy`` None: uniform over the graph)."""
@@ -77,7 +75,7 @@ def initial_state(ctx, rng, *, start_xy=None, start_sigma_m=1.0):
     else:
         n = s.n_particles
         xy = np.asarray(start_xy, dtype=float).reshape(1, 2) + start_sigma_m * rng.standard_normal((n, 2))
-        edge, off, _ = _project(graph, xy)
+        edge, off, _ = ctx.projector.project(xy)
     direc = np.where(rng.random(n) < 0.5, 1, -1).astype(np.int8)
     hoff, scale, bias, bias_var = _nuisance_prior(n, s, rng)
     return ParticleState(
