@@ -12,6 +12,7 @@ queried with :func:`shapely.contains_xy`.
 from __future__ import annotations
 
 import hashlib
+import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -153,16 +154,10 @@ def _feature_geometry(feat, index, path):
         got = gj.get("type") if isinstance(gj, dict) else gj
         raise FormatError(f"feature {index} ({kind}): geometry must be Polygon or MultiPolygon, got {got!r}", path=path)
     try:
-        geom = shapely.from_geojson(_json_dumps(gj))
+        geom = shapely.from_geojson(json.dumps(gj))
     except Exception as err:  # shapely raises GEOSException / ValueError on bad coordinates
         raise FormatError(f"feature {index} ({kind}): unreadable geometry: {err}", path=path) from err
     return kind, geom
-
-
-def _json_dumps(obj):
-    import json
-
-    return json.dumps(obj)
 
 
 def _repair(geom, index, kind, path):

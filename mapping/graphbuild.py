@@ -34,6 +34,7 @@ Every non-bridge edge is checked to lie inside free space with shapely.
 
 from __future__ import annotations
 
+import json
 import time
 from dataclasses import dataclass, field
 
@@ -749,8 +750,6 @@ def load_graph_geojson(path, *, snap_m=0.05, max_edge_m=1.0) -> FloorGraph:
             got = gj.get("type") if isinstance(gj, dict) else gj
             raise FormatError(f"feature {i} (path): geometry must be LineString or MultiLineString, got {got!r}",
                               path=path)
-        import json
-
         try:
             geom = shapely.from_geojson(json.dumps(gj))
         except Exception as err:
