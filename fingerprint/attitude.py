@@ -51,6 +51,8 @@ __all__ = [
     "estimate_attitude",
     "gyro_bias",
     "tilt_rotation",
+    "tilt_quat",
+    "quat_rotate",
     "madgwick_marg",
     "GRAVITY_M_S2",
     "FORWARD_AXIS",
@@ -142,20 +144,42 @@ def gyro_bias(t, acc, gyro, *, settings=None):
     return gyro[still].mean(axis=0), still
 
 
-def tilt_rotation(up_device):
-    """Smallest rotations taking unit up directions (N, 3) onto +z: Rotation (N)."""
+def tilt_quat(up_device):
+    """Smallest rotations taking unit up directions (N, 3) onto +z, as
+    scalar-last quaternions (N, 4): ``normalise(u x z, 1 + u.z)`` (the
+    half-way quaternion; common practice, no source). Upside-down samples
+    (u = -z) get a half turn about x."""
     u = np.asarray(up_device, float)
     u = u / np.linalg.norm(u, axis=1, keepdims=True)
-    axis = np.column_stack([u[:, 1], -u[:, 0], np.zeros(len(u))])  # u x z
-    s = np.linalg.norm(axis, axis=1)
-    c = u[:, 2]
-    ang = np.arctan2(s, c)
-    safe = s > 1e-12
-    rv = np.zeros_like(u)
-    rv[safe] = axis[safe] / s[safe, None] * ang[safe, None]
-    flip = (~safe) & (c < 0)
-    rv[flip] = [np.pi, 0.0, 0.0]
-    return Rotation.from_rotvec(rv)
+    q = np.column_stack([u[:, 1], -u[:, 0], np.zeros(len(u)), 1.0 + u[:, 2]])
+    nq = np.linalg.norm(q, axis=1)
+    bad = nq < 1e-9
+    q[bad] = [1.0, 0.0, 0.0, 0.0]
+    nq[bad] = 1.0
+    return q / nq[:, None]
+
+
+def tilt_rotation(up_device):
+    """Smallest rotations taking unit up directions (N, 3) onto +z: Rotation (N)."""
+    return Rotation.from_quat(tilt_quat(up_device))
+
+
+def _cross(a, b):
+    """Row-wise cross product of (N, 3) arrays (faster than np.cross)."""
+    a0, a1, a2 = a[:, 0], a[:, 1], a[:, 2]
+    b0, b1, b2 = b[:, 0], b[:, 1], b[:, 2]
+    return np.column_stack([a1 * b2 - a2 * b1, a2 * b0 - a0 * b2, a0 * b1 - a1 * b0])
+
+
+def quat_rotate(q, v):
+    """Rotate vectors v ((N, 3) or (3,)) by scalar-last unit quaternions q
+    ((N, 4)): ``v + 2w (qv x v) + 2 qv x (qv x v)`` (same as scipy's
+    ``Rotation.from_quat(q).apply(v)``, checked in the tests)."""
+    qv = q[:, :3]
+    w = q[:, 3:4]
+    v = np.broadcast_to(np.asarray(v, float), qv.shape)
+    c = _cross(qv, v)
+    return v + 2.0 * (w * c + _cross(qv, c))
 
 
 def _lowpass(x, fs, fc, order=2):
@@ -198,11 +222,19 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
     if np.any(gn <= 1e-6):
         raise DataError("accelerometer gives no gravity direction (zero low-passed acceleration)")
     up = g / gn[:, None]
-    Rt = tilt_rotation(up)
+    qt = tilt_quat(up)
 
-    # yaw rate about earth up; minus the twist of the tilt rotation itself
+    # yaw rate about earth up; minus the twist of the tilt rotation itself:
+    # the z part of the rotation vector of qt[k+1] * qt[k]^-1
     w_up = np.einsum("ij,ij->i", w, up)
-    twist = (Rt[1:] * Rt[:-1].inv()).as_rotvec()[:, 2]
+    a, b = qt[1:], qt[:-1] * [-1.0, -1.0, -1.0, 1.0]
+    rv = a[:, 3:4] * b[:, :3] + b[:, 3:4] * a[:, :3] + _cross(a[:, :3], b[:, :3])
+    rw = a[:, 3] * b[:, 3] - np.einsum("ij,ij->i", a[:, :3], b[:, :3])
+    sgn = np.where(rw < 0, -1.0, 1.0)
+    vn = np.linalg.norm(rv, axis=1)
+    ang = 2.0 * np.arctan2(vn, np.abs(rw))
+    scale = np.where(vn > 1e-15, ang / np.where(vn > 1e-15, vn, 1.0), 2.0)
+    twist = sgn * rv[:, 2] * scale
     dpsi = 0.5 * (w_up[1:] + w_up[:-1]) * dt - twist
     psi_g = np.concatenate([[0.0], np.cumsum(dpsi)])
 
@@ -210,7 +242,7 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
     corr = np.zeros(n)
     if mag is not None:
         mag = np.asarray(mag, float)
-        mL = Rt.apply(mag)
+        mL = quat_rotate(qt, mag)
         alpha = np.arctan2(mL[:, 1], mL[:, 0])
         psi_m = np.pi / 2 - alpha
         d = psi_m - psi_g
@@ -249,10 +281,13 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
     else:
         meta["heading_reference"] = "none (relative heading)"
     psi = psi_g + corr
-    R = Rotation.from_rotvec(np.column_stack([np.zeros(n), np.zeros(n), psi])) * Rt
-    fL = Rt.apply(fwd)
+    # quaternion of Rz(psi) * tilt, in closed form
+    sh, ch = np.sin(psi / 2)[:, None], np.cos(psi / 2)[:, None]
+    x, y, z, qw = qt[:, 0:1], qt[:, 1:2], qt[:, 2:3], qt[:, 3:4]
+    quat = np.hstack([ch * x - sh * y, ch * y + sh * x, ch * z + sh * qw, ch * qw - sh * z])
+    fL = quat_rotate(qt, fwd)
     heading = np.angle(np.exp(1j * (psi + np.arctan2(fL[:, 1], fL[:, 0]))))
-    return Attitude(quat=R.as_quat(), heading_rad=heading, up_device=up, gyro_bias=bias, meta=meta)
+    return Attitude(quat=quat, heading_rad=heading, up_device=up, gyro_bias=bias, meta=meta)
 
 
 def madgwick_marg(gyro, acc, mag, *, dt_s, beta=0.041, q0=None):

@@ -19,9 +19,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.spatial.transform import Rotation
-
-from .attitude import FORWARD_AXIS, AttitudeSettings, estimate_attitude
+from .attitude import FORWARD_AXIS, AttitudeSettings, estimate_attitude, quat_rotate
 from .calibration import Calibration, fit_calibration
 from .errors import ConvergenceError, DataError
 from .odometry import OdometrySettings, odometry_motion
@@ -69,6 +67,12 @@ def mag_noise_ut(mag_ut):
     m = np.asarray(mag_ut, float)
     if m.shape[0] < 5:
         return float("nan")
+    if m.shape[0] > 100_000:
+        # a robust sd needs no more: 100 000 evenly spread second differences
+        idx = np.linspace(1, m.shape[0] - 2, 100_000).astype(np.int64)
+        d2 = m[idx + 1] - 2 * m[idx] + m[idx - 1]
+        mad = np.median(np.abs(d2 - np.median(d2, axis=0)), axis=0) * 1.4826
+        return float(np.median(mad) / np.sqrt(6.0)) or mag_noise_ut(m[:100_000])
     d2 = m[2:] - 2 * m[1:-1] + m[:-2]
     mad = np.median(np.abs(d2 - np.median(d2, axis=0)), axis=0) * 1.4826
     sig = float(np.median(mad) / np.sqrt(6.0))
@@ -177,7 +181,7 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         mag_earth = np.full((log.n, 3), np.nan)
         noise = float("nan")
     else:
-        mag_earth = Rotation.from_quat(att.quat).apply(mag)
+        mag_earth = quat_rotate(att.quat, mag)
         noise = mag_noise_ut(mag)
         meta["calibration_verdict"] = calibration_verdict(mag, calibrated_flag=log.magnetometer_calibrated)
     meta["mag_noise_ut"] = noise
