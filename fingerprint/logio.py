@@ -21,7 +21,7 @@ Policies
 - Gaps longer than 1 s are not an error; :func:`find_gaps` (and
   :func:`validate_walk_log`) report them.
 - Unit sanity: median ``|B|`` of ``mx,my,mz`` outside 5-500 µT is an error
-  that suggests nT, mG, G or T; median ``|a|`` outside 7-13 m/s² is an error
+  that suggests nT, mG, G or T; median ``|a|`` outside 4-20 m/s² is an error
   (near 1 suggests g units); a 99th-percentile gyro rate above 40 rad/s
   suggests deg/s. The raw magnetometer (hard-iron offset still in) is allowed
   5-3000 µT.
@@ -76,7 +76,7 @@ GAP_THRESHOLD_S = 1.0
 
 _MAG_RANGE_UT = (5.0, 500.0)
 _MAG_RAW_RANGE_UT = (5.0, 3000.0)
-_ACC_RANGE = (7.0, 13.0)
+_ACC_RANGE = (4.0, 20.0)  # real walks reach a median of 6.7 m/s² (short, brisk)
 _GYRO_MAX_RAD_S = 40.0
 _KNOWN_PLATFORMS = ("handheld", "robot")
 _BOOL_WORDS = {"yes", "no", "true", "false", "1", "0"}

@@ -133,3 +133,16 @@ def test_madgwick_matches_ahrs(gain):
     assert _angle_deg(Rotation.from_quat(q), ref).max() < 1e-6
     # and the published filter tracks the truth
     assert _angle_deg(Rotation.from_quat(q), rot).max() < 2.0
+
+
+def test_quaternion_helpers_match_scipy():
+    from fingerprint.attitude import quat_rotate, tilt_quat
+
+    r = Rotation.random(500, random_state=11)
+    v = np.random.default_rng(11).normal(size=(500, 3))
+    np.testing.assert_allclose(quat_rotate(r.as_quat(), v), r.apply(v), atol=1e-12)
+    up = r.apply([0, 0, 1.0])
+    q = tilt_quat(up)
+    np.testing.assert_allclose(Rotation.from_quat(q).apply(up), np.tile([0, 0, 1.0], (500, 1)), atol=1e-12)
+    # smallest rotation: its angle is the angle between up and +z
+    np.testing.assert_allclose(Rotation.from_quat(q).magnitude(), np.arccos(np.clip(up[:, 2], -1, 1)), atol=1e-9)

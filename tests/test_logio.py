@@ -148,3 +148,12 @@ def test_find_gaps_brute_force_twin():
     g = find_gaps(t, min_gap_s=1.0)
     ref = [(i, t[i], t[i + 1]) for i in range(len(t) - 1) if t[i + 1] - t[i] > 1.0]
     np.testing.assert_array_equal(g, np.array(ref).reshape(-1, 3))
+
+
+def test_every_vendored_real_log_passes_validation():
+    """The unit sanity ranges must accept real walks (tests/data/real)."""
+    paths = sorted((REAL.parent).glob("*/walk_*.log.csv.gz"))
+    assert len(paths) >= 30
+    for p in paths:
+        log = read_walk_log(p)
+        assert log.n > 100 and np.all(np.diff(log.t) > 0)
