@@ -17,7 +17,7 @@ from _plans_synth import checkpoints_of, make_walk, polyline_walk, track_of
 from fingerprint.errors import ConfigError, DataError
 from fingerprint.records import Checkpoints
 from mapping.floorplan import plan_from_geojson
-from mapping.survey import dead_reckoning, reconstruct_positions, segment_fits
+from mapping.survey import adjust_checkpoints, dead_reckoning, reconstruct_positions, segment_fits
 
 ROOT = Path(__file__).resolve().parent
 E2P = np.radians(20.0)
@@ -162,12 +162,62 @@ def test_dead_reckoning_and_segment_fits_against_truth():
     np.testing.assert_allclose(fit["straightness"], 1.0, atol=1e-9)
 
 
+def test_adjustment_matches_scipy_least_squares():
+    # reference: scipy.optimize.least_squares on the same weighted residuals
+    # written out in real numbers
+    from scipy.optimize import least_squares
+
+    rng = np.random.default_rng(8)
+    k = 6
+    true = np.cumsum(rng.normal(0, 5, k) + 1j * rng.normal(0, 5, k))
+    c_true = 1.07 * np.exp(1j * 0.05)
+    dr = np.diff(true) / c_true + 0.1 * (rng.normal(size=k - 1) + 1j * rng.normal(size=k - 1))
+    walked = np.abs(dr) * 1.05
+    tap = true + 0.7 * (rng.normal(size=k) + 1j * rng.normal(size=k))
+    tap_s, q, rel, cs = 0.7, 0.05, 0.05, 0.2
+    z, var, c = adjust_checkpoints(tap, dr, walked, tap_sigma_m=tap_s, drift_m2_per_m=q, segment_rel_sigma=rel,
+                                   walk_fit_sigma=cs)
+    sd_dr = np.sqrt(q * walked + (rel * walked) ** 2 + 1e-4)
+
+    def resid(p):
+        zz = p[:k] + 1j * p[k : 2 * k]
+        cc = p[2 * k] + 1j * p[2 * k + 1]
+        r = np.concatenate([(zz - tap) / tap_s, (np.diff(zz) - cc * dr) / sd_dr, [(cc - 1) / cs]])
+        return np.concatenate([r.real, r.imag])
+
+    ref = least_squares(resid, np.concatenate([tap.real, tap.imag, [1.0, 0.0]]), xtol=1e-12, ftol=1e-12)
+    np.testing.assert_allclose(z.real, ref.x[:k], atol=1e-6)
+    np.testing.assert_allclose(z.imag, ref.x[k : 2 * k], atol=1e-6)
+    assert c == pytest.approx(ref.x[2 * k] + 1j * ref.x[2 * k + 1], abs=1e-6)
+    # posterior variance per axis from the Jacobian (Gauss-Newton, (JᵀJ)⁻¹)
+    jac = ref.jac
+    cov = np.linalg.inv(jac.T @ jac)
+    np.testing.assert_allclose(var, np.diag(cov)[:k], rtol=1e-6)
+    assert np.all(var < tap_s**2)
+
+
+def test_adjustment_beats_raw_taps_when_dead_reckoning_is_good():
+    rng = np.random.default_rng(2)
+    truth, walk = _walk(scale=1.05)
+    cps = checkpoints_of(truth, tap_sigma_m=0.8, rng=rng)
+    seg = reconstruct_positions(walk, checkpoints=cps, earth_to_plan_rad=E2P, tap_sigma_m=0.8)
+    adj = reconstruct_positions(walk, checkpoints=cps, earth_to_plan_rad=E2P, tap_sigma_m=0.8, method="adjust",
+                                segment_rel_sigma=0.01, drift_m2_per_m=0.001, walk_fit_sigma=1.0)
+    e_seg = np.sqrt(np.mean(np.sum((seg.xy - truth["xy"]) ** 2, axis=1)))
+    e_adj = np.sqrt(np.mean(np.sum((adj.xy - truth["xy"]) ** 2, axis=1)))
+    assert e_adj < 0.8 * e_seg
+    assert adj.meta["method"] == "adjust" and adj.meta["walk_scale"] == pytest.approx(1 / 1.05, abs=0.2)  # sd about 0.05 from 0.8 m taps over 36 m
+    assert adj.sigma_m.min() < 0.8
+
+
 def test_bad_input():
     truth, walk = _walk()
     with pytest.raises(DataError, match="checkpoints or a track"):
         reconstruct_positions(walk)
     with pytest.raises(ConfigError, match="outside"):
         reconstruct_positions(walk, checkpoints=checkpoints_of(truth), outside="clip")
+    with pytest.raises(ConfigError, match="method"):
+        reconstruct_positions(walk, checkpoints=checkpoints_of(truth), method="kalman")
     with pytest.raises(DataError, match="finite"):
         reconstruct_positions(walk, checkpoints=Checkpoints(t=np.array([0.0, np.nan]), xy=np.zeros((2, 2))))
 
