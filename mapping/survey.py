@@ -55,7 +55,8 @@ class SurveyPositions:
     ----------
     t : (N,) float, seconds, the sample times kept
     xy : (N, 2) float, metres, plan frame
-    sigma_m : (N,) float, 1-sigma position uncertainty, metres
+    sigma_m : (N,) float, 1-sigma position uncertainty per axis (isotropic),
+        metres
     source : "track", "checkpoints" or "checkpoints-interpolated" (no
         motion: straight lines between checkpoints)
     index : (N,) int, index of each kept sample in the walk's samples

@@ -192,6 +192,13 @@ def test_parts_closed_off_in_the_drawing_are_bridged_and_reported():
     assert g2.total_length_m < 0.6 * g.total_length_m
 
 
+def test_build_is_deterministic():
+    a = build_graph(TWO_ROOMS)
+    b = build_graph(TWO_ROOMS)
+    np.testing.assert_array_equal(a.nodes_xy, b.nodes_xy)
+    np.testing.assert_array_equal(a.edges, b.edges)
+
+
 def test_bad_options_and_too_narrow_plans():
     with pytest.raises(ConfigError):
         build_graph(CORRIDOR, lattice_spacing_m=0)
