@@ -32,6 +32,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
+import scipy.linalg.lapack
 import scipy.sparse
 
 from fingerprint.errors import ConvergenceError
@@ -173,6 +174,17 @@ class Posterior:
     log_ml: float
 
 
+def _chol_inverse(chol):
+    """Inverse of a symmetric positive-definite matrix from its lower
+    Cholesky factor (LAPACK ``dpotri``, about a third of the cost of
+    solving against the identity)."""
+    inv, info = scipy.linalg.lapack.dpotri(chol[0], lower=1)
+    if info != 0:
+        raise np.linalg.LinAlgError(f"dpotri failed with info={info}")
+    inv = np.tril(inv)
+    return inv + np.tril(inv, -1).T
+
+
 def _floor_prior(prior_var_f):
     # Spectral densities underflow to 0 for high frequencies; a tiny floor
     # keeps 1 / prior finite without changing the model measurably.
@@ -256,8 +268,7 @@ def posterior(st, prior_var_f, noise_var, offset_var=1.0):
     except (np.linalg.LinAlgError, scipy.linalg.LinAlgError) as err:
         raise ConvergenceError(f"field-map normal equations are not positive definite: {err}") from err
     mean_f = scipy.linalg.cho_solve(chol, bf, check_finite=False)
-    cov_f = scipy.linalg.cho_solve(chol, np.eye(st.n_field), check_finite=False)
-    cov_f = 0.5 * (cov_f + cov_f.T)
+    cov_f = _chol_inverse(chol)
     if parts is not None:
         gfo, dinv, dib = parts
         w = st.n_walks
@@ -305,7 +316,7 @@ def log_marginal_and_grad(st, prior_var_f, noise_var, offset_var=1.0):
     except (np.linalg.LinAlgError, scipy.linalg.LinAlgError):
         return -np.inf, None, None, None
     mu_f = scipy.linalg.cho_solve(chol, bf, check_finite=False)
-    sinv = scipy.linalg.cho_solve(chol, np.eye(st.n_field), check_finite=False)
+    sinv = _chol_inverse(chol)
     quad = extra["quad"] + float(bf @ mu_f)
     logdet_s = 2.0 * float(np.sum(np.log(np.diag(chol[0]))))
     value = float(

@@ -151,7 +151,7 @@ class _ReducedRankGP(_Fitted):
         self,
         n_basis=1024,
         *,
-        margin_m=5.0,
+        margin_m=3.0,
         length_scale_m=None,
         magnitude_ut=None,
         noise_h_ut=None,
@@ -194,7 +194,7 @@ class _ReducedRankGP(_Fitted):
         raise NotImplementedError
 
     #: lower bound of the length scale, in units of 1 / omega_max of the basis
-    _kappa = 3.5
+    _kappa = 3.0
 
     # -- fitting -------------------------------------------------------------
     def fit(self, xy, b, *, groups=None, rotations=None):
@@ -300,6 +300,13 @@ class _ReducedRankGP(_Fitted):
         fixed = {k for k in self._hyper_names if given[k] is not None}
         if not use_offsets:
             fixed.add("offset_ut")
+        elif self.constant_ut is None:
+            # With walk offsets the part of them shared by all walks is the
+            # constant field; a flat prior on the constant puts it there (a
+            # finite one lets the offsets take the mean field, and a new walk,
+            # whose offset is unknown, would then miss it).
+            out["constant_ut"] = 1e3 * max(out["constant_ut"], 1.0)
+            fixed.add("constant_ut")
         self.fixed_hyper_ = sorted(fixed)
         return out
 
@@ -448,7 +455,7 @@ class _ReducedRankGP(_Fitted):
             return mean
         return mean, var + self.between_walk_var_[None, :]
 
-    def predict_grid(self, xs, ys):
+    def predict_grid(self, xs, ys, return_var=True):
         """Mapped field on the raster ``xs`` (nx,) x ``ys`` (ny,) using the
         separable basis: ``mean (ny, nx, 3)``, ``var (ny, nx, 3)`` (as
         :meth:`predict`). Cost ``O(ny m^2 + nx ny J^2)`` instead of
@@ -472,6 +479,8 @@ class _ReducedRankGP(_Fitted):
             wm = np.zeros((fy.shape[1], fx.shape[1]))
             np.add.at(wm, (jy, jx), w[:nb][order])
             mean[..., c] = gy @ wm @ gx.T + w[nb]
+            if not return_var:
+                continue
             # Variance of basis part + constant: per raster row b, scale the
             # covariance by gy[b, jy_j] gy[b, jy_k], sum it over basis
             # functions sharing a jx mode (-> J x J), then a quadratic form
@@ -490,6 +499,8 @@ class _ReducedRankGP(_Fitted):
                 mm = np.add.reduceat(np.add.reduceat(ct, starts, axis=0), starts, axis=1)
                 var[r, :, c] = np.einsum("ap,pq,aq->a", gxu, mm, gxu, optimize=True)
             var[..., c] += 2.0 * cross + ccc
+        if not return_var:
+            return mean
         var = np.maximum(var, 0.0) + self.between_walk_var_[None, None, :]
         return mean, var
 

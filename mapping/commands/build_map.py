@@ -1,0 +1,101 @@
+"""``lodemap build-map``: build a floor's field map from survey walks."""
+
+from __future__ import annotations
+
+import time
+
+from fingerprint.errors import ConfigError
+
+HELP = "build a floor's field map from survey walks"
+
+
+def add_arguments(parser):
+    parser.description = (
+        "Build the field map of one floor from survey walks: each WALK is a *.log.csv[.gz] with its "
+        "*.checkpoints.csv (and optionally *.track.csv) beside it, or a folder of them. The map "
+        "(mean and variance of b_x, b_y, b_up in the plan frame on a raster, coverage, floor graph) "
+        "is written to one checksummed file; with --quality a JSON summary and PNG beside it."
+    )
+    parser.add_argument("walks", nargs="+", metavar="WALK", help="survey walk log or folder of logs")
+    parser.add_argument("--site", required=True, metavar="SITE.json", help="site description (FORMATS.md section 5)")
+    parser.add_argument("--floor", required=True, metavar="F", help="floor label in the site file")
+    parser.add_argument("--out", required=True, metavar="FLOOR.map", help="output map file (written atomically)")
+    parser.add_argument("--kernel", default="curl-free", metavar="NAME",
+                        help="map model: curl-free (default), per-component, nearest, constant")
+    parser.add_argument("--resolution", type=float, default=0.25, metavar="M", help="raster cell size in metres (default 0.25)")
+    parser.add_argument("--spacing", type=float, default=0.25, metavar="M",
+                        help="walk distance averaged into one survey sample, metres (default 0.25)")
+    parser.add_argument("--n-basis", type=int, default=None, metavar="N",
+                        help="reduced-rank basis functions per block for the GP kernels (default 1024)")
+    parser.add_argument("--tracks", choices=("use", "ignore"), default="use",
+                        help="take survey positions from *.track.csv beside a log when there is one (default use)")
+    parser.add_argument("--split", default=None, metavar="split.json", help="keep only the walks of one part of a split file")
+    parser.add_argument("--use", choices=("survey", "test"), default="survey", help="which part of --split (default survey)")
+    parser.add_argument("--seed", type=int, default=0, metavar="N", help="seed recorded in the map (default 0)")
+    parser.add_argument("--quality", action="store_true", help="also write FLOOR.quality.json and FLOOR.quality.png")
+    parser.add_argument("--no-progress", action="store_true", help="no progress bars")
+
+
+def run(args):
+    from fingerprint.mapfile import save_map
+
+    from ..mapbuild import build_floor_map
+    from ..site import load_site
+    from ..walkset import find_walks
+
+    if args.resolution <= 0:
+        raise ConfigError(f"--resolution must be > 0, got {args.resolution}")
+    site = load_site(args.site)
+    walks = find_walks(args.walks, split=args.split, part=args.use if args.split else None)
+    params = {}
+    if args.n_basis is not None:
+        if args.kernel not in ("curl-free", "per-component"):
+            raise ConfigError("--n-basis applies to the curl-free and per-component kernels only")
+        params["n_basis"] = int(args.n_basis)
+    t0 = time.perf_counter()
+    fmap = build_floor_map(
+        site,
+        args.floor,
+        walks,
+        resolution_m=args.resolution,
+        kernel=args.kernel,
+        seed=args.seed,
+        progress=not args.no_progress,
+        use_track=args.tracks == "use",
+        spacing_m=args.spacing,
+        kernel_params=params or None,
+    )
+    fmap.meta["build"]["command"] = "build-map"
+    fmap.meta["build"]["time_s"] = round(time.perf_counter() - t0, 3)
+    save_map(args.out, fmap)
+    model = fmap.meta.get("model", {})
+    hyper = model.get("hyperparameters", {})
+    print(
+        f"map of floor {fmap.floor}: {len(fmap.meta['survey_walks'])} survey walks, {fmap.meta['n_samples']} samples, "
+        f"kernel {fmap.meta['kernel']}, raster {fmap.shape[1]} x {fmap.shape[0]} at {fmap.resolution_m} m"
+    )
+    if hyper:
+        print("hyperparameters: " + ", ".join(f"{k}={v:.3g}" for k, v in hyper.items()))
+    cal = model.get("calibration", {})
+    if cal:
+        print("held-out walks (group k-fold): RMSE b_x,b_y,b_up = "
+              + ", ".join(f"{v:.2f}" for v in cal["heldout_rmse_ut"]) + " µT; between-walk sd = "
+              + ", ".join(f"{v:.2f}" for v in model.get("between_walk_sd_ut", [])) + " µT")
+    print(f"earth_to_plan = {fmap.meta['frames']['alignment'].get('earth_to_plan_deg', 0.0):.2f} deg "
+          f"({fmap.meta['frames']['alignment'].get('source')})")
+    print(f"wrote {args.out} ({fmap.meta['build']['time_s']:.1f} s)")
+    if args.quality:
+        from pathlib import Path
+
+        from fingerprint._atomic import write_json_atomic
+
+        from ..quality import map_quality, quality_image
+
+        q = map_quality(fmap)
+        stem = Path(args.out).with_suffix("")
+        write_json_atomic(f"{stem}.quality.json", q)
+        quality_image(fmap, f"{stem}.quality.png", quality=q)
+        print(f"wrote {stem}.quality.json and {stem}.quality.png; "
+              f"{len(q['stretches'])} graph stretches need another survey walk")
+    return 0
+
