@@ -246,7 +246,8 @@ def rotation_coverage(directions, *, n_cells=100):
     return {"sphere_fraction": float(hit.size / n_cells), "spread": [float(v) for v in ev]}
 
 
-def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, min_samples=50):
+def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, min_samples=50, up_device=None,
+                    field_up_ut=None, planar_tilt_deg=20.0):
     """Fit hard- and soft-iron calibration to magnetometer readings.
 
     Parameters
@@ -261,6 +262,18 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         axis is below this share of the largest, the data are called planar
         and the circle fallback is used.
     min_samples : int
+    up_device : (N, 3) float, optional
+        Up direction in the device frame for each reading (e.g. the
+        low-passed accelerometer). When given, planarity is judged from it:
+        if 95 % of the up directions lie within ``planar_tilt_deg`` of their
+        mean, the device only turned about the vertical, whatever the
+        field's spatial variation did to the readings, and the plane normal
+        is the mean up direction.
+    field_up_ut : float, optional
+        Expected vertical (up) component of the true field (µT, negative in
+        the northern hemisphere), e.g. from a geomagnetic model. With planar
+        data it fixes the offset along the normal, which the readings alone
+        cannot.
 
     Returns
     -------
@@ -271,7 +284,17 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         |B|), ``b_mean_before_ut`` / ``b_mean_after_ut``, ``n_samples``.
     """
     m = np.asarray(mag_ut, dtype=float).reshape(-1, 3)
-    m = m[np.isfinite(m).all(axis=1)]
+    keep = np.isfinite(m).all(axis=1)
+    m = m[keep]
+    up_n = None
+    if up_device is not None:
+        u = np.asarray(up_device, dtype=float).reshape(-1, 3)[keep]
+        u = u / np.linalg.norm(u, axis=1, keepdims=True)
+        mean_u = u.mean(axis=0)
+        mean_u /= np.linalg.norm(mean_u)
+        tilt = np.degrees(np.arccos(np.clip(u @ mean_u, -1, 1)))
+        if np.percentile(tilt, 95) < planar_tilt_deg:
+            up_n = mean_u
     if m.shape[0] < min_samples:
         raise DataError(f"calibration needs at least {min_samples} magnetometer samples, got {m.shape[0]}")
     mu = m.mean(axis=0)
@@ -283,7 +306,13 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
     report = {"n_samples": int(m.shape[0]), "principal_sd_ut": sd[::-1].tolist(), "planarity": ratio}
     method = "ellipsoid"
     message = ""
-    if ratio >= planar_ratio:
+    if up_n is not None:
+        method = "circle-fallback"
+        message = (
+            f"the device turned about the vertical only (95 % of up directions within {planar_tilt_deg:g}° "
+            "of their mean); "
+        )
+    elif ratio >= planar_ratio:
         try:
             ctr, A, cond = ellipsoid_fit(m)
             report["condition_number"] = cond
@@ -304,12 +333,19 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
             f"readings span rotations about one axis only (planarity {ratio:.3f} < {planar_ratio}); "
         )
     if method == "circle-fallback":
-        n = evecs[:, 0]
-        e1, e2 = evecs[:, 2], evecs[:, 1]
+        n = evecs[:, 0] if up_n is None else up_n
+        if up_n is not None:
+            e1 = np.cross(n, [1.0, 0, 0] if abs(n[0]) < 0.9 else [0, 1.0, 0])
+            e1 /= np.linalg.norm(e1)
+            e2 = np.cross(n, e1)
+        else:
+            e1, e2 = evecs[:, 2], evecs[:, 1]
         q = (m - mu) @ np.column_stack([e1, e2])
         c2, r = circle_fit(q)
         offset = mu + c2[0] * e1 + c2[1] * e2
         offset = offset - n * (n @ offset)  # not identifiable along the normal
+        if field_up_ut is not None and up_n is not None:
+            offset = offset + n * (float(np.mean(m @ n)) - float(field_up_ut))
         W = np.eye(3)
         report["condition_number"] = float(np.linalg.cond(q.T @ q))
         report["circle_radius_ut"] = r
@@ -319,7 +355,11 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         report["plane_normal"] = n.tolist()
         message += (
             "circle fit (Kåsa 1976) in the plane of the readings: offset within the plane only; "
-            "offset along the normal left at 0 and soft-iron left at identity (not identifiable)"
+            + (
+                "offset along the normal set from the expected vertical field; soft-iron left at identity"
+                if field_up_ut is not None and up_n is not None
+                else "offset along the normal left at 0 and soft-iron left at identity (not identifiable)"
+            )
         )
         if report["arc_fraction"] < 0.5:
             message += f"; the readings cover only {report['arc_fraction']:.0%} of the circle, so the offset is weakly determined"

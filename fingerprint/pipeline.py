@@ -19,7 +19,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from .attitude import FORWARD_AXIS, AttitudeSettings, estimate_attitude, quat_rotate
+from .attitude import FORWARD_AXIS, AttitudeSettings, _lowpass, estimate_attitude, quat_rotate
 from .calibration import Calibration, fit_calibration
 from .errors import ConvergenceError, DataError
 from .odometry import OdometrySettings, odometry_motion
@@ -36,6 +36,9 @@ class PipelineSettings:
     odometry: OdometrySettings = field(default_factory=OdometrySettings)
     #: calibrate an uncalibrated log from the walk itself
     self_calibrate: bool = True
+    #: expected vertical field (µT, up positive) at the site, for the offset
+    #: along the vertical that planar self-calibration cannot see
+    field_up_ut: float | None = None
 
 
 def fill_gaps(t, x):
@@ -106,7 +109,7 @@ def calibration_verdict(mag_ut, *, calibrated_flag):
     return {"verdict": v, "b_mean_ut": mean, "b_sd_ut": sd, "flag": "yes" if calibrated_flag else "no"}
 
 
-def _choose_mag(log, calibration, settings, meta):
+def _choose_mag(log, calibration, settings, meta, acc):
     t = log.t
     if calibration is not None:
         src = log.mag_raw if calibration.source == "mag_raw" else log.mag
@@ -127,7 +130,8 @@ def _choose_mag(log, calibration, settings, meta):
         meta["calibration"] = {"method": "device" if log.magnetometer_calibrated else "none", "source": "mag"}
         return mag
     try:
-        cal, rep = fit_calibration(mag, source="mag")
+        cal, rep = fit_calibration(mag, source="mag", up_device=_lowpass(acc, 1.0 / float(np.median(np.diff(t))), 0.4),
+                                   field_up_ut=settings.field_up_ut)
     except (DataError, ConvergenceError) as err:
         meta["calibration"] = {"method": "none", "source": "mag", "message": f"self-calibration failed: {err}"}
         return mag
@@ -167,7 +171,7 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
     if gyro is None:
         gyro = np.zeros_like(acc)
         meta["warning"] = "no gyroscope samples: heading from the magnetometer only"
-    mag = _choose_mag(log, calibration, s, meta)
+    mag = _choose_mag(log, calibration, s, meta, acc)
     fwd = FORWARD_AXIS.get(platform, FORWARD_AXIS["handheld"])
     att_set = s.attitude
     if "warning" in meta and np.isfinite(att_set.mag_time_constant_s):

@@ -131,3 +131,25 @@ def test_cli_calibrate_on_real_walk(tmp_path, capsys):
     # a phone carried flat: rotations about one axis only -> fallback, said so
     assert obj["report"]["method"] == "circle-fallback" and "circle-fallback" in text
     assert obj["report"]["b_spread_after_ut"] < obj["report"]["b_spread_before_ut"]
+
+
+def test_planarity_from_gravity_despite_spatial_field_changes():
+    """A robot (z up) turning on a floor over a field that changes from
+    place to place by ±5 µT: the readings do not lie on a circle, but the
+    gravity directions show rotations about the vertical only."""
+    rng = np.random.default_rng(8)
+    n = 4000
+    yaw = np.linspace(0, 12 * np.pi, n) + rng.normal(0, 0.05, n)  # six turns
+    rot = Rotation.from_rotvec(np.column_stack([np.zeros(n), np.zeros(n), yaw]))
+    s = np.linspace(0, 40, n)
+    field = B_EARTH + 5 * np.column_stack([np.sin(s / 3), np.cos(s / 5), np.sin(s / 2)])
+    m = rot.inv().apply(field) + O + rng.normal(0, 0.3, (n, 3))
+    up = rot.inv().apply([0, 0, 1.0]) + rng.normal(0, 0.01, (n, 3))
+    cal, rep = fit_calibration(m, up_device=up)
+    assert rep["method"] == "circle-fallback" and "vertical only" in rep["message"]
+    assert np.abs(cal.offset_ut[:2] - O[:2]).max() < 3.0  # spatial changes leak in a little
+    assert cal.offset_ut[2] == pytest.approx(0.0, abs=0.5)  # left at 0 along the (noisy) mean up
+    # the expected vertical field (e.g. from IGRF) fixes the offset along up
+    cal2, rep2 = fit_calibration(m, up_device=up, field_up_ut=B_EARTH[2])
+    assert cal2.offset_ut[2] == pytest.approx(O[2], abs=1.0)
+    assert "expected vertical field" in rep2["message"]
