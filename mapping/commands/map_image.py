@@ -1,0 +1,28 @@
+"""``lodemap map-image``: draw a map file to a PNG."""
+
+from __future__ import annotations
+
+HELP = "draw a map file (field, uncertainty, coverage, graph) to a PNG"
+
+
+def add_arguments(parser):
+    parser.add_argument("map_path", metavar="FLOOR.map", help="map file written by 'lodemap build-map'")
+    parser.add_argument("--out", required=True, metavar="PNG", help="output image (written atomically)")
+    parser.add_argument("--kind", choices=("field", "quality"), default="field",
+                        help="field: b_x, b_y, b_up, |B|, sd, coverage (default); quality: coverage, latent sd, "
+                             "localisability and stretches to re-survey")
+    parser.add_argument("--dpi", type=int, default=130)
+
+
+def run(args):
+    from fingerprint.mapfile import load_map
+
+    from ..quality import field_image, quality_image
+
+    fmap = load_map(args.map_path)
+    if args.kind == "field":
+        field_image(fmap, args.out, dpi=args.dpi)
+    else:
+        quality_image(fmap, args.out, dpi=args.dpi)
+    print(f"wrote {args.out}")
+    return 0

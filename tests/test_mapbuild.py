@@ -1,0 +1,166 @@
+"""Floor-map orchestration pieces on synthetic walks with a known field.
+
+References: the stretch averages are checked against a plain Python loop
+(slow twin); coverage against a brute-force nearest-distance search; the
+free mask against shapely's ``contains_xy``; the plan-frame rotation
+against scipy's ``Rotation.from_euler``; the fitted field against the
+analytic field it was sampled from."""
+
+import math
+
+import numpy as np
+import pytest
+import shapely
+from scipy.spatial.transform import Rotation
+
+from fingerprint import Motion, ProcessedWalk
+from fingerprint.errors import ConfigError, DataError
+from mapping.floorplan import plan_from_geojson
+from mapping.mapbuild import (
+    SurveyWalk,
+    collect_samples,
+    fit_samples,
+    plan_rotation_matrix,
+    raster_map,
+    walk_samples,
+)
+
+ANGLE = math.radians(25.0)  # earth -> plan
+
+
+def _plan():
+    doc = {
+        "type": "FeatureCollection",
+        "features": [
+            {"type": "Feature", "properties": {"kind": "walkable"},
+             "geometry": {"type": "Polygon", "coordinates": [[[0, 0], [14, 0], [14, 10], [0, 10], [0, 0]]]}},
+            {"type": "Feature", "properties": {"kind": "obstacle"},
+             "geometry": {"type": "Polygon", "coordinates": [[[5, 4], [9, 4], [9, 6], [5, 6], [5, 4]]]}},
+        ],
+    }
+    return plan_from_geojson(doc)
+
+
+def _field(xy):
+    """Curl-free plan-frame field: -grad of Gaussian bumps plus a constant."""
+    cent = np.array([[3.0, 3.0], [10.0, 7.0], [7.0, 8.5], [11.0, 2.0]])
+    amp = np.array([12.0, -9.0, 7.0, 10.0])
+    d = xy[:, None, :] - cent[None]
+    g = amp * np.exp(-np.sum(d**2, -1) / (2 * 1.8**2))
+    return np.column_stack([
+        np.sum(g * d[..., 0], 1) / 1.8**2 + 15.0,
+        np.sum(g * d[..., 1], 1) / 1.8**2 - 4.0,
+        np.sum(g, 1) / 1.8 - 44.0,
+    ])
+
+
+def _walk(xy, heading_plan, rng, *, offset_dev=np.zeros(3), noise=0.2):
+    """A ProcessedWalk whose samples sit at ``xy`` with the device flat and
+    pointing along ``heading_plan``; the earth-frame field is the plan field
+    rotated back, plus a device-frame offset turned with the heading."""
+    n = xy.shape[0]
+    h_earth = heading_plan - ANGLE
+    rot_de = Rotation.from_euler("z", (h_earth - np.pi / 2)[:, None])  # device (x right, y forward) -> earth
+    b_plan = _field(xy) + Rotation.from_euler("z", heading_plan[:, None]).apply(offset_dev)
+    b_earth = b_plan @ plan_rotation_matrix(ANGLE)  # inverse rotation (orthogonal)
+    b_earth = b_earth + rng.normal(size=(n, 3)) * noise
+    t = np.arange(n) * 0.02
+    motion = Motion(t=t[1:], length_m=np.hypot(*np.diff(xy, axis=0).T), heading_rad=h_earth[1:])
+    return ProcessedWalk(t=t, quat=rot_de.as_quat(), mag_earth_ut=b_earth, heading_rad=h_earth,
+                         mag_noise_ut=noise, motion=motion)
+
+
+def _lawnmower(rng, y_rows, x0=0.5, x1=13.5, step=0.03):
+    pts, hd = [], []
+    for k, y in enumerate(y_rows):
+        x = np.arange(x0, x1, step)
+        if k % 2:
+            x = x[::-1]
+        pts.append(np.column_stack([x, np.full(x.size, y) + rng.normal(size=x.size) * 0.02]))
+        hd.append(np.full(x.size, 0.0 if k % 2 == 0 else np.pi))
+    return np.vstack(pts), np.concatenate(hd)
+
+
+def test_plan_rotation_matches_scipy():
+    r = plan_rotation_matrix(0.7)
+    np.testing.assert_allclose(r, Rotation.from_euler("z", 0.7).as_matrix(), atol=1e-15)
+
+
+def test_walk_samples_match_slow_loop():
+    rng = np.random.default_rng(0)
+    xy, hd = _lawnmower(rng, [1.0, 2.0])
+    walk = _walk(xy, hd, rng)
+    out = walk_samples(walk, xy, earth_to_plan_rad=ANGLE, spacing_m=0.25)
+    # slow twin: walk the samples, open a new stretch every 0.25 m travelled
+    b_plan = walk.mag_earth_ut @ plan_rotation_matrix(ANGLE).T
+    s, groups, cur, last = 0.0, [], [0], xy[0]
+    for i in range(1, xy.shape[0]):
+        s_new = s + np.hypot(*(xy[i] - last))
+        if math.floor(s_new / 0.25) != math.floor(s / 0.25):
+            groups.append(cur)
+            cur = []
+        cur.append(i)
+        s, last = s_new, xy[i]
+    groups.append(cur)
+    assert out["xy"].shape[0] == len(groups)
+    for k in (0, 7, len(groups) // 2, len(groups) - 1):
+        g = groups[k]
+        np.testing.assert_allclose(out["xy"][k], xy[g].mean(0), atol=1e-12)
+        np.testing.assert_allclose(out["b_ut"][k], b_plan[g].mean(0), atol=1e-12)
+        assert out["n_raw"][k] == len(g)
+    # heading-only rotations: plan heading about the vertical
+    k = 3
+    np.testing.assert_allclose(out["rotations"][k], Rotation.from_euler("z", out["heading_rad"][k]).as_matrix(), atol=1e-12)
+    with pytest.raises(ConfigError):
+        walk_samples(walk, xy, earth_to_plan_rad=ANGLE, spacing_m=0)
+
+
+def test_fit_and_raster_recover_field_and_walk_offsets():
+    rng = np.random.default_rng(3)
+    walks, offsets = [], []
+    positions = {}
+    rows = np.arange(0.6, 9.6, 0.8)
+    for w in range(4):
+        sel = rows[w::2] if w < 2 else rows[(w - 2)::2] + 0.4
+        xy, hd = _lawnmower(rng, sel)
+        keep = ~((xy[:, 0] > 4.8) & (xy[:, 0] < 9.2) & (xy[:, 1] > 3.8) & (xy[:, 1] < 6.2))
+        xy, hd = xy[keep], hd[keep]
+        off = rng.normal(size=3) * 2.0
+        offsets.append(off)
+        walks.append(SurveyWalk(f"w{w}", _walk(xy, hd, rng, offset_dev=off)))
+        positions[f"w{w}"] = xy
+    plan = _plan()
+    smp = collect_samples(walks, plan=plan, earth_to_plan_rad=ANGLE, spacing_m=0.25, positions=positions)
+    assert smp.names == ["w0", "w1", "w2", "w3"] and smp.n > 500
+    model = fit_samples(smp, kernel="curl-free", domain=((0, 0), (14, 10)), kernel_params={"n_basis": 300})
+    # walk offsets recovered up to their common part (which is the constant)
+    est = model.walk_offsets_ut_
+    true = np.array(offsets)
+    np.testing.assert_allclose(est - est.mean(0), true - true.mean(0), atol=0.4)
+    origin, mean, var, cov, free = raster_map(model, plan, resolution_m=0.5, survey_xy=smp.xy)
+    ny, nx = free.shape
+    xs = origin[0] + 0.5 * np.arange(nx)
+    ys = origin[1] + 0.5 * np.arange(ny)
+    gx, gy = np.meshgrid(xs, ys)
+    centres = np.column_stack([gx.ravel(), gy.ravel()])
+    assert np.array_equal(free.ravel(), shapely.contains_xy(plan.free, centres[:, 0], centres[:, 1]))
+    brute = np.min(np.linalg.norm(centres[:, None] - smp.xy[None], axis=-1), axis=1)
+    np.testing.assert_allclose(cov.ravel(), brute, atol=1e-9)
+    # the map against the analytic field (minus the mean offset, which no
+    # survey can separate from the field) in well-covered free space
+    truth = _field(centres).reshape(ny, nx, 3)
+    good = free & (cov < 0.5)
+    err = mean[good] - truth[good]
+    err -= err.mean(0)
+    assert np.sqrt(np.mean(err**2)) < 0.5
+    assert np.all(var[free] > 0)
+
+
+def test_collect_samples_errors():
+    with pytest.raises(DataError, match="none of the survey walks"):
+        rng = np.random.default_rng(0)
+        xy = np.full((50, 2), np.nan)
+        w = SurveyWalk("bad", _walk(np.zeros((50, 2)), np.zeros(50), rng))
+        collect_samples([w], earth_to_plan_rad=0.0, positions={"bad": xy})
+    with pytest.raises(ConfigError, match="valid"):
+        fit_samples(None, kernel="spline")
