@@ -26,7 +26,7 @@ from .odometry import OdometrySettings, odometry_motion
 from .records import Motion, ProcessedWalk, WalkLog
 from .steps import DEFAULT_STEP_CONSTANT, StepSettings, detect_steps, weinberg_length
 
-__all__ = ["PipelineSettings", "process_walk", "mag_noise_ut", "fill_gaps", "calibration_verdict"]
+__all__ = ["PipelineSettings", "process_walk", "mag_noise_ut", "fill_gaps", "calibration_verdict", "up_directions"]
 
 
 @dataclass(frozen=True)
@@ -56,6 +56,17 @@ def fill_gaps(t, x):
     for j in range(x.shape[1]):
         out[:, j] = np.interp(t, t[ok], x[ok, j])
     return out
+
+
+def up_directions(t, acc, *, cutoff_hz=0.4):
+    """Unit up direction in the device frame per sample ((N, 3)): the
+    accelerometer (gaps filled) low-passed with a zero-phase Butterworth
+    filter, normalised. None when there is no accelerometer sample."""
+    acc = fill_gaps(t, acc)
+    if acc is None:
+        return None
+    g = _lowpass(acc, 1.0 / float(np.median(np.diff(t))), cutoff_hz)
+    return g / np.linalg.norm(g, axis=1, keepdims=True)
 
 
 def mag_noise_ut(mag_ut):
@@ -130,7 +141,7 @@ def _choose_mag(log, calibration, settings, meta, acc):
         meta["calibration"] = {"method": "device" if log.magnetometer_calibrated else "none", "source": "mag"}
         return mag
     try:
-        cal, rep = fit_calibration(mag, source="mag", up_device=_lowpass(acc, 1.0 / float(np.median(np.diff(t))), 0.4),
+        cal, rep = fit_calibration(mag, source="mag", up_device=up_directions(t, acc),
                                    field_up_ut=settings.field_up_ut)
     except (DataError, ConvergenceError) as err:
         meta["calibration"] = {"method": "none", "source": "mag", "message": f"self-calibration failed: {err}"}

@@ -86,3 +86,29 @@ def test_features_noise_grows_with_heading_uncertainty():
     f2 = field_features(w, heading_sd_rad=0.1)
     np.testing.assert_allclose(f1["b_fwd_sd"], w.mag_noise_ut)
     assert np.all(f2["b_fwd_sd"] > f1["b_fwd_sd"])
+
+
+def test_cli_inspect_and_calibrate_robot_log(tmp_path, capsys):
+    """Through mapping.cli.main: a robot log written by our writer."""
+    import json
+
+    from fingerprint.logio import write_walk_log
+    from mapping.cli import main
+
+    log, _, _ = _robot_log(offset=(30.0, -80.0, 55.0))
+    p = tmp_path / "rb.log.csv.gz"
+    write_walk_log(p, log)
+    assert main(["inspect", str(p)]) == 0
+    out = capsys.readouterr().out
+    assert "odometry" in out and "distance 30.0 m" in out
+    assert "self:circle-fallback" in out
+    cal_path = tmp_path / "calibration.json"
+    assert main(["calibrate", str(p), "--out", str(cal_path), "--field-up-ut", str(B_ENU[2])]) == 0
+    capsys.readouterr()
+    rep = json.loads(cal_path.read_text())
+    assert rep["report"]["method"] == "circle-fallback"
+    np.testing.assert_allclose(rep["offset_ut"], [30.0, -80.0, 55.0], atol=1.0)
+    assert main(["inspect", "--json", "--calibration", str(cal_path), str(p)]) == 0
+    s = json.loads(capsys.readouterr().out)
+    assert s["calibration"]["method"] == "given" and s["calibration_verdict"]["verdict"].startswith("good")
+    assert main(["calibrate", str(p), "--out", str(cal_path), "--field-ut", "-3"]) == 2

@@ -106,3 +106,20 @@ def test_features_against_scipy_rotation(f1):
     # earth frame "north" is magnetic north: the mean horizontal field points north
     mean = w.mag_earth_ut[:, :2].mean(axis=0)
     assert abs(np.degrees(np.arctan2(mean[0], mean[1]))) < 15.0
+
+
+def test_cli_inspect_real_walk(capsys):
+    from mapping.cli import main
+
+    assert main(["inspect", "--json", str(F1 / "walk_001.log.csv.gz")]) == 0
+    import json as _json
+
+    s = _json.loads(capsys.readouterr().out)
+    assert s["samples"] == 1455 and s["gaps_over_1s"] == []
+    assert s["rate_hz"] == pytest.approx(50.0, rel=0.01)  # real_data README: about 50 Hz
+    # checkpoints of walk_001 span 28.5 s over about 31 m of straight segments
+    cps = read_checkpoints(F1 / "walk_001.checkpoints.csv")
+    path_m = np.linalg.norm(np.diff(cps.xy, axis=0), axis=1).sum()
+    assert s["distance_m"] == pytest.approx(path_m, rel=0.25)
+    assert 1.2 < s["cadence_hz"] < 2.2  # walking cadence (common practice, no source)
+    assert s["calibration_verdict"]["verdict"].startswith(("good", "fair"))

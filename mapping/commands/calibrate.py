@@ -12,6 +12,9 @@ def add_arguments(parser):
     parser.add_argument("--source", choices=["auto", "mag", "mag_raw"], default="auto",
                         help="columns to calibrate: mx,my,mz or mx_raw,my_raw,mz_raw "
                              "(default auto: the raw columns when the log has them)")
+    parser.add_argument("--field-up-ut", type=float, metavar="BUP",
+                        help="expected vertical field in µT (up positive, so negative in the northern "
+                             "hemisphere); fixes the vertical offset when the log only turns about the vertical")
     parser.add_argument("--field-ut", type=float, metavar="B",
                         help="true field magnitude at the site in µT (sets the matrix scale); "
                              "default keeps det(matrix) = 1")
@@ -23,6 +26,7 @@ def run(args):
     from fingerprint.calibration import fit_calibration
     from fingerprint.errors import ConfigError, DataError
     from fingerprint.logio import read_walk_log
+    from fingerprint.pipeline import up_directions
 
     log = read_walk_log(args.log)
     src = args.source
@@ -33,7 +37,8 @@ def run(args):
         raise DataError("the log has no mx_raw,my_raw,mz_raw columns", path=args.log)
     if args.field_ut is not None and not (np.isfinite(args.field_ut) and args.field_ut > 0):
         raise ConfigError(f"--field-ut must be a positive number of µT, got {args.field_ut}")
-    cal, rep = fit_calibration(data, field_ut=args.field_ut, source=src)
+    up = up_directions(log.t, log.acc) if log.n >= 16 else None
+    cal, rep = fit_calibration(data, field_ut=args.field_ut, source=src, up_device=up, field_up_ut=args.field_up_ut)
     cal.meta["log"] = str(args.log)
     cal.save(args.out)
     o = rep["offset_ut"]

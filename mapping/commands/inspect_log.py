@@ -29,7 +29,7 @@ def summarise(path, *, calibration=None, step_constant=None, on_duplicate="error
     """Summary dict of a log (see the command's output)."""
     from fingerprint.calibration import fit_calibration
     from fingerprint.logio import validate_walk_log
-    from fingerprint.pipeline import process_walk
+    from fingerprint.pipeline import process_walk, up_directions
 
     rep = validate_walk_log(path, on_duplicate=on_duplicate)
     log = rep.log
@@ -66,9 +66,11 @@ def summarise(path, *, calibration=None, step_constant=None, on_duplicate="error
         src = log.mag
         if calibration is not None:
             src = calibration.apply(log.mag_raw if calibration.source == "mag_raw" else log.mag)
-        mag = src[np.isfinite(src).all(axis=1)]
+        ok = np.isfinite(src).all(axis=1)
+        mag = src[ok]
+        up = up_directions(log.t, log.acc)
         try:
-            _, fit = fit_calibration(mag, source="mag")
+            _, fit = fit_calibration(mag, source="mag", up_device=None if up is None else up[ok])
             verdict = dict(verdict, residual_fit=fit["method"], residual_offset_ut=fit["offset_ut"],
                            spread_before_ut=fit["b_spread_before_ut"], spread_after_ut=fit["b_spread_after_ut"])
         except Exception as err:  # a residual check only; the verdict stands without it
