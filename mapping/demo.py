@@ -30,6 +30,8 @@ from . import evaluate as E
 __all__ = ["DemoResult", "run_demo", "find_demo_site", "DEMO_MODES"]
 
 DEMO_MODES = ("tracking", "global", "dead-reckoning")
+#: basis functions of the reduced-rank map in a quick run (the full run uses the map's default)
+QUICK_BASIS = 256
 
 
 @dataclass
@@ -70,7 +72,7 @@ def _simulate(site_dir, sim_dir, *, seed, quick):
             pass
     argv = ["simulate", str(site_dir), "--out", str(sim_dir), "--seed", str(seed)]
     if quick:
-        argv += ["--walks", "4"]
+        argv += ["--walks", "2"]
     rc = cli_main(argv)
     if rc != 0:
         raise LodemapError(f"lodemap {' '.join(argv)} failed with status {rc}")
@@ -131,31 +133,47 @@ def run_demo(out, *, quick=False, seed=0, site_dir=None, progress=True, jobs=1, 
     for floor in site.floors:
         survey = find_walks(out / "sim" / floor / "survey")
         log(f"[2/3] building the map of floor {floor} from {len(survey)} survey walks ...")
-        fmap = build_floor_map(site, floor, survey, resolution_m=resolution, seed=seed, progress=progress)
+        fmap = build_floor_map(site, floor, survey, resolution_m=resolution, seed=seed, progress=progress,
+                               kernel_params={"n_basis": QUICK_BASIS} if quick else None)
         save_map(out / "maps" / f"{floor}.map", fmap)
         fmaps[floor] = fmap
     timings["maps_s"] = time.perf_counter() - t1
 
     t2 = time.perf_counter()
-    per_mode = {}
+    per_mode = {m: {} for m in DEMO_MODES}
+    track_imgs = {}
     ss = np.random.SeedSequence(int(seed))
-    mode_seeds = dict(zip(DEMO_MODES, ss.generate_state(len(DEMO_MODES))))
-    for mode in DEMO_MODES:
-        evs = {}
-        baselines = ("dead-reckoning", "no-field", "dtw") if mode == "tracking" else ("dead-reckoning", "no-field")
-        if mode == "dead-reckoning":
-            baselines = ("no-field",)
-        for floor, fmap in fmaps.items():
-            test = find_walks(out / "sim" / floor / "test")
-            log(f"[3/3] evaluating {mode} on floor {floor} ({len(test)} test walks) ...")
-            ev = E.evaluate_walks(fmap, test, mode=mode, settings=settings, seed=int(mode_seeds[mode]),
-                                  baselines=baselines, jobs=jobs, progress=progress,
-                                  map_info={"floor": floor, "path": str(out / "maps" / f"{floor}.map"),
-                                            "resolution_m": resolution, "kernel": fmap.meta.get("kernel", "?")})
-            E.write_outputs(ev, fmap, out / "eval" / floor / mode,
-                            title=f"lodemap demo: floor {floor}, {mode}")
-            evs[floor] = ev
-        per_mode[mode] = evs
+    mode_seeds = dict(zip(DEMO_MODES, (int(x) for x in ss.generate_state(len(DEMO_MODES)))))
+    for floor, fmap in fmaps.items():
+        info = {"floor": floor, "path": str(out / "maps" / f"{floor}.map"), "resolution_m": resolution,
+                "kernel": fmap.meta.get("kernel", "?")}
+        loaded = E.load_walks(find_walks(out / "sim" / floor / "test"))
+        log(f"[3/3] floor {floor}: tracking with its baselines on {len(loaded)} test walks ...")
+        tr = E.evaluate_walks(fmap, loaded, mode="tracking", settings=settings, seed=mode_seeds["tracking"],
+                              baselines=("dead-reckoning", "no-field", "dtw"), jobs=jobs, progress=progress,
+                              map_info=info)
+        log(f"[3/3] floor {floor}: global start on {len(loaded)} test walks ...")
+        gl = E.evaluate_walks(fmap, loaded, mode="global", settings=settings, seed=mode_seeds["global"],
+                              baselines=(), jobs=jobs, progress=progress, map_info=info)
+        # the baselines of the global run and the dead-reckoning mode are the
+        # tracking run's own (same walks, same start checkpoint)
+        by_name = {w.name: w for w in tr.walks}
+        base = ("dead-reckoning", "no-field")
+        gl.walks = [E.derive(w, "global", {**w.results, **{b: by_name[w.name].results[b] for b in base}})
+                    if w.name in by_name else w for w in gl.walks]
+        gl.baselines = base
+        gl.summary = E.summary_of(gl)
+        dr_walks = [E.derive(w, "dead-reckoning", {b: w.results[b] for b in base}) for w in tr.walks]
+        dr = E.Evaluation(mode="dead-reckoning", seed=mode_seeds["tracking"], settings=tr.settings, walks=dr_walks,
+                          skipped=tr.skipped, runtime_s=sum(w.results["dead-reckoning"].time_s for w in dr_walks),
+                          summary={}, map_info=info, baselines=("no-field",))
+        dr.summary = E.summary_of(dr)
+        for mode, ev in (("tracking", tr), ("global", gl), ("dead-reckoning", dr)):
+            paths = E.write_outputs(ev, fmap, out / "eval" / floor / mode,
+                                    title=f"lodemap demo: floor {floor}, {mode}")
+            per_mode[mode][floor] = ev
+            if mode == "tracking":
+                track_imgs[floor] = [b for k, b in paths["images"].items() if k.startswith("tracks")]
     timings["evaluate_s"] = time.perf_counter() - t2
     timings["total_s"] = time.perf_counter() - t0
 
@@ -168,7 +186,7 @@ def run_demo(out, *, quick=False, seed=0, site_dir=None, progress=True, jobs=1, 
                                           "timings_s": {k: round(v, 2) for k, v in timings.items()},
                                           "summaries": summaries})
     report = out / "report.html"
-    _write_demo_report(report, site, pooled, per_mode, fmaps, summaries, timings, seed=seed, quick=quick)
+    _write_demo_report(report, site, pooled, track_imgs, summaries, timings, seed=seed, quick=quick)
     return DemoResult(out=out, report=report, summaries=summaries, timings_s=timings)
 
 
@@ -186,7 +204,7 @@ def summary_rows(summaries):
     return ["mode", "floors"] + list(_TABLE_KEYS), rows
 
 
-def _write_demo_report(path, site, pooled, per_mode, fmaps, summaries, timings, *, seed, quick):
+def _write_demo_report(path, site, pooled, track_imgs, summaries, timings, *, seed, quick):
     import html as _html
 
     from . import report as R
@@ -201,15 +219,14 @@ def _write_demo_report(path, site, pooled, per_mode, fmaps, summaries, timings, 
                  f"alone ({dr / med:.1f} times smaller).</p>")
     secs, _ = E.report_sections(
         tr, None,
-        tracks_body="".join(
-            f"<h3>Floor {_html.escape(f)}</h3>" + E.tracks_html(per_mode["tracking"][f], fm, prefix=f"tracks_{f}",
-                                                               title=f"floor {f}: tracking")[0]
-            for f, fm in fmaps.items()
+        tracks_body=E.TRACKS_NOTE + "".join(
+            f"<h3>Floor {_html.escape(f)}</h3>" + "".join(R.img_tag(b, f"tracks floor {f}") for b in imgs)
+            for f, imgs in track_imgs.items()
         ),
         extra_cautions=["All walks here are simulated in an invented building: the sensors, the field and the "
                         "walkers follow models, so real buildings and phones do worse (see the real-data numbers "
                         "in the README)."],
-        extra_methods_rows=[["site", site.name], ["floors", ", ".join(fmaps)], ["seed", seed],
+        extra_methods_rows=[["site", site.name], ["floors", ", ".join(track_imgs)], ["seed", seed],
                             ["quick", quick], ["map resolution (m)", 0.5 if quick else 0.25]]
         + [[f"time {k}", round(v, 1)] for k, v in timings.items()],
     )

@@ -49,6 +49,9 @@ __all__ = [
     "evaluate_walk",
     "evaluate_walks",
     "load_walk",
+    "load_walks",
+    "LoadedWalk",
+    "derive",
     "write_outputs",
     "summary_of",
     "report_sections",
@@ -243,8 +246,39 @@ def load_walk(walk_files):
     return walk, cps, truth
 
 
+@dataclass(frozen=True)
+class LoadedWalk:
+    """A walk already read and processed (to evaluate it several times)."""
+
+    name: str
+    walk: object
+    checkpoints: object
+    truth: object = None
+
+
+def load_walks(walk_files):
+    """Read and process walks once: list of :class:`LoadedWalk`."""
+    out = []
+    for wf in walk_files:
+        walk, cps, truth = load_walk(wf)
+        out.append(LoadedWalk(wf.name, walk, cps, truth))
+    return out
+
+
+def derive(we, main, results):
+    """The same walk scored for another method under test: ``results``
+    (method -> MethodResult, reused from runs already made on this walk)
+    with ``main`` among them; convergence recomputed for ``main``."""
+    r = results[main]
+    conv, cdist, _ = M.convergence(r.errors_m[r.scored], we.distance_m[r.scored])
+    return dataclasses.replace(we, main=main, results=dict(results), converged=conv, convergence_distance_m=cdist)
+
+
 def _one(wf, fmap, mode, settings, seed, baselines, start_sigma_m):
-    walk, cps, truth = load_walk(wf)
+    if isinstance(wf, LoadedWalk):
+        walk, cps, truth = wf.walk, wf.checkpoints, wf.truth
+    else:
+        walk, cps, truth = load_walk(wf)
     if cps is None:
         return wf.name, "no checkpoints file"
     need = 1 if mode == "global" else 2
@@ -262,7 +296,7 @@ def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_partic
     ----------
     fmap : FieldMap
     walk_files : list of ``mapping.walkset.WalkFiles`` (name, log,
-        checkpoints, track)
+        checkpoints, track) or of :class:`LoadedWalk`
     settings : FilterSettings or None; ``n_particles`` overrides its particle
         counts (tracking and global)
     seed : int, root seed; walk ``i`` gets ``SeedSequence(seed).spawn(n)[i]``
@@ -402,7 +436,8 @@ def write_outputs(ev, fmap, out_dir, *, title=None):
 
     Returns
     -------
-    dict of name -> Path
+    dict of name -> Path (and ``images``: file name -> base64 PNG, to
+    embed the same figures elsewhere)
     """
     from fingerprint.logio import write_track
 
@@ -427,6 +462,7 @@ def write_outputs(ev, fmap, out_dir, *, title=None):
     for name, b64 in images.items():
         R.save_png(out / name, b64)
         paths[name] = out / name
+    paths["images"] = {"error_cdf.png": cdf_b64, **images}
     R.write_report(paths["report"], title or f"lodemap evaluation: {ev.map_info.get('floor', '')} {ev.mode}".strip(),
                    sections, subtitle=f"seed {ev.seed}; {len(ev.walks)} walks; written by lodemap evaluate")
     return paths

@@ -102,7 +102,7 @@ def figure_to_base64(fig, *, dpi=100):
     import matplotlib.pyplot as plt
 
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi, bbox_inches="tight")
+    fig.savefig(buf, format="png", dpi=dpi)
     plt.close(fig)
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
@@ -196,6 +196,7 @@ def plot_error_cdf(errors_by_method, *, title="Error at checkpoints", xmax_m=Non
     ax.set_title(title)
     ax.grid(alpha=0.3)
     ax.legend(loc="lower right", fontsize=8)
+    fig.tight_layout()
     return fig
 
 

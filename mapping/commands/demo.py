@@ -24,7 +24,7 @@ def add_arguments(parser):
                         help="fewer walks, a coarser map and fewer particles (a quick smoke run)")
     parser.add_argument("--seed", type=int, default=0, help="root seed of everything (default: 0)")
     parser.add_argument("--site", metavar="DIR", help="the demo building folder (default: the bundled demo_building/)")
-    parser.add_argument("--jobs", type=int, default=1, metavar="N", help="walks evaluated in parallel (default: 1)")
+    parser.add_argument("--jobs", type=int, default=2, metavar="N", help="walks evaluated in parallel (default: 2)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bars")
 
 
