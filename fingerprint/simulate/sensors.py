@@ -239,5 +239,5 @@ def synthesize_log(traj: Trajectory, field_model, device: Device, *, rng, t0=0.0
         odom=odom,
         meta=info,
     )
-    truth = SensorTruth(t_rel + t0, xy, z, heading, rot.as_quat(), b_plan, b_dev)
+    truth = SensorTruth(log.t.copy(), xy, z, heading, rot.as_quat(), b_plan, b_dev)
     return log, truth

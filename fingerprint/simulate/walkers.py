@@ -27,7 +27,7 @@ from scipy.spatial.transform import Rotation
 
 from ..errors import ConfigError
 
-__all__ = ["Trajectory", "HandheldWalker", "RobotWalker", "smooth_path", "lateral_offset"]
+__all__ = ["Trajectory", "HandheldWalker", "RobotWalker", "turn_in_hand", "smooth_path", "lateral_offset"]
 
 G = 9.80665
 
@@ -240,6 +240,7 @@ class HandheldWalker:
         step_times, step_lens = [], []
         t = stand_s[0]
         leg_steps = []
+        turns = []  # (t0, t1) of the turns on the spot between legs
         for i, xy in enumerate(pieces):
             total = _arc(xy)[-1]
             if total < 1e-6:
@@ -263,7 +264,9 @@ class HandheldWalker:
                 step_lens.append(lens[k])
             leg_steps.append((np.array(starts), dur, lens))
             if i < len(pieces) - 1:
-                t += float(rng.uniform(1.2, 2.0))  # turn on the spot
+                turn = float(rng.uniform(1.2, 2.0))  # turn on the spot
+                turns.append((t, t + turn))
+                t += turn
         t_end = t + stand_s[1]
         tt = np.arange(0.0, t_end, dt)
         n = tt.size
@@ -307,7 +310,18 @@ class HandheldWalker:
         idx = np.flatnonzero(~standing)
         if idx.size:
             head = np.interp(np.arange(n), idx, tang[idx])
-        head = gaussian_filter1d(head, sigma=0.25 / dt, mode="nearest")
+            # standing still (start, end, pauses) holds the heading; only the
+            # turns on the spot between legs rotate
+            in_turn = np.zeros(n, dtype=bool)
+            for t0_, t1_ in turns:
+                in_turn |= (tt >= t0_ - 0.3) & (tt <= t1_ + 0.3)
+            hold = standing & ~in_turn
+            run_start = np.flatnonzero(hold & ~np.concatenate([[False], hold[:-1]]))
+            run_end = np.flatnonzero(hold & ~np.concatenate([hold[1:], [False]]))
+            for a, b in zip(run_start, run_end):
+                ref = a - 1 if a > 0 else min(b + 1, n - 1)
+                head[a : b + 1] = head[ref]
+        head = gaussian_filter1d(head, sigma=0.15 / dt, mode="nearest")
         # step events (body positions) for the truth
         st = np.array(step_times)
         step_xy = np.vstack([xy[:1], np.column_stack([np.interp(st, tt, xy[:, 0]), np.interp(st, tt, xy[:, 1])])])
@@ -486,3 +500,34 @@ class RobotWalker:
         }
         return Trajectory(tt, xy, np.full(n, self.mount_height_m), rot.as_quat(), _wrap(head), acc,
                           _body_rates(rot, dt), np.zeros(0), xy[:: max(1, int(0.1 / dt))], "robot", params)
+
+
+def turn_in_hand(xy, *, rng, duration_s=30.0, height_m=1.1, dt=0.005):
+    """A phone turned slowly through many orientations at one spot (the
+    figure-of-eight motion a magnetometer calibration asks for).
+
+    Parameters
+    ----------
+    xy : (2,) plan position
+    rng : numpy.random.Generator
+    duration_s : float
+    height_m : float
+
+    Returns
+    -------
+    Trajectory (no steps; the phone stays at ``xy``)
+    """
+    n = int(round(duration_s / dt))
+    t = dt * np.arange(n)
+    u = t / duration_s
+    # yaw two full turns, pitch and roll sweep +-70 degrees at other rates
+    ph = rng.uniform(0, 2 * np.pi, 2)
+    yaw = 4 * np.pi * u + rng.uniform(-np.pi, np.pi)
+    pitch = np.radians(70) * np.sin(2 * np.pi * 3.0 * u + ph[0])
+    roll = np.radians(70) * np.sin(2 * np.pi * 5.0 * u + ph[1])
+    rot = Rotation.from_euler("ZXY", np.column_stack([yaw - np.pi / 2, pitch, roll]))
+    fwd = rot.apply([0.0, 1.0, 0.0])
+    head = np.arctan2(fwd[:, 1], fwd[:, 0])
+    xy_arr = np.tile(np.asarray(xy, float), (n, 1))
+    return Trajectory(t, xy_arr, np.full(n, height_m), rot.as_quat(), head, np.zeros((n, 3)), _body_rates(rot, dt),
+                      np.zeros(0), xy_arr[:1].repeat(2, 0), "handheld", {"platform": "handheld", "motion": "turn_in_hand"})
