@@ -71,6 +71,8 @@ _NWU_TO_ENU = Rotation.from_euler("z", 90.0, degrees=True)
 class AttitudeSettings:
     """Parameters of :func:`estimate_attitude`.
 
+    method : "complementary" (default, vectorised) or "madgwick" (the
+        recursive filter, per-sample loop; about 100x slower)
     tilt_cutoff_hz : low-pass cutoff for gravity from the accelerometer
     mag_time_constant_s : Gaussian window (sd) of the magnetometer heading
         correction; ``float("inf")`` ignores the magnetometer (heading then
@@ -81,8 +83,11 @@ class AttitudeSettings:
     disturbance_ut : scale (µT) of the magnitude/dip down-weighting
     robust_passes : reweighting passes of the heading correction
     robust_scale_rad : scale of the azimuth residual down-weighting
+    max_gap_s : sample spacing above which the gyro is not integrated
+    madgwick_beta : gain of the Madgwick filter (rad/s)
     """
 
+    method: str = "complementary"
     tilt_cutoff_hz: float = 0.4
     mag_time_constant_s: float = 20.0
     still_window_s: float = 1.0
@@ -91,6 +96,8 @@ class AttitudeSettings:
     disturbance_ut: float = 8.0
     robust_passes: int = 2
     robust_scale_rad: float = 0.25
+    max_gap_s: float = 1.0
+    madgwick_beta: float = 0.041
 
 
 @dataclass(frozen=True, eq=False)
@@ -214,7 +221,13 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
     dt = np.diff(t)
     fs = 1.0 / float(np.median(dt))
 
+    if s.method not in ("complementary", "madgwick"):
+        from .errors import ConfigError
+
+        raise ConfigError(f"attitude method must be 'complementary' or 'madgwick', got {s.method!r}")
     bias, still = gyro_bias(t, acc, gyro, settings=s)
+    if s.method == "madgwick":
+        return _madgwick_attitude(t, acc, gyro - bias, mag, fwd, s, bias, still)
     w = gyro - bias
 
     g = _lowpass(acc, fs, s.tilt_cutoff_hz)
@@ -236,6 +249,11 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
     scale = np.where(vn > 1e-15, ang / np.where(vn > 1e-15, vn, 1.0), 2.0)
     twist = sgn * rv[:, 2] * scale
     dpsi = 0.5 * (w_up[1:] + w_up[:-1]) * dt - twist
+    # across a gap in the log the gyro saw nothing: the turn over the gap is
+    # taken from the magnetometer azimuths just before and after it (zero
+    # without a magnetometer)
+    gaps = np.flatnonzero(dt > s.max_gap_s)
+    dpsi[gaps] = 0.0
     psi_g = np.concatenate([[0.0], np.cumsum(dpsi)])
 
     meta = {"method": "complementary (vectorised)", "gyro_bias_rad_s": bias.tolist(), "still_samples": int(still.sum())}
@@ -245,6 +263,14 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
         mL = quat_rotate(qt, mag)
         alpha = np.arctan2(mL[:, 1], mL[:, 0])
         psi_m = np.pi / 2 - alpha
+        if gaps.size:
+            nw = max(1, int(round(fs)))
+            d0 = np.exp(1j * (psi_m - psi_g))  # gyro-relative azimuth, gap turn = 0
+            for k in gaps:
+                before = np.angle(np.mean(d0[max(0, k + 1 - nw) : k + 1]))
+                after = np.angle(np.mean(d0[k + 1 : k + 1 + nw]))
+                dpsi[k] = np.angle(np.exp(1j * (after - before)))
+            psi_g = np.concatenate([[0.0], np.cumsum(dpsi)])
         d = psi_m - psi_g
         # weights: magnitude and dip far from the walk median = disturbed
         bm = np.linalg.norm(mag, axis=1)
@@ -288,6 +314,30 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
     fL = quat_rotate(qt, fwd)
     heading = np.angle(np.exp(1j * (psi + np.arctan2(fL[:, 1], fL[:, 0]))))
     return Attitude(quat=quat, heading_rad=heading, up_device=up, gyro_bias=bias, meta=meta)
+
+
+def _madgwick_attitude(t, acc, gyro, mag, fwd, s, bias, still):
+    n = t.size
+    dt = np.concatenate([[0.0], np.diff(t)])
+    dt = np.where(dt > s.max_gap_s, 0.0, dt)
+    up0 = _lowpass(acc, 1.0 / float(np.median(np.diff(t))), s.tilt_cutoff_hz)[0]
+    q0 = tilt_quat(up0[None, :])
+    if mag is not None:
+        # start with the tilt-compensated compass heading of sample 0
+        mL = quat_rotate(q0, mag[:1])[0]
+        psi = np.pi / 2 - np.arctan2(mL[1], mL[0])
+        qz = np.array([0.0, 0.0, np.sin(psi / 2), np.cos(psi / 2)])
+        x, y, z, w = q0[0]
+        c, sn = qz[3], qz[2]
+        q0 = np.array([[c * x - sn * y, c * y + sn * x, c * z + sn * w, c * w - sn * z]])
+        quat = madgwick_marg(gyro, acc, mag, dt_s=dt, beta=s.madgwick_beta, q0=q0[0])
+    else:
+        raise DataError("the Madgwick attitude needs magnetometer samples")
+    f = quat_rotate(quat, fwd)
+    up = quat_rotate(quat * [-1.0, -1.0, -1.0, 1.0], np.array([0.0, 0.0, 1.0]))
+    meta = {"method": f"madgwick (beta {s.madgwick_beta:g})", "gyro_bias_rad_s": bias.tolist(),
+            "still_samples": int(still.sum()), "heading_reference": "magnetometer (Madgwick gradient step)"}
+    return Attitude(quat=quat, heading_rad=np.arctan2(f[:, 1], f[:, 0]), up_device=up, gyro_bias=bias, meta=meta)
 
 
 def madgwick_marg(gyro, acc, mag, *, dt_s, beta=0.041, q0=None):

@@ -146,3 +146,27 @@ def test_quaternion_helpers_match_scipy():
     np.testing.assert_allclose(Rotation.from_quat(q).apply(up), np.tile([0, 0, 1.0], (500, 1)), atol=1e-12)
     # smallest rotation: its angle is the angle between up and +z
     np.testing.assert_allclose(Rotation.from_quat(q).magnitude(), np.arccos(np.clip(up[:, 2], -1, 1)), atol=1e-9)
+
+
+def test_madgwick_method_in_estimate_attitude():
+    t, rot, acc, gyro, mag = _trajectory(seconds=30, noise=True, seed=6)
+    att = estimate_attitude(t, acc, gyro, mag, settings=AttitudeSettings(method="madgwick"))
+    assert att.meta["method"].startswith("madgwick")
+    assert np.percentile(_angle_deg(Rotation.from_quat(att.quat), rot), 95) < 2.0
+    up_true = rot.inv().apply([0, 0, 1.0])
+    assert np.degrees(np.arccos(np.clip(np.einsum("ij,ij->i", up_true, att.up_device), -1, 1))).max() < 2.0
+
+
+def test_gap_is_not_integrated():
+    """A 5 s hole in the log with a large bogus gyro rate at its edge: the
+    gyro is not integrated across it (max_gap_s)."""
+    t, rot, acc, gyro, mag = _trajectory(seconds=40, noise=True, seed=7)
+    keep = (t < 20) | (t > 25)
+    t, acc, gyro, mag = t[keep], acc[keep], gyro[keep].copy(), mag[keep]
+    rot = rot[np.flatnonzero(keep)]
+    i = np.flatnonzero(t > 25)[0]
+    gyro[i - 1 : i + 1, 2] += 3.0  # 3 rad/s over a 5 s gap would be 15 rad of yaw
+    att = estimate_attitude(t, acc, gyro, mag)
+    ht = rot.apply(FORWARD_AXIS["handheld"])
+    dh = np.degrees(np.abs(np.angle(np.exp(1j * (att.heading_rad - np.arctan2(ht[:, 1], ht[:, 0]))))))
+    assert np.median(dh) < 3.0
