@@ -129,7 +129,7 @@ def _num(v, nd=4):
     return round(v, nd) if np.isfinite(v) else None
 
 
-def map_quality(fmap, *, coverage_limit_m=2.0, sd_limit_ut=2.0, min_stretch_m=1.0):
+def map_quality(fmap, *, coverage_limit_m=2.0, sd_limit_ut=None, min_stretch_m=1.0):
     """Quality summary of a field map.
 
     Parameters
@@ -137,14 +137,19 @@ def map_quality(fmap, *, coverage_limit_m=2.0, sd_limit_ut=2.0, min_stretch_m=1.
     fmap : FieldMap
     coverage_limit_m : float, edges farther than this from any survey
         sample need another walk
-    sd_limit_ut : float, edges whose latent map sd exceeds this need another
-        walk
+    sd_limit_ut : float or None, edges whose latent map sd exceeds this need
+        another walk; None = half the model's prior field sd
+        (``meta.model.hyperparameters.magnitude_ut``: the map knows less than
+        half of the field's variation there), 2 µT when the map has none
     min_stretch_m : float, shorter flagged stretches are not listed
 
     Returns
     -------
     dict (JSON-able): raster, graph and stretches sections
     """
+    if sd_limit_ut is None:
+        mag = ((fmap.meta.get("model") or {}).get("hyperparameters") or {}).get("magnitude_ut")
+        sd_limit_ut = 0.5 * float(mag) if mag else 2.0
     free = fmap.free
     cov = fmap.coverage_m[free]
     bw = _between_var(fmap)
@@ -160,7 +165,7 @@ def map_quality(fmap, *, coverage_limit_m=2.0, sd_limit_ut=2.0, min_stretch_m=1.
     fin = np.isfinite(cov)
     return {
         "floor": fmap.floor,
-        "limits": {"coverage_m": coverage_limit_m, "latent_sd_ut": sd_limit_ut, "min_stretch_m": min_stretch_m},
+        "limits": {"coverage_m": coverage_limit_m, "latent_sd_ut": round(float(sd_limit_ut), 4), "min_stretch_m": min_stretch_m},
         "raster": {
             "free_cells": int(free.sum()),
             "free_area_m2": round(float(free.sum()) * fmap.resolution_m**2, 2),

@@ -1,0 +1,254 @@
+"""``lodemap bench map``: field-map build speed, and map accuracy on held-out
+walks.
+
+Speed (default): a synthetic curl-free field over a 60 m x 40 m floor,
+sampled along lawnmower walks with per-walk device-frame offsets; times
+the reduced-rank curl-free map (fit with marginal-likelihood
+hyperparameters and walk offsets, plus the raster) from ``--samples``
+(100,000) samples, then, in the same run, the reduced-rank models against
+exact scikit-learn ``GaussianProcessRegressor`` at ``--exact-samples``
+(5,000): time and held-out RMSE of each.
+
+Accuracy (``--site``): fit every kernel on the survey walks and score it on
+the test walks (``mapping.mapscore``); with ``--truth`` also the built map
+against a simulator's true field along the graph.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+
+import numpy as np
+
+HELP = "field-map speed (100,000 samples; vs exact sklearn GPR) and held-out accuracy (--site)"
+
+
+def add_arguments(parser):
+    parser.add_argument("--samples", type=int, default=100_000, metavar="N", help="survey samples for the speed run (default 100000)")
+    parser.add_argument("--exact-samples", type=int, default=5000, metavar="N",
+                        help="samples for the comparison with exact sklearn GPR (default 5000; 0 = skip)")
+    parser.add_argument("--sklearn-optimise", action="store_true",
+                        help="let sklearn optimise its own hyperparameters (slow); default: fixed at ours")
+    parser.add_argument("--n-basis", type=int, default=1024, metavar="N", help="basis functions per block (default 1024)")
+    parser.add_argument("--seed", type=int, default=0, metavar="N", help="random seed (default 0)")
+    parser.add_argument("--site", default=None, metavar="SITE.json", help="accuracy mode: site file")
+    parser.add_argument("--floor", default=None, metavar="F", help="accuracy mode: floor")
+    parser.add_argument("--survey", nargs="+", default=None, metavar="PATH", help="accuracy mode: survey walks or folders")
+    parser.add_argument("--test", nargs="+", default=None, metavar="PATH", help="accuracy mode: test walks or folders")
+    parser.add_argument("--split", default=None, metavar="split.json",
+                        help="accuracy mode: take survey and test walks from this split of the --survey folders")
+    parser.add_argument("--kernels", default="curl-free,per-component,nearest,constant", metavar="K[,K...]")
+    parser.add_argument("--truth", default=None, metavar="field_model.npz",
+                        help="accuracy mode: also build the map and compare it with this true field on the graph")
+    parser.add_argument("--height", type=float, default=None, metavar="M",
+                        help="sensor height for --truth (default: mean hand height in truth.json beside it, else 1.0)")
+    parser.add_argument("--no-tracks", action="store_true", help="accuracy mode: ignore *.track.csv (positions from checkpoints)")
+    parser.add_argument("--json", default=None, metavar="OUT.json", help="also write the numbers as JSON")
+
+
+# -- synthetic field ------------------------------------------------------------
+def synthetic_field(rng, *, box=(60.0, 40.0), n_bumps=400):
+    """A curl-free plan-frame field: minus the gradient of Gaussian bumps of
+    a scalar potential (vertical part: the bumps' own profile) plus a
+    constant, µT. Returns ``field(xy (N, 2)) -> (N, 3)``."""
+    cent = rng.uniform([0, 0], box, size=(n_bumps, 2))
+    amp = rng.normal(size=n_bumps) * 6.0
+    wid = rng.uniform(1.0, 3.0, n_bumps)
+
+    def field(xy):
+        out = np.empty((xy.shape[0], 3))
+        for s in range(0, xy.shape[0], 2000):
+            d = xy[s : s + 2000, None, :] - cent[None]
+            g = amp * np.exp(-np.sum(d**2, -1) / (2 * wid**2))
+            out[s : s + 2000, 0] = np.sum(g * d[..., 0] / wid**2, 1) + 12.0
+            out[s : s + 2000, 1] = np.sum(g * d[..., 1] / wid**2, 1) + 20.0
+            out[s : s + 2000, 2] = np.sum(g / wid, 1) - 42.0
+        return out
+
+    return field
+
+
+def synthetic_survey(n, rng, field, *, box=(60.0, 40.0), per_walk=2500, offset_sd_ut=1.5, noise_ut=0.4):
+    """``n`` samples along straight random legs (one walk per ``per_walk``
+    samples) with per-walk offsets in the heading frame.
+
+    Returns xy (n, 2), b (n, 3), walk (n,), rotations (n, 3, 3)"""
+    from scipy.spatial.transform import Rotation
+
+    n_walks = max(1, int(np.ceil(n / per_walk)))
+    xy = np.empty((n, 2))
+    heading = np.empty(n)
+    walk = np.repeat(np.arange(n_walks), per_walk)[:n]
+    pos = rng.uniform([2, 2], [box[0] - 2, box[1] - 2])
+    h = rng.uniform(-np.pi, np.pi)
+    for i in range(0, n, 100):  # legs of 100 samples, 0.25 m apart
+        k = min(100, n - i)
+        step = 0.25 * np.array([np.cos(h), np.sin(h)])
+        leg = pos + np.outer(np.arange(1, k + 1), step)
+        out = (leg[:, 0] < 1) | (leg[:, 0] > box[0] - 1) | (leg[:, 1] < 1) | (leg[:, 1] > box[1] - 1)
+        if out.any():
+            leg = np.clip(leg, 1, [box[0] - 1, box[1] - 1])
+            h = rng.uniform(-np.pi, np.pi)
+        else:
+            h += rng.normal() * 0.8
+        xy[i : i + k] = leg
+        heading[i : i + k] = np.arctan2(step[1], step[0])
+        pos = leg[-1]
+    rot = Rotation.from_euler("z", heading[:, None]).as_matrix()
+    off = rng.normal(size=(n_walks, 3)) * offset_sd_ut
+    b = field(xy) + np.einsum("nij,nj->ni", rot, off[walk]) + rng.normal(size=(n, 3)) * noise_ut
+    return xy, b, walk, rot
+
+
+def _speed(args, log=print):
+    from ..mapfit import CurlFreeGP, PerComponentGP
+
+    rng = np.random.default_rng(args.seed)
+    field = synthetic_field(rng)
+    res = {"seed": args.seed, "n_basis": args.n_basis}
+    test_xy = rng.uniform([1, 1], [59, 39], size=(4000, 2))
+    test_b = field(test_xy)
+    n = int(args.samples)
+    xy, b, walk, rot = synthetic_survey(n, rng, field)
+    log(f"speed: {n} samples, {walk.max() + 1} walks, 60 m x 40 m, n_basis {args.n_basis} per block")
+    t0 = time.perf_counter()
+    m = CurlFreeGP(n_basis=args.n_basis, domain=((0, 0), (60, 40)), seed=args.seed).fit(xy, b, groups=walk, rotations=rot)
+    t_fit = time.perf_counter() - t0
+    xs = np.arange(0, 60.0001, 0.25)
+    ys = np.arange(0, 40.0001, 0.25)
+    t1 = time.perf_counter()
+    m.predict_grid(xs, ys)
+    t_grid = time.perf_counter() - t1
+    mean = m.predict(test_xy, return_var=False)
+    err = mean - test_b
+    err -= err.mean(0)
+    rmse = float(np.sqrt(np.mean(err**2)))
+    log(f"  curl-free fit {t_fit:.1f} s (incl. {m.optim_info_.get('n_evaluations', 0)} likelihood evaluations, "
+        f"walk offsets, between-walk folds) + raster {xs.size} x {ys.size} {t_grid:.1f} s = {t_fit + t_grid:.1f} s; "
+        f"RMSE vs true field {rmse:.3f} µT (mean offset removed); length scale {m.hyper_['length_scale_m']:.2f} m")
+    res["speed"] = {"samples": n, "fit_s": t_fit, "raster_s": t_grid, "total_s": t_fit + t_grid, "rmse_ut": rmse,
+                    "hyperparameters": m.hyper_}
+    ne = int(args.exact_samples)
+    if ne > 0:
+        res["exact"] = _vs_exact(ne, rng, field, test_xy, test_b, args, log)
+    return res
+
+
+def _vs_exact(ne, rng, field, test_xy, test_b, args, log):
+    from sklearn.gaussian_process import GaussianProcessRegressor
+    from sklearn.gaussian_process.kernels import RBF, ConstantKernel, WhiteKernel
+
+    from ..mapfit import CurlFreeGP, PerComponentGP
+
+    xy, b, _, _ = synthetic_survey(ne, rng, field, offset_sd_ut=0.0)
+    out = {"samples": ne}
+    log(f"vs exact sklearn GaussianProcessRegressor at {ne} samples (no walk offsets):")
+    rows = {}
+    for name, cls in (("curl-free", CurlFreeGP), ("per-component", PerComponentGP)):
+        t0 = time.perf_counter()
+        m = cls(n_basis=args.n_basis, domain=((0, 0), (60, 40))).fit(xy, b)
+        mean = m.predict(test_xy, return_var=False)
+        dt = time.perf_counter() - t0
+        rows[name] = (dt, float(np.sqrt(np.mean((mean - test_b) ** 2))), m.hyper_)
+        log(f"  reduced-rank {name:<14s} {dt:8.2f} s   held-out RMSE {rows[name][1]:.3f} µT")
+    h = rows["per-component"][2]
+    t0 = time.perf_counter()
+    pred = np.empty_like(test_b)
+    for c in range(3):
+        noise = h["noise_h_ut"] if c < 2 else h["noise_up_ut"]
+        if args.sklearn_optimise:
+            k = ConstantKernel(h["magnitude_ut"] ** 2) * RBF(h["length_scale_m"]) + ConstantKernel(100.0**2) + WhiteKernel(noise**2)
+            gpr = GaussianProcessRegressor(k, normalize_y=False)
+        else:
+            k = ConstantKernel(h["magnitude_ut"] ** 2, "fixed") * RBF(h["length_scale_m"], "fixed") + ConstantKernel(
+                h["constant_ut"] ** 2, "fixed")
+            gpr = GaussianProcessRegressor(k, alpha=noise**2, optimizer=None)
+        gpr.fit(xy, b[:, c])
+        pred[:, c] = gpr.predict(test_xy)
+    dt_exact = time.perf_counter() - t0
+    rmse_exact = float(np.sqrt(np.mean((pred - test_b) ** 2)))
+    how = "own hyperparameters by marginal likelihood" if args.sklearn_optimise else "hyperparameters fixed at ours (fit + predict only)"
+    log(f"  exact sklearn RBF per component ({how}) {dt_exact:8.2f} s   held-out RMSE {rmse_exact:.3f} µT")
+    for name, (dt, rmse, _) in rows.items():
+        log(f"  speed ratio exact / reduced-rank {name}: {dt_exact / dt:.1f}x at RMSE {rmse:.3f} vs {rmse_exact:.3f} µT")
+        out[name] = {"time_s": dt, "rmse_ut": rmse, "ratio": dt_exact / dt}
+    out["sklearn"] = {"time_s": dt_exact, "rmse_ut": rmse_exact, "optimised": bool(args.sklearn_optimise)}
+    return out
+
+
+def _accuracy(args, log=print):
+    from fingerprint.errors import ConfigError
+
+    from ..mapscore import heldout_scores
+    from ..site import load_site
+    from ..walkset import find_walks
+
+    if args.floor is None or args.survey is None:
+        raise ConfigError("accuracy mode needs --site, --floor and --survey (and --test or --split)")
+    site = load_site(args.site)
+    if args.split:
+        survey = find_walks(args.survey, split=args.split, part="survey")
+        test = find_walks(args.survey, split=args.split, part="test")
+    else:
+        if not args.test:
+            raise ConfigError("give --test walks or a --split")
+        survey = find_walks(args.survey)
+        test = find_walks(args.test)
+    kernels = [k.strip() for k in args.kernels.split(",") if k.strip()]
+    params = {k: {"n_basis": args.n_basis} for k in kernels if k in ("curl-free", "per-component")}
+    log(f"accuracy on floor {args.floor}: {len(survey)} survey walks, {len(test)} test walks")
+    res = heldout_scores(site, args.floor, survey, test, kernels=kernels, seed=args.seed, kernel_params=params,
+                         use_track=not args.no_tracks, log=log)
+    t = res["test"]
+    log(f"  test samples {t['samples']}; distance to nearest survey sample median {t['coverage_median_m']:.2f} m, "
+        f"p90 {t['coverage_p90_m']:.2f} m, {100 * t['within_2m']:.0f} % within 2 m")
+    for k, sc in res["kernels"].items():
+        if "rmse_walk_mean_removed_ut" in sc:
+            log(f"  {k:<14s} RMSE with each test walk's mean residual removed: "
+                + ", ".join(f"{v:.2f}" for v in sc["rmse_walk_mean_removed_ut"].values()) + " µT")
+    if args.truth:
+        res["truth"] = _truth(args, site, survey, log)
+    return res
+
+
+def _truth(args, site, survey, log):
+    from pathlib import Path
+
+    from fingerprint.simulate import FieldModel
+
+    from ..mapbuild import build_floor_map
+    from ..mapscore import truth_scores
+
+    height = args.height
+    if height is None:
+        tj = Path(args.truth).with_name("truth.json")
+        height = 1.0
+        if tj.exists():
+            doc = json.loads(tj.read_text(encoding="utf-8"))
+            hs = [w.get("walker", {}).get("hand_height_m") for w in doc.get("walks", {}).values()]
+            hs = [h for h in hs if h is not None]
+            if hs:
+                height = float(np.mean(hs))
+    fmap = build_floor_map(site, args.floor, survey, seed=args.seed, progress=False, use_track=not args.no_tracks,
+                           kernel_params={"n_basis": args.n_basis})
+    fm = FieldModel.load(args.truth)
+    out = {"height_m": height}
+    for label, lim in (("graph", None), ("graph_within_2m", 2.0)):
+        sc = truth_scores(fmap, fm, height_m=height, coverage_limit_m=lim)
+        out[label] = sc
+        log(f"  map vs true field on the {label.replace('_', ' ')} ({sc['n']} edge mid-points, height {height:.2f} m): RMSE "
+            + ", ".join(f"{v:.2f}" for v in sc["rmse_ut"].values()) + " µT; with the mean survey offset removed "
+            + ", ".join(f"{v:.2f}" for v in sc["rmse_bias_removed_ut"].values()) + " µT; within 1 sd "
+            + ", ".join(f"{100 * v:.0f}%" for v in sc["within_1sd"].values()))
+    return out
+
+
+def run(args):
+    res = _accuracy(args) if args.site else _speed(args)
+    if args.json:
+        from fingerprint._atomic import write_json_atomic
+        from fingerprint.mapfile import _jsonable
+
+        write_json_atomic(args.json, _jsonable(res))
+    return 0
