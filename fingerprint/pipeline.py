@@ -26,7 +26,7 @@ from .odometry import OdometrySettings, odometry_motion
 from .records import Motion, ProcessedWalk, WalkLog
 from .steps import DEFAULT_STEP_CONSTANT, StepSettings, detect_steps, weinberg_length
 
-__all__ = ["PipelineSettings", "process_walk", "mag_noise_ut", "fill_gaps", "calibration_verdict", "up_directions"]
+__all__ = ["PipelineSettings", "process_walk", "fit_walker_constant", "mag_noise_ut", "fill_gaps", "calibration_verdict", "up_directions"]
 
 
 @dataclass(frozen=True)
@@ -233,3 +233,27 @@ def _circular_interp(tq, t, ang):
     c = np.interp(tq, t, np.cos(ang))
     s = np.interp(tq, t, np.sin(ang))
     return np.arctan2(s, c)
+
+
+def fit_walker_constant(walks, checkpoints, *, min_distance_m=2.0):
+    """Fit the Weinberg constant of one walker (or phone) from processed
+    handheld walks and their checkpoints (see
+    :func:`fingerprint.steps.fit_step_constant`); walks are re-scaled from
+    the constant they were processed with (``meta["step_constant"]``).
+
+    Parameters
+    ----------
+    walks : list of ProcessedWalk (handheld)
+    checkpoints : list of Checkpoints, one per walk
+
+    Returns
+    -------
+    (k, info) : float, dict with ``n_segments`` and ``ratios``
+    """
+    from .steps import fit_step_constant
+
+    if len(walks) != len(checkpoints):
+        raise DataError(f"need one checkpoints set per walk, got {len(walks)} walks and {len(checkpoints)}")
+    pairs = [(w.motion, c, float(w.meta.get("step_constant", DEFAULT_STEP_CONSTANT)))
+             for w, c in zip(walks, checkpoints) if w.motion.kind == "steps"]
+    return fit_step_constant(pairs, min_distance_m=min_distance_m)

@@ -117,9 +117,22 @@ def test_cli_inspect_real_walk(capsys):
     s = _json.loads(capsys.readouterr().out)
     assert s["samples"] == 1455 and s["gaps_over_1s"] == []
     assert s["rate_hz"] == pytest.approx(50.0, rel=0.01)  # real_data README: about 50 Hz
-    # checkpoints of walk_001 span 28.5 s over about 31 m of straight segments
+    # distance walked against the summed straight checkpoint segments (tapped by the walker)
     cps = read_checkpoints(F1 / "walk_001.checkpoints.csv")
     path_m = np.linalg.norm(np.diff(cps.xy, axis=0), axis=1).sum()
     assert s["distance_m"] == pytest.approx(path_m, rel=0.25)
     assert 1.2 < s["cadence_hz"] < 2.2  # walking cadence (common practice, no source)
     assert s["calibration_verdict"]["verdict"].startswith(("good", "fair"))
+
+
+def test_fit_walker_constant_ignores_processing_constant(f1):
+    """Invariance: the fit must not depend on the constant the walks were
+    processed with (lengths scale linearly with it)."""
+    from fingerprint.pipeline import fit_walker_constant
+
+    walks = [w for w, _ in f1["survey"][:6]]
+    cps = [c for _, c in f1["survey"][:6]]
+    k1, _ = fit_walker_constant(walks, cps)
+    again = [process_walk(read_walk_log(w.source), step_constant=0.3) for w in walks]
+    k2, _ = fit_walker_constant(again, cps)
+    assert k2 == pytest.approx(k1, rel=1e-9)
