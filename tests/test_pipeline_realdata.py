@@ -63,6 +63,7 @@ def test_processed_walk_contract(f1):
         # per-sample noise is of that order, not tens of µT
         assert 0.1 < w.mag_noise_ut < 3.0
         assert w.meta["calibration"]["method"] == "device"
+        json.dumps(w.meta, allow_nan=False)  # provenance must be JSON-able for map files
 
 
 def test_heading_agrees_with_checkpoint_bearings(f1):
