@@ -200,8 +200,14 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         noise = mag_noise_ut(mag)
         meta["calibration_verdict"] = calibration_verdict(mag, calibrated_flag=log.magnetometer_calibrated)
     meta["mag_noise_ut"] = noise
-    if platform == "robot" and log.odom is not None:
-        motion = odometry_motion(t, log.odom, att.heading_rad, settings=s.odometry)
+    if platform == "robot":
+        if log.odom is not None:
+            motion = odometry_motion(t, log.odom, att.heading_rad, settings=s.odometry)
+        else:
+            e = np.empty(0)
+            motion = Motion(t=e, length_m=e, heading_rad=e, kind="odometry")
+            meta["warning"] = (meta.get("warning", "") + "; " if "warning" in meta else "") + (
+                "robot log without odom_dx,odom_dy,odom_dyaw columns: no motion increments")
     else:
         k = DEFAULT_STEP_CONSTANT if step_constant is None else float(step_constant)
         if not (np.isfinite(k) and k > 0):

@@ -112,3 +112,11 @@ def test_cli_inspect_and_calibrate_robot_log(tmp_path, capsys):
     s = json.loads(capsys.readouterr().out)
     assert s["calibration"]["method"] == "given" and s["calibration_verdict"]["verdict"].startswith("good")
     assert main(["calibrate", str(p), "--out", str(cal_path), "--field-ut", "-3"]) == 2
+
+
+def test_robot_without_odometry_has_no_motion():
+    log, _, _ = _robot_log()
+    bare = WalkLog(t=log.t, acc=log.acc, gyro=log.gyro, mag=log.mag, meta=log.meta)
+    w = process_walk(bare)
+    assert w.motion.kind == "odometry" and w.motion.n == 0
+    assert "without odom" in w.meta["warning"]
