@@ -25,6 +25,8 @@ Policies
   (near 1 suggests g units); a 99th-percentile gyro rate above 40 rad/s
   suggests deg/s. The raw magnetometer (hard-iron offset still in) is allowed
   5-3000 µT.
+- Time unit: a median sample spacing of 1 s or more is an error that
+  suggests ms, µs or ns.
 - Metadata: ``# key: value`` lines before the header. A ``#`` line without a
   colon, an empty key, a key given twice with different values, or a bad
   value of a known key (``platform``, ``magnetometer_calibrated``,
@@ -384,6 +386,21 @@ def _mag_unit_hint(med):
     return "a unit other than µT"
 
 
+def _check_time_unit(t, seen, path, header_line):
+    if t.size < 3:
+        return
+    dt = float(np.median(np.diff(t)))
+    if dt >= 1.0:
+        hint = "ns (divide by 1e9)" if dt >= 1e5 else ("µs (divide by 1e6)" if dt >= 100.0 else "ms (divide by 1000)")
+        raise DataError(
+            f"median sample spacing {dt:.4g} in column 't', expected seconds (a sensor log samples at "
+            f"1-1000 Hz, spacing 0.001-1 s); the times look like {hint}",
+            path=path,
+            line=header_line,
+            column=seen["t"] + 1,
+        )
+
+
 def _check_units(log_arrays, seen, path, header_line):
     acc, gyro, mag, mag_raw = log_arrays
     med = _median_norm(mag)
@@ -527,6 +544,7 @@ def read_walk_log(path, *, on_duplicate="error", check_units=True):
     odom = cols(_ODOM) if _ODOM[0] in seen else None
     if check_units:
         _check_units((acc, gyro, mag, mag_raw), seen, spath, header_line)
+        _check_time_unit(t, seen, spath, header_line)
     return WalkLog(
         t=np.ascontiguousarray(t),
         acc=acc,

@@ -44,6 +44,7 @@ CASES = [
     ("not_utf8.log.csv", FormatError, 5, 15, "UTF-8"),
     ("truncated.log.csv.gz", FormatError, 30, 4, "truncated"),
     ("comment_in_body.log.csv", FormatError, 33, 1, "before the header"),
+    ("time_in_ms.log.csv", DataError, 3, 1, "ms (divide by 1000)"),
 ]
 
 

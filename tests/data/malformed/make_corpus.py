@@ -75,6 +75,7 @@ def main():
     write("not_utf8.log.csv", None, raw=b"\n".join(lines))
     write("truncated.log.csv.gz", None, raw=gzip.compress(text, mtime=0)[:200])
     write("comment_in_body.log.csv", edit(33, lambda s: "# note"))
+    write("time_in_ms.log.csv", META + [HEADER] + [cell(r, 1, f"{float(r.split(',')[0]) * 1000:.6g}") for r in rows()])
     # valid but awkward: a 2.5 s gap (reported, not fatal) and empty cells
     g = META + [HEADER] + rows()
     g[40:] = [cell(r, 1, f"{float(r.split(',')[0]) + 2.5:.6g}") for r in g[40:]]
