@@ -45,6 +45,7 @@ import gzip
 import io
 import zlib
 import math
+import re
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -247,6 +248,26 @@ def _fast_parse(body, ncol):
     return arr.reshape(nrows, ncol)
 
 
+_NOT_PLAIN = re.compile(r"[^0-9eE+\-.,\n\r ]")
+
+
+def _fast_parse_with_empty(body, ncol):
+    """Fast path for bodies with empty cells (sensors at different rates):
+    when the text holds nothing but numbers (so no literal nan/inf), each
+    empty cell is filled with ``nan`` by plain string replacement and the
+    result parsed as in :func:`_fast_parse`; every NaN then is an empty cell."""
+    if _NOT_PLAIN.search(body):
+        return None
+    b = body.replace("\r", "").rstrip("\n")
+    b = b.replace(",,", ",nan,").replace(",,", ",nan,")  # twice: ",,," overlaps
+    b = b.replace("\n,", "\nnan,").replace(",\n", ",nan\n")
+    if b.startswith(","):
+        b = "nan" + b
+    if b.endswith(","):
+        b = b + "nan"
+    return _fast_parse(b, ncol)
+
+
 def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names):
     """Exact line-by-line scan: returns (values (R, ncol), line numbers (R,)).
 
@@ -326,6 +347,13 @@ def _parse_numeric(body, first_line, names, path, *, allow_empty_cols):
     if arr is not None and np.isfinite(arr).all():
         # the layout check guarantees one data row per body line
         return arr, None
+    if arr is None:
+        arr = _fast_parse_with_empty(body, ncol)
+        if arr is not None:
+            miss = np.isnan(arr)
+            bad_cols = ~np.asarray(allow_empty_cols, dtype=bool)
+            if not miss[:, bad_cols].any() and np.isfinite(arr[~miss]).all():
+                return arr, None
     return _slow_parse(body, first_line, ncol, path, allow_empty_cols=allow_empty_cols, names=names)
 
 
