@@ -93,8 +93,12 @@ def run(args):
     print(f"  samples         {s['samples']} over {s['duration_s']:.1f} s, {s['rate_hz']:.1f} Hz median, "
           f"largest spacing {s['max_spacing_s']:.3f} s")
     if s["gaps_over_1s"]:
-        for g in s["gaps_over_1s"]:
+        gaps = s["gaps_over_1s"]
+        print(f"  gaps over 1 s   {len(gaps)}, {sum(g['length_s'] for g in gaps):.1f} s in all")
+        for g in gaps[:10]:
             print(f"  gap             {g['length_s']:.2f} s after t = {g['after_t_s']:.2f} s")
+        if len(gaps) > 10:
+            print(f"  ...             {len(gaps) - 10} more (see --json)")
     else:
         print("  gaps over 1 s   none")
     for w in s["warnings"]:
