@@ -236,7 +236,8 @@ class _ReducedRankGP(_Fitted):
             return self._design(basis, q)
 
         stats = _linmodel.accumulate(
-            design, idx, xy, b, groups=codes, rotations=rotations, n_walks=n_walks, chunk=int(self.chunk)
+            design, idx, xy, b, groups=codes, rotations=rotations, n_walks=n_walks, chunk=int(self.chunk),
+            blocks=self._blocks(basis.n),
         )
         hyper = self._initial_hyper(b, basis, use_offsets=codes is not None)
         # Many small factorisations: one BLAS thread is much faster than
@@ -400,6 +401,7 @@ class _ReducedRankGP(_Fitted):
                 rotations=None if rotations is None else rotations[sel],
                 n_walks=n_walks,
                 chunk=int(self.chunk),
+                blocks=stats.blocks,
             )
             post = _linmodel.posterior(stats - held, prior, noise, hyper["offset_ut"] ** 2)
             mean, latent = self._predict_with(post.mean_f, post.cov_f, xy[sel])
@@ -549,6 +551,11 @@ class CurlFreeGP(_ReducedRankGP):
         c = 2 * m
         return 2 * m + 3, [np.append(pot, c), np.append(pot, c + 1), np.append(up, c + 2)]
 
+    def _blocks(self, m):
+        # horizontal (potential + two constants) and vertical (b_up basis +
+        # constant): independent unless a walk offset or tilt couples them
+        return [np.concatenate([np.arange(m), [2 * m, 2 * m + 1]]), np.append(np.arange(m, 2 * m), 2 * m + 2)]
+
     def _design(self, basis, xy):
         dx, dy = basis.gradients(xy)
         phi = basis.values(xy)
@@ -591,6 +598,10 @@ class PerComponentGP(_ReducedRankGP):
     def _layout(self, m):
         c = 3 * m
         return 3 * m + 3, [np.append(np.arange(k * m, (k + 1) * m), c + k) for k in range(3)]
+
+    def _blocks(self, m):
+        # b_x and b_y share heading-frame offsets; b_up is separate
+        return [np.concatenate([np.arange(2 * m), [3 * m, 3 * m + 1]]), np.append(np.arange(2 * m, 3 * m), 3 * m + 2)]
 
     def _design(self, basis, xy):
         phi = basis.values(xy)

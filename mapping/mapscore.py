@@ -77,6 +77,7 @@ def heldout_scores(
     use_track=True,
     progress=False,
     log=None,
+    reference_fields=None,
 ):
     """Fit each kernel on the survey walks and score it on the test walks.
 
@@ -87,6 +88,9 @@ def heldout_scores(
     survey_files, test_files : lists of WalkFiles
     kernels : names from :data:`mapping.mapfit.MAP_KERNELS`
     kernel_params : dict kernel -> params, optional
+    reference_fields : dict name -> callable ``f(xy (N, 2)) -> (N, 3)``,
+        optional; scored like a kernel (e.g. a simulator's true field: the
+        error no map can go below, given the processed test walks)
 
     Returns
     -------
@@ -118,6 +122,14 @@ def heldout_scores(
         },
         "kernels": {},
     }
+    for name, f in (reference_fields or {}).items():
+        mean = f(t.xy)
+        sc = residual_scores(t.b_ut, mean, groups=t.walk)
+        out.setdefault("references", {})[name] = sc
+        if log is not None:
+            log(f"  {name:<14s} RMSE x,y,up = " + ", ".join(f"{v:.2f}" for v in sc["rmse_ut"].values())
+                + "  features up,h,total = " + ", ".join(f"{v:.2f}" for v in sc["feature_rmse_ut"].values())
+                + "  walk mean removed: " + ", ".join(f"{v:.2f}" for v in sc["rmse_walk_mean_removed_ut"].values()))
     for k in kernels:
         t0 = time.perf_counter()
         params = (kernel_params or {}).get(k)

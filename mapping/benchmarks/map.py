@@ -198,8 +198,15 @@ def _accuracy(args, log=print):
     kernels = [k.strip() for k in args.kernels.split(",") if k.strip()]
     params = {k: {"n_basis": args.n_basis} for k in kernels if k in ("curl-free", "per-component")}
     log(f"accuracy on floor {args.floor}: {len(survey)} survey walks, {len(test)} test walks")
+    refs = None
+    if args.truth:
+        from fingerprint.simulate import FieldModel
+
+        fm = FieldModel.load(args.truth)
+        height = _height(args)
+        refs = {"true field": lambda q: fm.field(np.column_stack([q, np.full(q.shape[0], height)]))}
     res = heldout_scores(site, args.floor, survey, test, kernels=kernels, seed=args.seed, kernel_params=params,
-                         use_track=not args.no_tracks, log=log)
+                         use_track=not args.no_tracks, log=log, reference_fields=refs)
     t = res["test"]
     log(f"  test samples {t['samples']}; distance to nearest survey sample median {t['coverage_median_m']:.2f} m, "
         f"p90 {t['coverage_p90_m']:.2f} m, {100 * t['within_2m']:.0f} % within 2 m")
@@ -212,6 +219,23 @@ def _accuracy(args, log=print):
     return res
 
 
+def _height(args):
+    """Sensor height for --truth: --height, else the mean hand height of the
+    handheld walks in truth.json beside the field model, else 1.0 m."""
+    from pathlib import Path
+
+    if args.height is not None:
+        return float(args.height)
+    tj = Path(args.truth).with_name("truth.json")
+    if tj.exists():
+        doc = json.loads(tj.read_text(encoding="utf-8"))
+        hs = [w.get("walker", {}).get("hand_height_m") for w in doc.get("walks", {}).values()]
+        hs = [h for h in hs if h is not None]
+        if hs:
+            return float(np.mean(hs))
+    return 1.0
+
+
 def _truth(args, site, survey, log):
     from pathlib import Path
 
@@ -220,16 +244,7 @@ def _truth(args, site, survey, log):
     from ..mapbuild import build_floor_map
     from ..mapscore import truth_scores
 
-    height = args.height
-    if height is None:
-        tj = Path(args.truth).with_name("truth.json")
-        height = 1.0
-        if tj.exists():
-            doc = json.loads(tj.read_text(encoding="utf-8"))
-            hs = [w.get("walker", {}).get("hand_height_m") for w in doc.get("walks", {}).values()]
-            hs = [h for h in hs if h is not None]
-            if hs:
-                height = float(np.mean(hs))
+    height = _height(args)
     fmap = build_floor_map(site, args.floor, survey, seed=args.seed, progress=False, use_track=not args.no_tracks,
                            kernel_params={"n_basis": args.n_basis})
     fm = FieldModel.load(args.truth)
