@@ -275,6 +275,7 @@ class _ReducedRankGP(_Fitted):
     def _initial_hyper(self, b, basis, *, use_offsets):
         centred = b - b.mean(axis=0)
         sd = float(np.sqrt(np.mean(centred**2))) or 1.0
+        self.data_sd_ut_ = sd
         lo, hi = self._length_bounds(basis)
         given = {
             "magnitude_ut": self.magnitude_ut,
@@ -320,6 +321,12 @@ class _ReducedRankGP(_Fitted):
         for k in free:
             if k == "length_scale_m":
                 bounds.append((np.log(lo_l), np.log(hi_l)))
+            elif k == "magnitude_ut":
+                # At most twice the spread of the data: when the basis cannot
+                # resolve the length scale the data ask for, the likelihood
+                # otherwise buys fit with a huge magnitude, and the truncated
+                # kernel then rings far from the data.
+                bounds.append((np.log(1e-3), np.log(2.0 * self.data_sd_ut_)))
             elif k == "constant_ut":
                 bounds.append((np.log(1e-2), np.log(1e4)))
             else:

@@ -249,7 +249,7 @@ def _truth(args, site, survey, log):
                            kernel_params={"n_basis": args.n_basis})
     fm = FieldModel.load(args.truth)
     out = {"height_m": height}
-    for label, lim in (("graph", None), ("graph_within_2m", 2.0)):
+    for label, lim in (("graph", None), ("graph_within_2m", 2.0), ("graph_within_0.5m", 0.5)):
         sc = truth_scores(fmap, fm, height_m=height, coverage_limit_m=lim)
         out[label] = sc
         log(f"  map vs true field on the {label.replace('_', ' ')} ({sc['n']} edge mid-points, height {height:.2f} m): RMSE "

@@ -1,0 +1,82 @@
+"""Maps from the vendored real walks (tests/data/real, an open sample of real
+smartphone walks with hand-tapped checkpoints; see its README and LICENSE).
+
+Checks against the data themselves: the map built by the command line
+predicts held-out walks of the split better than the constant-mean map on
+the vertical component and total field (the data README: walks at the same
+place differ by several µT, so only those are asked), the map file reads
+back, and the query command returns the map's own lookup at the points.
+"""
+
+import csv
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from fingerprint.mapfile import load_map
+from mapping.cli import main
+
+DATA = Path(__file__).resolve().parent / "data" / "real" / "siteA"
+pytestmark = [
+    pytest.mark.realdata,
+    pytest.mark.skipif(not (DATA / "B1" / "split.json").exists(), reason="vendored real sample missing"),
+]
+
+
+@pytest.fixture(scope="module")
+def b1_map(tmp_path_factory):
+    out = tmp_path_factory.mktemp("realmap") / "B1.map"
+    rc = main([
+        "build-map", "--site", str(DATA / "site.json"), "--floor", "B1", "--out", str(out),
+        "--split", str(DATA / "B1" / "split.json"), "--use", "survey", "--resolution", "1.0",
+        "--n-basis", "256", "--seed", "3", "--quality", "--no-progress", str(DATA / "B1"),
+    ])
+    assert rc == 0
+    return out
+
+
+def test_build_map_command_writes_a_checked_map(b1_map):
+    fmap = load_map(b1_map)
+    split = json.loads((DATA / "B1" / "split.json").read_text())
+    assert [w["name"] for w in fmap.meta["survey_walks"]] == sorted(split["survey"])
+    assert fmap.meta["seed"] == 3 and fmap.meta["build"]["resolution_m"] == 1.0
+    assert fmap.meta["frames"]["alignment"]["source"] == "estimated from survey walks"  # site has no location
+    # plan +y is north and the data README measured plan bearing - magnetic
+    # azimuth of about -1 deg on B1 (IQR +-10 deg): the estimate is near 0
+    assert abs(fmap.meta["frames"]["alignment"]["earth_to_plan_deg"]) < 8.0
+    assert np.all(np.isfinite(fmap.mean_ut[fmap.free])) and np.all(fmap.var_ut2[fmap.free] > 0)
+    # |B| of a mapped indoor field at mid latitudes: tens of µT (from memory: 25-65 µT at the surface)
+    tot = np.linalg.norm(fmap.mean_ut[fmap.free], axis=-1)
+    assert 20 < np.median(tot) < 80
+    q = json.loads(b1_map.with_suffix(".quality.json").read_text())
+    assert 0 < q["raster"]["covered_within_2m"] < 1
+    assert b1_map.with_suffix(".quality.png").stat().st_size > 10_000
+
+
+def test_map_info_query_and_image(b1_map, tmp_path, capsys):
+    assert main(["map-info", str(b1_map)]) == 0
+    text = capsys.readouterr().out
+    assert "floor:            B1" in text and "curl-free" in text
+    fmap = load_map(b1_map)
+    pts = tmp_path / "pts.csv"
+    xy = np.array([[50.0, 60.0], [120.5, 80.25], [-500.0, 0.0]])
+    pts.write_text("x,y,label\n" + "".join(f"{x},{y},p\n" for x, y in xy))
+    out = tmp_path / "field.csv"
+    assert main(["map-query", str(b1_map), str(pts), "--out", str(out)]) == 0
+    rows = list(csv.DictReader(out.open()))
+    assert list(rows[0]) == ["x", "y", "b_x", "b_y", "b_up", "b_total", "sd_x", "sd_y", "sd_up"]
+    mean, var, _ = fmap.lookup(xy[:2])
+    for r, m, v in zip(rows, mean, var):
+        np.testing.assert_allclose([float(r["b_x"]), float(r["b_y"]), float(r["b_up"])], m, rtol=1e-5)
+        np.testing.assert_allclose(float(r["sd_up"]), np.sqrt(v[2]), rtol=1e-5)
+        assert float(r["b_total"]) == pytest.approx(np.linalg.norm(m), rel=1e-5)
+    assert rows[2]["b_x"] == ""  # outside the raster
+    bad = tmp_path / "bad.csv"
+    bad.write_text("x,y\n1,2\n3,abc\n")
+    assert main(["map-query", str(b1_map), str(bad), "--out", str(out)]) == 2
+    assert "line 3" in capsys.readouterr().err
+    png = tmp_path / "m.png"
+    assert main(["map-image", str(b1_map), "--out", str(png)]) == 0
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
