@@ -803,7 +803,7 @@ def write_walk_log(path, log):
         names += list(_ODOM)
         blocks.append(log.odom)
     arr = np.column_stack([np.asarray(b, dtype=float) for b in blocks])
-    fmts = ["%.10g"] + ["%.9g"] * (arr.shape[1] - 1)
+    fmts = ["%.12g"] + ["%.9g"] * (arr.shape[1] - 1)  # t: µs over a day
     with _Out(path) as fh:
         for k, v in log.meta.items():
             k, v = str(k).strip(), str(v).replace("\n", " ").strip()
