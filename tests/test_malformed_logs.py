@@ -106,3 +106,11 @@ def test_duplicate_policy_keep_first():
 
     assert np.all(np.diff(log.t) > 0)
     assert main(["inspect", "--on-duplicate", "keep-first", str(HERE / "duplicate_time.log.csv")]) == 0
+
+
+@pytest.mark.parametrize("name", ["non_numeric.log.csv", "mag_nanotesla.log.csv", "truncated.log.csv.gz"])
+def test_cli_calibrate_exit_2(name, tmp_path, capsys):
+    code = main(["calibrate", str(HERE / name), "--out", str(tmp_path / "c.json")])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and err[0].startswith("lodemap calibrate: error:")
+    assert not (tmp_path / "c.json").exists()
