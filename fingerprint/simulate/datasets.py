@@ -68,7 +68,7 @@ class DatasetSettings:
     rate_hz: float = 50.0
     survey_lateral_sd_m: float = 0.08
     test_lateral_sd_m: float = 0.2
-    checkpoint_radius_m: float = 0.6
+    checkpoint_radius_m: float = 0.9
     checkpoint_spacing_m: float = 12.0
 
     def __post_init__(self):
