@@ -291,17 +291,21 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None):
             nb = int(b[-1]) + 1
             tb = t[0] + (np.arange(nb) + 0.5) * bw
             sig = s.mag_time_constant_s / bw
+            cd, sd = np.cos(d), np.sin(d)
             w_it = wgt
-            for _ in range(1 + s.robust_passes):
-                zr = gaussian_filter1d(np.bincount(b, w_it * np.cos(d), nb), sig, mode="nearest")
-                zi = gaussian_filter1d(np.bincount(b, w_it * np.sin(d), nb), sig, mode="nearest")
+            for it in range(1 + s.robust_passes):
+                zr = gaussian_filter1d(np.bincount(b, w_it * cd, nb), sig, mode="nearest")
+                zi = gaussian_filter1d(np.bincount(b, w_it * sd, nb), sig, mode="nearest")
                 cb = np.unwrap(np.arctan2(zi, zr))
                 corr = np.interp(t, tb, cb)
+                if it == s.robust_passes:
+                    break
                 # iteratively reweighted: azimuths that disagree with the
                 # gyro-propagated heading by much more than the residual
-                # scale are disturbances, not drift
-                res = np.angle(np.exp(1j * (d - corr)))
-                w_it = wgt * np.exp(-0.5 * (res / s.robust_scale_rad) ** 2)
+                # scale are disturbances, not drift. Von Mises weight
+                # exp((cos r - 1) / scale²) ~ exp(-r² / (2 scale²)) for small r
+                cos_res = cd * np.cos(corr) + sd * np.sin(corr)
+                w_it = wgt * np.exp((cos_res - 1.0) / s.robust_scale_rad**2)
             meta["heading_reference"] = f"magnetometer, smoothed over {s.mag_time_constant_s:g} s"
             meta["mag_weight_mean"] = float(wgt.mean())
     else:
