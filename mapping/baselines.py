@@ -225,6 +225,7 @@ def dtw_track(
     scale_sigma=0.06,
     snap_weight=4.0,
     band_frac=0.15,
+    demean=False,
 ):
     """Positions from DTW matching of the field sequence against candidate
     graph paths (see the module docstring).
@@ -244,6 +245,9 @@ def dtw_track(
         dead-reckoned shape and the graph (penalises shapes the graph cannot
         hold)
     band_frac : Sakoe-Chiba radius as a fraction of the window length
+    demean : compare the sequences after removing each one's mean over the
+        window (a per-walk field offset, e.g. a residual calibration error,
+        then cannot pull the match away; the shape of the sequence remains)
 
     Returns
     -------
@@ -289,6 +293,9 @@ def dtw_track(
         mean, _, _ = fmap.lookup(snapped)
         cf = np.stack([mean[..., 2], np.hypot(mean[..., 0], mean[..., 1])], axis=-1)
         qo = obs[lo : hi + 1]
+        if demean:
+            qo = qo - qo.mean(axis=0)
+            cf = cf - cf.mean(axis=1, keepdims=True)
         band = max(2, int(round(band_frac * m)))
         cost = dtw_cost(qo, cf, band=band) / (2 * m) + snap_weight * snap2
         cost = np.where(np.isfinite(cost), cost, np.inf)
