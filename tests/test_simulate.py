@@ -539,3 +539,21 @@ def test_settings_validation():
         DatasetSettings(platforms=("bicycle",))
     with pytest.raises(ConfigError):
         DatasetSettings(survey_cover=0)
+
+
+def test_cli_robot_only_and_plan_graph(tmp_path):
+    from mapping.cli import main
+
+    out = tmp_path / "r"
+    assert main(["simulate", str(DEMO), "--out", str(out), "--platform", "robot", "--walks", "1", "--floors", "L1",
+                 "--no-progress"]) == 0
+    names = {p.name[:3] for p in (out / "L1" / "survey").glob("*.log.csv")}
+    assert names == {"rb_"} and not (out / "L1" / "survey_robot").exists()
+    # routes on the graph built from the plan (mapping.graphbuild) instead
+    # of the shipped routes file
+    out2 = tmp_path / "p"
+    assert main(["simulate", str(DEMO), "--out", str(out2), "--platform", "handheld", "--walks", "1", "--floors", "L1",
+                 "--routes", "plan", "--no-progress"]) == 0
+    summary = json.loads((out2 / "simulation.json").read_text())
+    assert summary["floors"]["L1"]["route_graph"] == "graph built from the plan"
+    assert len(list((out2 / "L1" / "survey").glob("hh_*.track.csv"))) >= 2

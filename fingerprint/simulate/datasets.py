@@ -158,8 +158,11 @@ def plan_floor(floor, route_graph, *, seed, settings=DatasetSettings()):
     if "handheld" in settings.platforms:
         survey_platforms.append(("handheld", "survey", settings.survey_length_m, settings.survey_cover))
     if "robot" in settings.platforms and (settings.robot_survey or settings.platforms == ("robot",)):
-        session = "survey" if "handheld" not in settings.platforms else "survey_robot"
-        survey_platforms.append(("robot", session, settings.robot_survey_length_m, settings.robot_survey_cover))
+        if "handheld" in settings.platforms:
+            survey_platforms.append(("robot", "survey_robot", settings.robot_survey_length_m,
+                                     settings.robot_survey_cover))
+        else:  # the robot is the surveyor
+            survey_platforms.append(("robot", "survey", settings.robot_survey_length_m, settings.survey_cover))
     for platform, session, length, cover in survey_platforms:
         routes = plan_survey_routes(route_graph, rng=rng, target_length_m=length, min_cover=cover)
         for i, r in enumerate(routes):

@@ -11,7 +11,8 @@ trajectory.
   a residual offset of a few µT stays) and also the raw field; a robot's
   bare sensor reports the raw field (``no``);
 - timestamps at a nominal rate with jitter;
-- robot wheel odometry: body-frame increments with a scale error and slip.
+- robot wheel odometry: body-frame increments with a scale error, random
+  slip on every increment and short wheel-spin events.
 
 Default magnitudes (common practice, no source, unless said): phone
 accelerometer noise 0.02 m/s², gyro noise 0.0015 rad/s, bias up to a few
@@ -214,6 +215,12 @@ def synthesize_log(traj: Trajectory, field_model, device: Device, *, rng, t0=0.0
         dy = -s * d[:, 0] + c * d[:, 1]
         dyaw = np.diff(yaw, prepend=yaw[:1])
         slip = 1.0 + rng.normal(0, device.odom_slip, n)
+        # now and then a wheel spins or skids for a moment (about once a
+        # minute, 0.3-1 s, 10-30 % too much distance)
+        n_events = rng.poisson(t_rel[-1] / 60.0) if device.odom_slip > 0 else 0
+        for t_ev, dur, extra in zip(rng.uniform(t_rel[0], t_rel[-1], n_events), rng.uniform(0.3, 1.0, n_events),
+                                    rng.uniform(0.1, 0.3, n_events)):
+            slip[(t_rel >= t_ev) & (t_rel < t_ev + dur)] += extra
         odom = np.column_stack(
             [
                 dx * device.odom_scale * slip,
