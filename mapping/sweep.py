@@ -13,6 +13,8 @@ A sweep is described by a TOML file (read with :mod:`tomllib`)::
 
     [data]                     # paths relative to this file
     walks = ["sim/G/test"]     # walks to score (files or folders)
+    # split = "split.json"; use = "test"   # optional: score one part of a split
+    #                                      # (survey walks for maps: its "survey" part)
     map = "G.map"              # a fixed map ...
     # ... or maps built once per distinct map setting and cached in OUT/maps:
     # site = "demo_building/site.json"; floor = "G"; survey = ["sim/G/survey"]
@@ -86,7 +88,7 @@ MAP_SETTINGS = ("map_resolution_m", "map_kernel")
 NOISE_SETTINGS = ("noise_mag_ut", "noise_heading_deg", "noise_step_scale")
 _SEARCHES = ("grid", "random")
 _SWEEP_KEYS = {"mode", "search", "samples", "seeds", "seed", "metric"}
-_DATA_KEYS = {"walks", "map", "site", "floor", "survey"}
+_DATA_KEYS = {"walks", "map", "site", "floor", "survey", "split", "use"}
 
 
 @dataclass
@@ -104,6 +106,8 @@ class SweepConfig:
     site: Path | None = None
     floor: str | None = None
     survey: list = field(default_factory=list)
+    split: Path | None = None
+    use: str = "test"
     grid: dict = field(default_factory=dict)
     random: dict = field(default_factory=dict)
     path: str | None = None
@@ -115,6 +119,8 @@ class SweepConfig:
             "site": None if self.site is None else str(self.site),
             "floor": self.floor,
             "survey": [str(p) for p in self.survey],
+            "split": None if self.split is None else str(self.split),
+            "use": self.use if self.split is not None else None,
         }
 
 
@@ -178,6 +184,11 @@ def parse_sweep_config(raw, *, base=".", path="<sweep>"):
         cfg.site = _paths(data["site"], "site")[0]
     cfg.floor = None if data.get("floor") is None else str(data["floor"])
     cfg.survey = _paths(data.get("survey", []), "survey")
+    if "split" in data:
+        cfg.split = _paths(data["split"], "split")[0]
+    cfg.use = str(data.get("use", "test"))
+    if cfg.use not in ("survey", "test"):
+        raise ConfigError(f"{path}: [data] use must be 'survey' or 'test', got {cfg.use!r}")
 
     grid = raw.get("grid", {})
     for k, v in grid.items():
@@ -610,7 +621,7 @@ def prepare_maps(cfg, settings_list, out_dir, *, progress=True):
             from .walkset import find_walks
 
             site = load_site(cfg.site)
-            survey = find_walks(cfg.survey)
+            survey = find_walks(cfg.survey, split=cfg.split, part="survey" if cfg.split else None)
             kw = {}
             if "map_resolution_m" in m:
                 kw["resolution_m"] = float(m["map_resolution_m"])
@@ -638,7 +649,8 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     for s in settings_list:
         _, _, f = split_settings(s)
         filter_settings(f)
-    walks = [w for w in find_walks(cfg.walks) if w.checkpoints is not None]
+    walks = [w for w in find_walks(cfg.walks, split=cfg.split, part=cfg.use if cfg.split else None)
+             if w.checkpoints is not None]
     if not walks:
         raise ConfigError(f"{cfg.path}: none of the walks has a checkpoints file")
     names = [w.name for w in walks]
