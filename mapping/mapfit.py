@@ -142,6 +142,10 @@ class _ReducedRankGP(_Fitted):
         "domain",
         "seed",
         "chunk",
+        "tiles",
+        "tile_m",
+        "tile_overlap_m",
+        "tile_basis",
     )
 
     #: optimised hyperparameters, in the order of the log-parameter vector
@@ -164,6 +168,10 @@ class _ReducedRankGP(_Fitted):
         domain=None,
         seed=0,
         chunk=2048,
+        tiles="auto",
+        tile_m=16.0,
+        tile_overlap_m=3.0,
+        tile_basis=256,
     ):
         self.n_basis = n_basis
         self.margin_m = margin_m
@@ -179,6 +187,10 @@ class _ReducedRankGP(_Fitted):
         self.domain = domain
         self.seed = seed
         self.chunk = chunk
+        self.tiles = tiles
+        self.tile_m = tile_m
+        self.tile_overlap_m = tile_overlap_m
+        self.tile_basis = tile_basis
 
     # -- to be provided by subclasses ----------------------------------------
     def _layout(self, m):
@@ -225,44 +237,103 @@ class _ReducedRankGP(_Fitted):
             hi = np.maximum(hi, xy.max(axis=0))
         else:
             lo, hi = xy.min(axis=0), xy.max(axis=0)
+        if self.tiles not in ("auto", "never", "always"):
+            raise ConfigError(f"tiles must be auto, never or always, got {self.tiles!r}")
         basis = BoxBasis.covering(lo, hi, margin_m=float(self.margin_m), n_basis=int(self.n_basis))
-        n_field, idx = self._layout(basis.n)
-        self.basis_ = basis
-        self.idx_ = idx
-        self.n_field_ = n_field
+        boxes = self._tile_boxes(lo, hi, basis)
         n_walks = len(names)
-
-        def design(q):
-            return self._design(basis, q)
-
-        stats = _linmodel.accumulate(
-            design, idx, xy, b, groups=codes, rotations=rotations, n_walks=n_walks, chunk=int(self.chunk),
-            blocks=self._blocks(basis.n),
-        )
-        hyper = self._initial_hyper(b, basis, use_offsets=codes is not None)
+        use_offsets = codes is not None
+        self.fallback_mean_ = b.mean(axis=0)
+        parts = []
+        if boxes is None:
+            self._setup_part(basis, xy, b, codes, rotations, n_walks, np.ones(n, dtype=bool), None)
+            parts.append(self)
+        else:
+            for elo, ehi in boxes:
+                sel = np.all((xy >= elo) & (xy <= ehi), axis=1)
+                if sel.sum() < 20:
+                    continue
+                sub = type(self)(**{k: getattr(self, k) for k in self._param_names})
+                sub.tiles = "never"
+                tb = BoxBasis.covering(elo, ehi, margin_m=float(self.margin_m), n_basis=int(self.tile_basis))
+                sub._setup_part(tb, xy, b, codes, rotations, n_walks, sel, (elo, ehi))
+                parts.append(sub)
+            if not parts:
+                raise DataError("no map tile holds enough survey samples (need 20 in at least one)")
+        self.parts_ = parts
+        hyper = self._initial_hyper(b, parts, use_offsets=use_offsets)
         # Many small factorisations: one BLAS thread is much faster than
         # two on a shared, busy machine (thread spin-waits).
         with threadpool_limits(limits=1, user_api="blas"):
             if self.optimize:
-                hyper, info = self._optimise(stats, hyper, use_offsets=codes is not None)
+                hyper, info = self._optimise(parts, hyper)
             else:
                 info = {"optimised": False}
-            post = _linmodel.posterior(stats, self._prior_var(hyper), self._noise(hyper), hyper["offset_ut"] ** 2)
+            log_ml = 0.0
+            for p in parts:
+                post = _linmodel.posterior(p.stats_, p._prior_var(hyper), self._noise(hyper), hyper["offset_ut"] ** 2)
+                p.mean_f_, p.cov_f_, p.hyper_ = post.mean_f, post.cov_f, hyper
+                p.walk_offsets_ut_ = post.mean_o
+                log_ml += post.log_ml
         self.hyper_ = hyper
         self.optim_info_ = info
-        self.log_marginal_likelihood_ = post.log_ml
-        self.mean_f_ = post.mean_f
-        self.cov_f_ = post.cov_f
+        self.log_marginal_likelihood_ = log_ml
         self.walk_names_ = names
-        self.walk_offsets_ut_ = post.mean_o
         self.noise_var_ = np.array([hyper["noise_h_ut"] ** 2, hyper["noise_h_ut"] ** 2, hyper["noise_up_ut"] ** 2])
         self.between_walk_var_ = np.zeros(3)
+        for p in parts:
+            p.between_walk_var_ = np.zeros(3)
+            p.noise_var_ = self.noise_var_
         self.calibration_ = {}
-        if codes is not None and self.between_walk and n_walks >= 2:
+        if use_offsets and self.between_walk and n_walks >= 2:
             with threadpool_limits(limits=1, user_api="blas"):
-                self._fit_between_walk(stats, design, xy, b, codes, rotations, n_walks, hyper)
+                self._fit_between_walk(parts, xy, b, codes, rotations, n_walks, hyper)
+        for p in parts:
+            p.n_samples_ = int(p.sel_.sum())
         self.n_samples_ = n
         return self
+
+    def _setup_part(self, basis, xy, b, codes, rotations, n_walks, sel, box):
+        """Basis, layout and sufficient statistics of one box (the whole
+        domain, or one tile: samples ``sel``, box ``(lo, hi)``)."""
+        self.basis_ = basis
+        self.n_field_, self.idx_ = self._layout(basis.n)
+        self.sel_ = sel
+        self.box_ = box
+        g = None if codes is None else codes[sel]
+        self.walk_codes_ = None if g is None else np.unique(g)
+        local = None if g is None else np.searchsorted(self.walk_codes_, g)
+        self.stats_ = _linmodel.accumulate(
+            lambda q: self._design(basis, q), self.idx_, xy[sel], b[sel], groups=local,
+            rotations=None if rotations is None else rotations[sel],
+            n_walks=0 if g is None else self.walk_codes_.size, chunk=int(self.chunk), blocks=self._blocks(basis.n),
+        )
+
+    def _tile_boxes(self, lo, hi, basis):
+        """Extended tile boxes [(lo, hi), ...], or None for one box. "auto"
+        tiles when one box with ``n_basis`` functions cannot resolve length
+        scales the tiles can."""
+        if self.tiles == "never":
+            return None
+        core = float(self.tile_m)
+        ov = float(self.tile_overlap_m)
+        if not (core > 0 and ov >= 0):
+            raise ConfigError(f"tile_m must be > 0 and tile_overlap_m >= 0, got {core}, {ov}")
+        nt = np.maximum(np.ceil((hi - lo) / core).astype(int), 1)
+        if self.tiles == "auto":
+            if nt.prod() <= 1:
+                return None
+            size = (hi - lo) / nt + 2 * ov
+            tb = BoxBasis.covering(lo, lo + size, margin_m=float(self.margin_m), n_basis=int(self.tile_basis))
+            if self._length_bounds(basis)[0] <= 1.2 * self._length_bounds(tb)[0]:
+                return None
+        step = (hi - lo) / nt
+        boxes = []
+        for i in range(nt[0]):
+            for j in range(nt[1]):
+                clo = lo + step * np.array([i, j])
+                boxes.append((clo - ov, clo + step + ov))
+        return boxes
 
     def _noise(self, hyper):
         return np.array([hyper["noise_h_ut"] ** 2, hyper["noise_up_ut"] ** 2])
@@ -272,11 +343,15 @@ class _ReducedRankGP(_Fitted):
         hi = float(2.0 * basis.half_width_m.max())
         return lo, max(hi, 2 * lo)
 
-    def _initial_hyper(self, b, basis, *, use_offsets):
+    def _parts_length_bounds(self, parts):
+        b = np.array([p._length_bounds(p.basis_) for p in parts])
+        return float(b[:, 0].max()), float(b[:, 1].max())
+
+    def _initial_hyper(self, b, parts, *, use_offsets):
         centred = b - b.mean(axis=0)
         sd = float(np.sqrt(np.mean(centred**2))) or 1.0
         self.data_sd_ut_ = sd
-        lo, hi = self._length_bounds(basis)
+        lo, hi = self._parts_length_bounds(parts)
         given = {
             "magnitude_ut": self.magnitude_ut,
             "length_scale_m": self.length_scale_m,
@@ -312,11 +387,11 @@ class _ReducedRankGP(_Fitted):
         self.fixed_hyper_ = sorted(fixed)
         return out
 
-    def _optimise(self, stats, hyper, *, use_offsets):
+    def _optimise(self, parts, hyper):
         free = [k for k in self._hyper_names if k not in self.fixed_hyper_]
         if not free:
             return hyper, {"optimised": False}
-        lo_l, hi_l = self._length_bounds(self.basis_)
+        lo_l, hi_l = self._parts_length_bounds(parts)
         bounds = []
         for k in free:
             if k == "length_scale_m":
@@ -340,24 +415,29 @@ class _ReducedRankGP(_Fitted):
             return h
 
         def objective(theta):
+            # tiles: the sum of the tiles' log marginal likelihoods (a
+            # composite likelihood; one box: the exact one)
             h = unpack(theta)
-            val, d_prior, d_noise, d_off = _linmodel.log_marginal_and_grad(
-                stats, self._prior_var(h), self._noise(h), h["offset_ut"] ** 2
-            )
-            if not np.isfinite(val):
-                return 1e300, np.zeros_like(theta)
-            jac = self._dlog_prior(h)
-            grad = []
-            for k in free:
-                if k in jac:
-                    grad.append(float(d_prior @ jac[k]))
-                elif k == "noise_h_ut":
-                    grad.append(2.0 * d_noise[0])
-                elif k == "noise_up_ut":
-                    grad.append(2.0 * d_noise[1])
-                else:  # offset_ut
-                    grad.append(2.0 * d_off)
-            return -val, -np.array(grad)
+            total = 0.0
+            grad = np.zeros(len(free))
+            for p in parts:
+                val, d_prior, d_noise, d_off = _linmodel.log_marginal_and_grad(
+                    p.stats_, p._prior_var(h), self._noise(h), h["offset_ut"] ** 2
+                )
+                if not np.isfinite(val):
+                    return 1e300, np.zeros_like(theta)
+                total += val
+                jac = p._dlog_prior(h)
+                for i, k in enumerate(free):
+                    if k in jac:
+                        grad[i] += float(d_prior @ jac[k])
+                    elif k == "noise_h_ut":
+                        grad[i] += 2.0 * d_noise[0]
+                    elif k == "noise_up_ut":
+                        grad[i] += 2.0 * d_noise[1]
+                    else:  # offset_ut
+                        grad[i] += 2.0 * d_off
+            return -total, -grad
 
         theta0 = np.clip(np.log([hyper[k] for k in free]), bounds[:, 0], bounds[:, 1])
         # A coarse scan of the length scale first: the likelihood can be
@@ -386,7 +466,7 @@ class _ReducedRankGP(_Fitted):
             "length_scale_bounds_m": [float(lo_l), float(hi_l)],
         }
 
-    def _fit_between_walk(self, stats, design, xy, b, codes, rotations, n_walks, hyper):
+    def _fit_between_walk(self, parts, xy, b, codes, rotations, n_walks, hyper):
         """Between-walk variance from group k-fold predictions (see module
         docstring)."""
         rng = np.random.default_rng(self.seed)
@@ -394,24 +474,22 @@ class _ReducedRankGP(_Fitted):
         fold_of_walk = np.empty(n_walks, dtype=np.int64)
         fold_of_walk[rng.permutation(n_walks)] = np.arange(n_walks) % k
         fold = fold_of_walk[codes]
-        prior = self._prior_var(hyper)
         noise = self._noise(hyper)
         res, var = [], []
         for f in range(k):
             sel = fold == f
-            held = _linmodel.accumulate(
-                design,
-                self.idx_,
-                xy[sel],
-                b[sel],
-                groups=codes[sel],
-                rotations=None if rotations is None else rotations[sel],
-                n_walks=n_walks,
-                chunk=int(self.chunk),
-                blocks=stats.blocks,
-            )
-            post = _linmodel.posterior(stats - held, prior, noise, hyper["offset_ut"] ** 2)
-            mean, latent = self._predict_with(post.mean_f, post.cov_f, xy[sel])
+            posts = []
+            for p in parts:
+                ps = p.sel_ & sel
+                local = np.searchsorted(p.walk_codes_, codes[ps])
+                held = _linmodel.accumulate(
+                    lambda q, p=p: p._design(p.basis_, q), p.idx_, xy[ps], b[ps], groups=local,
+                    rotations=None if rotations is None else rotations[ps], n_walks=p.walk_codes_.size,
+                    chunk=int(self.chunk), blocks=p.stats_.blocks,
+                )
+                post = _linmodel.posterior(p.stats_ - held, p._prior_var(hyper), noise, hyper["offset_ut"] ** 2)
+                posts.append((post.mean_f, post.cov_f))
+            mean, latent = self._blend_points(xy[sel], posts)
             res.append(b[sel] - mean)
             var.append(latent)
         res = np.concatenate(res)
@@ -442,6 +520,51 @@ class _ReducedRankGP(_Fitted):
                 out_v[s : s + chunk, c] = np.einsum("ij,ij->i", f @ blocks[c], f)
         return out_m, np.maximum(out_v, 0.0)
 
+    def _weight(self, xy):
+        """(N,) blending weight of this tile at points (smooth ramp over the
+        overlap, 1 inside the core); 1 everywhere for a single box."""
+        if self.box_ is None:
+            return np.ones(xy.shape[0])
+        lo, hi = self.box_
+        ov = max(float(self.tile_overlap_m), 1e-9)
+        d = np.minimum(xy - lo, hi - xy)  # (N, 2), >= 0 inside
+        u = np.clip(d / (2 * ov), 0.0, 1.0)
+        ramp = u * u * (3 - 2 * u)  # smoothstep
+        return np.where(np.all(d >= 0, axis=1), ramp.prod(axis=1), 0.0)
+
+    def _blend_points(self, xy, posts=None):
+        """Blend the parts' latent predictions: (mean (N, 3), var (N, 3));
+        var is the mixture variance. Points no tile covers get the data mean
+        and the prior variance."""
+        posts = posts or [(p.mean_f_, p.cov_f_) for p in self.parts_]
+        if len(self.parts_) == 1 and self.parts_[0].box_ is None:
+            p = self.parts_[0]
+            return p._predict_with(posts[0][0], posts[0][1], xy)
+        w_sum = np.zeros(xy.shape[0])
+        m_sum = np.zeros((xy.shape[0], 3))
+        s_sum = np.zeros((xy.shape[0], 3))
+        for p, (mf, cf) in zip(self.parts_, posts):
+            w = p._weight(xy)
+            inside = w > 0
+            if not inside.any():
+                continue
+            m, v = p._predict_with(mf, cf, xy[inside])
+            wi = w[inside][:, None]
+            w_sum[inside] += w[inside]
+            m_sum[inside] += wi * m
+            s_sum[inside] += wi * (v + m**2)
+        return self._finish_blend(w_sum, m_sum, s_sum)
+
+    def _finish_blend(self, w_sum, m_sum, s_sum):
+        ok = w_sum > 0
+        mean = np.empty_like(m_sum)
+        var = np.empty_like(s_sum)
+        mean[ok] = m_sum[ok] / w_sum[ok][:, None]
+        var[ok] = np.maximum(s_sum[ok] / w_sum[ok][:, None] - mean[ok] ** 2, 0.0)
+        mean[~ok] = self.fallback_mean_
+        var[~ok] = self.hyper_["magnitude_ut"] ** 2
+        return mean, var
+
     def predict(self, xy, return_var=True):
         """Mapped field at plan positions.
 
@@ -459,7 +582,7 @@ class _ReducedRankGP(_Fitted):
         """
         self._check_fitted()
         xy = _check_query(xy)
-        mean, var = self._predict_with(self.mean_f_, self.cov_f_, xy)
+        mean, var = self._blend_points(xy)
         if not return_var:
             return mean
         return mean, var + self.between_walk_var_[None, :]
@@ -467,11 +590,40 @@ class _ReducedRankGP(_Fitted):
     def predict_grid(self, xs, ys, return_var=True):
         """Mapped field on the raster ``xs`` (nx,) x ``ys`` (ny,) using the
         separable basis: ``mean (ny, nx, 3)``, ``var (ny, nx, 3)`` (as
-        :meth:`predict`). Cost ``O(ny m^2 + nx ny J^2)`` instead of
+        :meth:`predict`). Cost ``O(ny m^2 + nx ny J^2)`` per box instead of
         ``O(nx ny m^2)`` for point-wise evaluation."""
         self._check_fitted()
         xs = np.asarray(xs, float)
         ys = np.asarray(ys, float)
+        if len(self.parts_) == 1 and self.parts_[0] is self:
+            return self._grid_single(xs, ys, return_var)
+        ny, nx = ys.size, xs.size
+        w_sum = np.zeros(ny * nx)
+        m_sum = np.zeros((ny * nx, 3))
+        s_sum = np.zeros((ny * nx, 3))
+        for p in self.parts_:
+            lo, hi = p.box_
+            ix = np.flatnonzero((xs >= lo[0]) & (xs <= hi[0]))
+            iy = np.flatnonzero((ys >= lo[1]) & (ys <= hi[1]))
+            if ix.size == 0 or iy.size == 0:
+                continue
+            out = p._grid_single(xs[ix], ys[iy], return_var)
+            m, v = out if return_var else (out, np.zeros(out.shape))
+            gx, gy = np.meshgrid(xs[ix], ys[iy])
+            w = p._weight(np.column_stack([gx.ravel(), gy.ravel()]))
+            cells = (iy[:, None] * nx + ix[None, :]).ravel()
+            m = m.reshape(-1, 3)
+            v = v.reshape(-1, 3)
+            w_sum[cells] += w
+            m_sum[cells] += w[:, None] * m
+            s_sum[cells] += w[:, None] * (v + m**2)
+        mean, var = self._finish_blend(w_sum, m_sum, s_sum)
+        mean = mean.reshape(ny, nx, 3)
+        if not return_var:
+            return mean
+        return mean, var.reshape(ny, nx, 3) + self.between_walk_var_[None, None, :]
+
+    def _grid_single(self, xs, ys, return_var=True):
         fx, dfx, fy, dfy = self.basis_.factors(xs, ys)
         nb = self.basis_.n
         order = np.argsort(self.basis_.jx, kind="stable")
@@ -522,7 +674,9 @@ class _ReducedRankGP(_Fitted):
             "noise_sd_ut": [float(v) for v in np.sqrt(self.noise_var_)],
             "between_walk_sd_ut": [float(v) for v in np.sqrt(self.between_walk_var_)],
             "log_marginal_likelihood": float(self.log_marginal_likelihood_),
-            "basis": self.basis_.to_dict(),
+            "basis": self.parts_[0].basis_.to_dict() if len(self.parts_) == 1 else {
+                "tiles": len(self.parts_), "tile_m": float(self.tile_m), "tile_overlap_m": float(self.tile_overlap_m),
+                "n_basis_per_tile": int(self.tile_basis)},
             "optimisation": self.optim_info_,
             "calibration": self.calibration_,
             "n_samples": int(self.n_samples_),
