@@ -15,7 +15,7 @@ from .dipoles import dipole_field_ut
 from .fieldmodel import FieldModel, earth_to_plan_vector, field_model_for_floor
 from .routes import graph_segments, plan_survey_routes, plan_test_route, route_markers, route_polyline
 from .sensors import Device, SensorTruth, synthesize_log
-from .walkers import HandheldWalker, RobotWalker, Trajectory
+from .walkers import HandheldWalker, RobotWalker, Trajectory, turn_in_hand
 
 __all__ = [
     "FieldModel",
@@ -42,4 +42,5 @@ __all__ = [
     "HandheldWalker",
     "RobotWalker",
     "Trajectory",
+    "turn_in_hand",
 ]
