@@ -644,6 +644,16 @@ def report_sections(ev, fmap, *, extra_cautions=(), tracks_body=None, extra_meth
         if off:
             cautions.append(f"{off} checkpoints are more than 2 m from the floor graph; estimates on the graph "
                             "cannot come closer than that.")
+    lost = [w.name for w in ev.walks if np.any(np.asarray(w.main_result.track.extra.get("lost", [False]), bool))]
+    if lost:
+        cautions.append(f"The filter flagged itself lost (likelihood collapse, particles re-seeded) on {len(lost)} "
+                        f"walk(s): {', '.join(lost[:8])}{' ...' if len(lost) > 8 else ''}; large errors there are "
+                        "recoveries gone wrong or not yet complete.")
+    st = M.error_stats(ev.pooled(main))
+    if st["n"] and st["max"] > 10 * max(st["median"], 0.1):
+        cautions.append(f"The largest error ({st['max']:.1f} m) is over ten times the median ({st['median']:.2f} m): "
+                        "a few estimates jumped far away; the median hides this, read the p95, the maximum and "
+                        "the tracks.")
     if ev.skipped:
         cautions.append(f"{len(ev.skipped)} walk(s) skipped (listed in the per-walk section).")
     if main == "global":
