@@ -46,7 +46,7 @@ def add_arguments(parser):
                         help="comma-separated baselines run on the same walks: dead-reckoning, no-field, dtw, "
                              "or 'none' (default: all three)")
     parser.add_argument("--jobs", type=int, default=1, metavar="N", help="walks evaluated in parallel (default: 1)")
-    parser.add_argument("--json", action="store_true", help="also print summary.json on stdout")
+    parser.add_argument("--json", action="store_true", help="print summary.json on stdout instead of the summary table")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
 
 
