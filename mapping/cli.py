@@ -83,6 +83,13 @@ def main(argv=None):
     except (FileNotFoundError, IsADirectoryError, PermissionError) as err:
         print(f"lodemap {args.command}: error: {err.strerror}: {err.filename}", file=sys.stderr)
         return 2
+    except BrokenPipeError:
+        # the reader of our output went away (`lodemap ... | head`): not an error
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
     except KeyboardInterrupt:
         print(f"lodemap {args.command}: interrupted", file=sys.stderr)
         return 130
