@@ -274,11 +274,18 @@ def derive(we, main, results):
     return dataclasses.replace(we, main=main, results=dict(results), converged=conv, convergence_distance_m=cdist)
 
 
-def _one(wf, fmap, mode, settings, seed, baselines, start_sigma_m):
+def _one(wf, fmap, mode, settings, seed, baselines, start_sigma_m, on_error="raise"):
+    from fingerprint.errors import LodemapError
+
     if isinstance(wf, LoadedWalk):
         walk, cps, truth = wf.walk, wf.checkpoints, wf.truth
     else:
-        walk, cps, truth = load_walk(wf)
+        try:
+            walk, cps, truth = load_walk(wf)
+        except LodemapError as err:
+            if on_error == "skip":
+                return wf.name, f"unreadable: {err}"
+            raise
     if cps is None:
         return wf.name, "no checkpoints file"
     need = 1 if mode == "global" else 2
@@ -289,7 +296,8 @@ def _one(wf, fmap, mode, settings, seed, baselines, start_sigma_m):
 
 
 def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_particles=None, seed=0,
-                   baselines=BASELINES, start_sigma_m=1.0, jobs=1, progress=True, map_info=None):
+                   baselines=BASELINES, start_sigma_m=1.0, jobs=1, progress=True, map_info=None,
+                   on_error="raise"):
     """Evaluate many walks on one map.
 
     Parameters
@@ -301,6 +309,9 @@ def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_partic
         counts (tracking and global)
     seed : int, root seed; walk ``i`` gets ``SeedSequence(seed).spawn(n)[i]``
     jobs : int, walks processed in parallel (joblib processes)
+    on_error : "raise" (default) or "skip": a walk whose files cannot be
+        read (our DataError/FormatError) stops the run, or is listed as
+        skipped with the reason
 
     Returns
     -------
@@ -308,6 +319,8 @@ def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_partic
     """
     if mode not in MODES:
         raise ConfigError(f"unknown mode {mode!r}; valid: {list(MODES)}")
+    if on_error not in ("raise", "skip"):
+        raise ConfigError(f"on_error must be 'raise' or 'skip', got {on_error!r}")
     bad = [b for b in baselines if b not in METHODS]
     if bad:
         raise ConfigError(f"unknown baseline(s) {bad}; valid: {list(METHODS)}")
@@ -321,12 +334,12 @@ def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_partic
         from joblib import Parallel, delayed
 
         outs = Parallel(n_jobs=int(jobs))(
-            delayed(_one)(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m)
+            delayed(_one)(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error)
             for i, wf in enumerate(walk_files)
         )
     else:
         outs = [
-            _one(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m)
+            _one(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error)
             for i, wf in enumerate(tqdm(walk_files, desc=f"evaluate ({mode})", unit="walk", disable=not progress))
         ]
     walks = [o for o in outs if isinstance(o, WalkEvaluation)]

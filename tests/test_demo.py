@@ -173,3 +173,27 @@ def test_sweep_cli_on_the_demo_map_and_resume(demo, tmp_path, capsys):
     assert all(float(r["median_error_m"]) >= 0 for r in rows)
     rc = main(["sweep", str(cfg), "--out", str(tmp_path / "sw"), "--no-progress"])
     assert rc == 0 and "0 done now, 4 already stored" in capsys.readouterr().out
+
+
+def test_evaluate_bad_walk_stops_or_is_skipped(demo, tmp_path, capsys):
+    import shutil
+
+    out, _ = demo
+    walks = tmp_path / "walks"
+    walks.mkdir()
+    src = out / "sim" / "T" / "test"
+    first = sorted(src.glob("*.log.csv"))[0].name.replace(".log.csv", "")
+    for suffix in (".log.csv", ".checkpoints.csv", ".track.csv"):
+        shutil.copy(src / f"{first}{suffix}", walks / f"{first}{suffix}")
+    (walks / "broken.log.csv").write_text("t,ax,ay,az,gx,gy,gz,mx,my,mz\n0.0,1,2\n", encoding="utf-8")
+    (walks / "broken.checkpoints.csv").write_text("t,x,y\n0,1,1\n1,2,2\n", encoding="utf-8")
+    argv = ["evaluate", "--map", str(out / "maps" / "T.map"), str(walks), "--mode", "dead-reckoning",
+            "--baselines", "none", "--no-progress"]
+    rc = main(argv + ["--out", str(tmp_path / "a")])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert rc == 2 and len(err) == 1 and "broken.log.csv" in err[0]
+    rc = main(argv + ["--out", str(tmp_path / "b"), "--skip-bad"])
+    assert rc == 0
+    run = json.loads((tmp_path / "b" / "run.json").read_text())
+    assert run["walks"] == [first]
+    assert [s["walk"] for s in run["skipped"]] == ["broken"] and "unreadable" in run["skipped"][0]["reason"]

@@ -45,6 +45,8 @@ def add_arguments(parser):
     parser.add_argument("--baselines", default="dead-reckoning,no-field,dtw", metavar="LIST",
                         help="comma-separated baselines run on the same walks: dead-reckoning, no-field, dtw, "
                              "or 'none' (default: all three)")
+    parser.add_argument("--skip-bad", action="store_true",
+                        help="list walks whose files cannot be read as skipped instead of stopping")
     parser.add_argument("--jobs", type=int, default=1, metavar="N", help="walks evaluated in parallel (default: 1)")
     parser.add_argument("--json", action="store_true", help="print summary.json on stdout instead of the summary table")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
@@ -94,7 +96,8 @@ def run(args):
     walks = find_walks(args.walks, split=args.split, part=args.use if args.split else None)
     ev = evaluate_walks(fmap, walks, mode=args.mode, n_particles=args.particles, seed=args.seed,
                         baselines=baselines, start_sigma_m=args.start_sigma, jobs=args.jobs,
-                        progress=not args.no_progress, map_info=map_info(fmap, args.map))
+                        progress=not args.no_progress, map_info=map_info(fmap, args.map),
+                        on_error="skip" if args.skip_bad else "raise")
     if not ev.walks:
         raise ConfigError("no walk could be scored: " + "; ".join(f"{n}: {r}" for n, r in ev.skipped))
     paths = write_outputs(ev, fmap, args.out)
