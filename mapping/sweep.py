@@ -26,8 +26,8 @@ A sweep is described by a TOML file (read with :mod:`tomllib`)::
     [random]                   # random search: {choices = [...]} or
     n_particles = {low = 200, high = 3000, log = true, integer = true}
 
-Setting names: ``map_resolution_m`` and ``map_kernel`` choose how the map is
-built; ``noise_mag_ut`` (extra white noise on the measured field, µT, 1 sd),
+Setting names: ``map_resolution_m``, ``map_kernel`` and ``map_n_basis``
+choose how the map is built; ``noise_mag_ut`` (extra white noise on the measured field, µT, 1 sd),
 ``noise_heading_deg`` (a constant heading error added to every step) and
 ``noise_step_scale`` (step lengths multiplied by it) perturb the input;
 every other name is a field of ``fingerprint.localise.FilterSettings``.
@@ -83,7 +83,7 @@ __all__ = [
 
 MODES = ("tracking", "global", "no-field", "dead-reckoning")
 #: settings that choose how the map is built (one map per distinct combination)
-MAP_SETTINGS = ("map_resolution_m", "map_kernel")
+MAP_SETTINGS = ("map_resolution_m", "map_kernel", "map_n_basis")
 #: settings that perturb the input walk
 NOISE_SETTINGS = ("noise_mag_ut", "noise_heading_deg", "noise_step_scale")
 _SEARCHES = ("grid", "random")
@@ -627,6 +627,8 @@ def prepare_maps(cfg, settings_list, out_dir, *, progress=True):
                 kw["resolution_m"] = float(m["map_resolution_m"])
             if "map_kernel" in m:
                 kw["kernel"] = str(m["map_kernel"])
+            if "map_n_basis" in m:
+                kw["kernel_params"] = {"n_basis": int(m["map_n_basis"])}
             fmap = build_floor_map(site, cfg.floor, survey, seed=cfg.seed, progress=progress, **kw)
             save_map(path, fmap)
         out[k] = path

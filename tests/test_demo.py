@@ -197,3 +197,42 @@ def test_evaluate_bad_walk_stops_or_is_skipped(demo, tmp_path, capsys):
     run = json.loads((tmp_path / "b" / "run.json").read_text())
     assert run["walks"] == [first]
     assert [s["walk"] for s in run["skipped"]] == ["broken"] and "unreadable" in run["skipped"][0]["reason"]
+
+
+def test_sweep_builds_one_map_per_map_setting_and_caches_it(demo, tmp_path, capsys):
+    out, _ = demo
+    walk = sorted((out / "sim" / "T" / "test").glob("*.log.csv"))[0]
+    cfg = tmp_path / "maps.toml"
+    cfg.write_text(textwrap.dedent(f"""
+        [sweep]
+        mode = "dead-reckoning"
+        seeds = 2
+        [data]
+        walks = ["{walk}"]
+        site = "{TINY / 'site.json'}"
+        floor = "T"
+        survey = ["{out / 'sim' / 'T' / 'survey'}"]
+        [grid]
+        map_resolution_m = [0.5, 1.0]
+        map_n_basis = [64]
+        noise_step_scale = [1.0, 1.1]
+    """), encoding="utf-8")
+    assert main(["sweep", str(cfg), "--out", str(tmp_path / "sw"), "--no-progress"]) == 0
+    maps = sorted((tmp_path / "sw" / "maps").glob("*.map"))
+    assert len(maps) == 2  # two map settings, four settings in all
+    from fingerprint.mapfile import load_map
+
+    assert sorted(load_map(m).resolution_m for m in maps) == [0.5, 1.0]
+    stamps = [m.stat().st_mtime_ns for m in maps]
+    with open(tmp_path / "sw" / "results.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 8
+    # dead reckoning does not use the field: 10 % longer steps change the
+    # error, the map resolution does not (same seed, same walk)
+    by = {(r["map_resolution_m"], r["noise_step_scale"], r["seed_index"]): float(r["median_error_m"]) for r in rows}
+    assert by[("0.5", "1.0", "0")] == pytest.approx(by[("1.0", "1.0", "0")], abs=1e-3)
+    assert by[("0.5", "1.0", "0")] != pytest.approx(by[("0.5", "1.1", "0")], abs=1e-3)
+    capsys.readouterr()
+    assert main(["sweep", str(cfg), "--out", str(tmp_path / "sw"), "--no-progress"]) == 0
+    assert "0 done now, 8 already stored" in capsys.readouterr().out
+    assert [m.stat().st_mtime_ns for m in sorted((tmp_path / "sw" / "maps").glob("*.map"))] == stamps
