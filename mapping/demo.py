@@ -108,7 +108,6 @@ def run_demo(out, *, quick=False, seed=0, site_dir=None, progress=True, jobs=1, 
     from fingerprint.localise import FilterSettings
     from fingerprint.mapfile import save_map
 
-    from . import report as R
     from .mapbuild import build_floor_map
     from .site import load_site
     from .walkset import find_walks

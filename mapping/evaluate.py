@@ -23,7 +23,6 @@ from __future__ import annotations
 import csv
 import dataclasses
 import io
-import json
 import math
 import platform as _platform
 import time
