@@ -246,8 +246,32 @@ def rotation_coverage(directions, *, n_cells=100):
     return {"sphere_fraction": float(hit.size / n_cells), "spread": [float(v) for v in ev]}
 
 
+def _offset_from_total(h2, z, total_ut, up_sign):
+    """Offset ``o`` along the vertical such that the median of
+    ``sqrt(h2 + (z - o)²)`` equals ``total_ut``, on the branch where the
+    corrected vertical ``z - o`` has the sign ``up_sign``; None when no
+    offset can reach it (the horizontal field alone is already larger).
+
+    h2 : (N,) squared in-plane field after the in-plane offset, µT²;
+    z : (N,) reading along the up direction, µT.
+    """
+    from scipy.optimize import brentq
+
+    zc = float(np.median(z))
+    dz = z - zc
+
+    def f(v):  # v = up_sign * (median vertical after correction) >= 0
+        return float(np.median(np.sqrt(h2 + (dz + up_sign * v) ** 2))) - total_ut
+
+    hi = total_ut + float(np.max(np.abs(dz))) + 1.0
+    if f(0.0) > 0 or f(hi) < 0:
+        return None
+    v = brentq(f, 0.0, hi, xtol=1e-6)
+    return zc - up_sign * v
+
+
 def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, min_samples=50, up_device=None,
-                    field_up_ut=None, planar_tilt_deg=20.0):
+                    field_up_ut=None, planar_tilt_deg=20.0, field_total_ut=None, field_up_sign=-1.0):
     """Fit hard- and soft-iron calibration to magnetometer readings.
 
     Parameters
@@ -274,6 +298,17 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         the northern hemisphere), e.g. from a geomagnetic model. With planar
         data it fixes the offset along the normal, which the readings alone
         cannot.
+    field_total_ut : float, optional
+        Expected magnitude of the true field (µT), e.g. the total of
+        :func:`fingerprint.geomag.background_field` at the site. With planar
+        data and no ``field_up_ut``, the offset along the vertical is set so
+        that the median corrected |B| equals it (a robot turning only about
+        z cannot show that offset otherwise). ``field_up_ut`` wins when both
+        are given.
+    field_up_sign : {-1, +1}
+        Sign of the true vertical field used with ``field_total_ut``: -1
+        (default) where the field dips downwards (northern magnetic
+        hemisphere), +1 south of the magnetic equator.
 
     Returns
     -------
@@ -344,8 +379,24 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         c2, r = circle_fit(q)
         offset = mu + c2[0] * e1 + c2[1] * e2
         offset = offset - n * (n @ offset)  # not identifiable along the normal
+        vertical = "none"
         if field_up_ut is not None and up_n is not None:
             offset = offset + n * (float(np.mean(m @ n)) - float(field_up_ut))
+            vertical = "field_up"
+        elif field_total_ut is not None and up_n is not None:
+            if not (np.isfinite(field_total_ut) and field_total_ut > 0):
+                raise DataError(f"expected total field must be a positive number of µT, got {field_total_ut!r}")
+            if field_up_sign not in (-1, 1, -1.0, 1.0):
+                raise DataError(f"field_up_sign must be -1 or +1, got {field_up_sign!r}")
+            mc = m - offset
+            z = mc @ n
+            h2 = np.einsum("ij,ij->i", mc, mc) - z * z
+            o_n = _offset_from_total(h2, z, float(field_total_ut), float(field_up_sign))
+            if o_n is None:
+                vertical = "total-unreachable"
+            else:
+                offset = offset + n * o_n
+                vertical = "total"
         W = np.eye(3)
         report["condition_number"] = float(np.linalg.cond(q.T @ q))
         report["circle_radius_ut"] = r
@@ -353,14 +404,20 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         arc = np.unique(np.floor((ang + np.pi) / (2 * np.pi) * 36).astype(int) % 36).size / 36
         report["arc_fraction"] = float(arc)
         report["plane_normal"] = n.tolist()
-        message += (
-            "circle fit (Kåsa 1976) in the plane of the readings: offset within the plane only; "
-            + (
-                "offset along the normal set from the expected vertical field; soft-iron left at identity"
-                if field_up_ut is not None and up_n is not None
-                else "offset along the normal left at 0 and soft-iron left at identity (not identifiable)"
-            )
-        )
+        message += "circle fit (Kåsa 1976) in the plane of the readings: offset within the plane only; "
+        if vertical == "field_up":
+            message += "offset along the normal set from the expected vertical field; soft-iron left at identity"
+        elif vertical == "total":
+            message += (f"offset along the vertical set so that the median |B| matches the expected total field "
+                        f"{float(field_total_ut):.1f} µT (vertical field taken as "
+                        f"{'downwards' if field_up_sign < 0 else 'upwards'}); soft-iron left at identity")
+        elif vertical == "total-unreachable":
+            message += (f"the expected total field {float(field_total_ut):.1f} µT is below the median "
+                        "horizontal field, so it cannot fix the vertical offset: left at 0; "
+                        "soft-iron left at identity")
+        else:
+            message += "offset along the normal left at 0 and soft-iron left at identity (not identifiable)"
+        report["vertical_offset_from"] = vertical
         if report["arc_fraction"] < 0.5:
             message += f"; the readings cover only {report['arc_fraction']:.0%} of the circle, so the offset is weakly determined"
 

@@ -26,7 +26,7 @@ from .odometry import OdometrySettings, odometry_motion
 from .records import Motion, ProcessedWalk, WalkLog
 from .steps import DEFAULT_STEP_CONSTANT, StepSettings, detect_steps, weinberg_length
 
-__all__ = ["PipelineSettings", "process_walk", "fit_walker_constant", "mag_noise_ut", "fill_gaps", "calibration_verdict", "up_directions"]
+__all__ = ["PipelineSettings", "process_walk", "wheels_still", "step_speed", "odometry_speed", "fit_walker_constant", "mag_noise_ut", "fill_gaps", "calibration_verdict", "up_directions"]
 
 
 @dataclass(frozen=True)
@@ -39,6 +39,18 @@ class PipelineSettings:
     #: expected vertical field (µT, up positive) at the site, for the offset
     #: along the vertical that planar self-calibration cannot see
     field_up_ut: float | None = None
+    #: expected magnitude of the true field (µT) at the site, e.g.
+    #: ``fingerprint.geomag.background_field(lat, lon, date).total_ut``: with
+    #: planar self-calibration (a robot turning only about z) and no
+    #: ``field_up_ut``, the vertical offset is set so that the median |B|
+    #: matches it
+    expected_total_ut: float | None = None
+    #: sign of the true vertical field used with ``expected_total_ut`` (-1:
+    #: pointing down, northern magnetic hemisphere; +1 south)
+    expected_up_sign: float = -1.0
+    #: remove the centripetal acceleration of turns (speed from steps or
+    #: odometry) before the tilt estimate; see ``estimate_attitude``
+    turn_compensation: bool = True
 
 
 def fill_gaps(t, x):
@@ -142,16 +154,57 @@ def _choose_mag(log, calibration, settings, meta, acc):
         return mag
     try:
         cal, rep = fit_calibration(mag, source="mag", up_device=up_directions(t, acc),
-                                   field_up_ut=settings.field_up_ut)
+                                   field_up_ut=settings.field_up_ut, field_total_ut=settings.expected_total_ut,
+                                   field_up_sign=settings.expected_up_sign)
     except (DataError, ConvergenceError) as err:
         meta["calibration"] = {"method": "none", "source": "mag", "message": f"self-calibration failed: {err}"}
         return mag
     meta["calibration"] = {"method": "self:" + rep["method"], "source": "mag", "message": rep["message"],
                            "offset_ut": rep["offset_ut"]}
+    if "vertical_offset_from" in rep:
+        meta["calibration"]["vertical_offset_from"] = rep["vertical_offset_from"]
     return cal.apply(mag)
 
 
-def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_constant=None, settings=None):
+def step_speed(t, ev, *, step_constant=DEFAULT_STEP_CONSTANT):
+    """Walking speed (N,) m/s at the samples ``t`` from detected steps: each
+    step's Weinberg length (with the default constant, so that the attitude
+    does not depend on the constant a walk is processed with) over its
+    duration, constant within the step, 0 outside every step."""
+    dur = np.maximum(ev.end_s - ev.start_s, 1e-3)
+    v = weinberg_length(ev.a_max, ev.a_min, step_constant) / dur
+    i = np.searchsorted(ev.start_s, t, side="right") - 1
+    inside = (i >= 0) & (t <= ev.end_s[np.clip(i, 0, None)])
+    return np.where(inside, v[np.clip(i, 0, None)], 0.0)
+
+
+def odometry_speed(t, odom, *, window_s=0.5):
+    """Forward speed (N,) m/s of a wheeled platform: ``odom_dx`` over the
+    sample spacing, averaged over ``window_s``; NaN rows count as no motion."""
+    from scipy.ndimage import uniform_filter1d
+
+    dx = np.nan_to_num(np.asarray(odom, float)[:, 0], nan=0.0)
+    dt = np.diff(t, prepend=t[0] - (t[1] - t[0]) if t.size > 1 else 1.0)
+    v = dx / np.where(dt > 0, dt, np.inf)
+    w = max(1, int(round(window_s / float(np.median(dt)))))
+    return uniform_filter1d(v, w, mode="nearest")
+
+
+def wheels_still(t, odom, *, window_s=1.0, tol=1e-9):
+    """(N,) bool: rows whose odometry (``dx_m, dy_m, dyaw_rad`` (N, 3))
+    shows no motion over a centred window of ``window_s``. Rows without an
+    odometry sample (NaN) count as no motion, as in
+    :func:`~fingerprint.odometry.odometry_motion`."""
+    from scipy.ndimage import maximum_filter1d
+
+    moving = (np.abs(np.nan_to_num(np.asarray(odom, float), nan=0.0)) > tol).any(axis=1)
+    dt = float(np.median(np.diff(t))) if t.size > 1 else 1.0
+    w = max(1, int(round(window_s / dt)))
+    return ~maximum_filter1d(moving, w, mode="nearest")
+
+
+def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_constant=None, settings=None,
+                 expected_total_ut=None):
     """Turn a walk log into a processed walk.
 
     Parameters
@@ -162,6 +215,9 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         Weinberg constant K (handheld); default
         :data:`~fingerprint.steps.DEFAULT_STEP_CONSTANT`.
     settings : PipelineSettings, optional
+    expected_total_ut : float, optional
+        Expected field magnitude at the site (µT); overrides
+        ``settings.expected_total_ut`` (see :class:`PipelineSettings`).
 
     Returns
     -------
@@ -170,6 +226,10 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         ``step_constant``, ``n_steps`` (handheld), ``mag_noise_ut``.
     """
     s = settings or PipelineSettings()
+    if expected_total_ut is not None:
+        from dataclasses import replace as _replace
+
+        s = _replace(s, expected_total_ut=float(expected_total_ut))
     if log.n < 10:
         raise DataError(f"a walk needs at least 10 samples to process, got {log.n}", path=log.path)
     t = log.t
@@ -189,8 +249,18 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         # without a gyro the magnetometer must carry the heading
         from dataclasses import replace
 
-        att_set = replace(att_set, mag_time_constant_s=0.5)
-    att = estimate_attitude(t, acc, gyro, mag, forward_axis=fwd, settings=att_set)
+        att_set = replace(att_set, heading_mode="smooth", mag_time_constant_s=0.5)
+    hint = speed = ev = None
+    if platform == "robot" and log.odom is not None:
+        hint = wheels_still(t, log.odom, window_s=att_set.still_window_s)
+        if s.turn_compensation:
+            speed = odometry_speed(t, log.odom)
+    elif platform != "robot":
+        ev = detect_steps(t, acc, settings=s.steps)
+        if s.turn_compensation and ev.n:
+            speed = step_speed(t, ev)
+    att = estimate_attitude(t, acc, gyro, mag, forward_axis=fwd, settings=att_set, still_hint=hint,
+                            forward_speed_m_s=speed)
     meta["attitude"] = att.meta
     if mag is None:
         mag_earth = np.full((log.n, 3), np.nan)
@@ -212,7 +282,6 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         k = DEFAULT_STEP_CONSTANT if step_constant is None else float(step_constant)
         if not (np.isfinite(k) and k > 0):
             raise DataError(f"step constant must be a positive number, got {step_constant!r}")
-        ev = detect_steps(t, acc, settings=s.steps)
         if ev.n:
             head = _circular_interp(ev.t, t, att.heading_rad)
             motion = Motion(t=ev.end_s, length_m=weinberg_length(ev.a_max, ev.a_min, k), heading_rad=head,

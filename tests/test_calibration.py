@@ -153,3 +153,51 @@ def test_planarity_from_gravity_despite_spatial_field_changes():
     cal2, rep2 = fit_calibration(m, up_device=up, field_up_ut=B_EARTH[2])
     assert cal2.offset_ut[2] == pytest.approx(O[2], abs=1.0)
     assert "expected vertical field" in rep2["message"]
+
+
+def _robot_turning(field_enu, *, n=4000, seed=9, tilt_deg=0.0):
+    """A bare robot magnetometer (offset O) turning about z only, with a
+    small random tilt of the up axis; field in ENU µT."""
+    rng = np.random.default_rng(seed)
+    yaw = np.linspace(0, 10 * np.pi, n)
+    tilt = np.radians(tilt_deg) * rng.normal(size=(n, 2))
+    rot = Rotation.from_rotvec(np.column_stack([tilt, yaw]))
+    m = rot.inv().apply(field_enu) + O + rng.normal(0, 0.4, (n, 3))
+    up = rot.inv().apply([0, 0, 1.0])
+    return m, up
+
+
+@pytest.mark.parametrize("field_enu, sign", [(B_EARTH, -1.0), (B_EARTH * [1, 1, -1], 1.0)])
+def test_expected_total_field_fixes_vertical_offset(field_enu, sign):
+    """Known synthetic offset O (truth of the construction): the expected
+    total field |B| (e.g. IGRF total at the site) sets the offset along up
+    so that the median corrected |B| matches it; the vertical sign picks the
+    branch (field dipping down in the north, up in the south)."""
+    m, up = _robot_turning(field_enu, tilt_deg=1.0)
+    total = float(np.linalg.norm(field_enu))
+    cal, rep = fit_calibration(m, up_device=up, field_total_ut=total, field_up_sign=sign)
+    assert rep["method"] == "circle-fallback" and rep["vertical_offset_from"] == "total"
+    assert "median |B| matches the expected total field" in rep["message"]
+    np.testing.assert_allclose(cal.offset_ut, O, atol=0.6)
+    assert np.median(np.linalg.norm(cal.apply(m), axis=1)) == pytest.approx(total, abs=1e-3)
+    # the corrected vertical has the sign asked for and about the true size
+    assert np.median(cal.apply(m) @ [0, 0, 1.0]) == pytest.approx(field_enu[2], abs=0.6)
+    # the other sign gives the mirror branch, 2|B_up| away
+    cal_w, _ = fit_calibration(m, up_device=up, field_total_ut=total, field_up_sign=-sign)
+    assert abs(cal_w.offset_ut[2] - O[2]) == pytest.approx(2 * abs(field_enu[2]), abs=1.5)
+    # field_up_ut wins when both are given
+    cal_u, rep_u = fit_calibration(m, up_device=up, field_total_ut=total + 20, field_up_ut=field_enu[2])
+    assert rep_u["vertical_offset_from"] == "field_up"
+    assert cal_u.offset_ut[2] == pytest.approx(O[2], abs=1.0)
+
+
+def test_expected_total_below_horizontal_is_reported():
+    m, up = _robot_turning(B_EARTH)
+    h = float(np.hypot(*B_EARTH[:2]))
+    cal, rep = fit_calibration(m, up_device=up, field_total_ut=0.5 * h)
+    assert rep["vertical_offset_from"] == "total-unreachable" and "cannot fix the vertical offset" in rep["message"]
+    assert cal.offset_ut[2] == pytest.approx(0.0, abs=0.5)
+    from fingerprint.errors import DataError
+
+    with pytest.raises(DataError):
+        fit_calibration(m, up_device=up, field_total_ut=-3.0)

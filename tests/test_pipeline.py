@@ -120,3 +120,48 @@ def test_robot_without_odometry_has_no_motion():
     w = process_walk(bare)
     assert w.motion.kind == "odometry" and w.motion.n == 0
     assert "without odom" in w.meta["warning"]
+
+
+def test_robot_vertical_offset_from_expected_total_field():
+    """A bare robot magnetometer with a known vertical hard-iron offset
+    (55 µT, the construction's truth), turning about z only: without help
+    the vertical offset is not identifiable; with the expected total field
+    (e.g. fingerprint.geomag's IGRF total at the site) process_walk fits it
+    so that the median |B| matches, and says so."""
+    log, rot, _ = _robot_log(offset=(30.0, -80.0, 55.0))
+    total = float(np.linalg.norm(B_ENU))
+    plain = process_walk(log)
+    assert plain.meta["calibration"]["vertical_offset_from"] == "none"
+    assert abs(np.median(plain.mag_earth_ut[:, 2]) - B_ENU[2]) > 40  # 55 µT of offset left in
+    w = process_walk(log, expected_total_ut=total)
+    cal = w.meta["calibration"]
+    assert cal["vertical_offset_from"] == "total" and "expected total field" in cal["message"]
+    np.testing.assert_allclose(cal["offset_ut"], [30.0, -80.0, 55.0], atol=0.7)
+    assert np.median(np.linalg.norm(w.mag_earth_ut, axis=1)) == pytest.approx(total, abs=0.01)
+    np.testing.assert_allclose(np.median(w.mag_earth_ut, axis=0), B_ENU, atol=1.0)
+    # the same through the settings
+    from fingerprint.pipeline import PipelineSettings
+
+    w2 = process_walk(log, settings=PipelineSettings(expected_total_ut=total))
+    np.testing.assert_allclose(w2.mag_earth_ut, w.mag_earth_ut)
+
+
+def test_expected_total_from_geomag_background(tmp_path):
+    """The site's IGRF total (fingerprint.geomag, ppigrf) as the expected
+    field: a robot log synthesised in that background field gets its
+    vertical offset back."""
+    from fingerprint.geomag import background_field
+
+    geo = background_field(48.0, 11.0, "2024-06-01")  # an invented mid-latitude site
+    b = np.array([0.0, geo.horizontal_ut, geo.up_ut])  # magnetic ENU
+    rng = np.random.default_rng(5)
+    n = 3000
+    t = np.arange(n) / 50.0
+    yaw = 0.3 * t
+    rot = Rotation.from_rotvec(np.column_stack([np.zeros(n), np.zeros(n), yaw]))
+    log = WalkLog(t=t, acc=rot.inv().apply([0, 0, GRAVITY_M_S2]) + rng.normal(0, 0.03, (n, 3)),
+                  gyro=np.tile([0, 0, 0.3], (n, 1)) + rng.normal(0, 0.003, (n, 3)),
+                  mag=rot.inv().apply(b) + [12.0, 40.0, -70.0] + rng.normal(0, 0.3, (n, 3)),
+                  meta={"platform": "robot", "magnetometer_calibrated": "no"})
+    w = process_walk(log, expected_total_ut=geo.total_ut)
+    np.testing.assert_allclose(w.meta["calibration"]["offset_ut"], [12.0, 40.0, -70.0], atol=0.7)

@@ -435,8 +435,7 @@ def test_chain_recovers_path_length_and_heading_change(floors, models):
     # handheld logs: path length within 5 % (Weinberg K fitted with the
     # chain's own fit_step_constant on another walk of the same person) and
     # heading change over the walk within 5°.
-    from fingerprint.attitude import AttitudeSettings
-    from fingerprint.pipeline import PipelineSettings, process_walk
+    from fingerprint.pipeline import process_walk
     from fingerprint.steps import fit_step_constant
 
     plan, free, graph = floors["G"]
@@ -454,11 +453,12 @@ def test_chain_recovers_path_length_and_heading_change(floors, models):
 
         cps = checkpoints_from_truth(truth.t, truth.xy, route_markers(graph), floor="G")
         walks.append((log, truth, traj, cps))
-    # heading change is a gyro quantity: the magnetometer correction is off
-    # here, since indoor anomalies and the phone's residual offset of a few
-    # µT pull a magnetic heading by several degrees
-    gyro_only = PipelineSettings(attitude=AttitudeSettings(mag_time_constant_s=float("inf")))
-    processed = [process_walk(log, settings=gyro_only) for log, *_ in walks]
+    # the default chain: heading change comes from the gyro, the
+    # magnetometer only sets one constant offset per walk (see
+    # fingerprint.attitude), so indoor anomalies cannot bend it
+    processed = [process_walk(log) for log, *_ in walks]
+    assert all(pw.meta["attitude"]["heading_reference"].startswith("magnetometer, one constant offset")
+               for pw in processed)
     k, _ = fit_step_constant([(processed[0].motion, walks[0][3], processed[0].meta["step_constant"])])
     for (log, truth, traj, cps), pw in list(zip(walks, processed))[1:]:
         length = pw.motion.length_m.sum() * k / pw.meta["step_constant"]

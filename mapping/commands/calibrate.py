@@ -15,6 +15,13 @@ def add_arguments(parser):
     parser.add_argument("--field-up-ut", type=float, metavar="BUP",
                         help="expected vertical field in µT (up positive, so negative in the northern "
                              "hemisphere); fixes the vertical offset when the log only turns about the vertical")
+    parser.add_argument("--field-total-ut", type=float, metavar="B",
+                        help="expected total field in µT; when the log only turns about the vertical and "
+                             "--field-up-ut is not given, the vertical offset is set so that the median |B| "
+                             "matches it (vertical field taken as downwards unless --field-up-sign +1)")
+    parser.add_argument("--field-up-sign", type=float, choices=[-1.0, 1.0], default=-1.0,
+                        help="sign of the vertical field with --field-total-ut: -1 north of the magnetic "
+                             "equator (default), +1 south")
     parser.add_argument("--field-ut", type=float, metavar="B",
                         help="true field magnitude at the site in µT (sets the matrix scale); "
                              "default keeps det(matrix) = 1")
@@ -38,7 +45,8 @@ def run(args):
     if args.field_ut is not None and not (np.isfinite(args.field_ut) and args.field_ut > 0):
         raise ConfigError(f"--field-ut must be a positive number of µT, got {args.field_ut}")
     up = up_directions(log.t, log.acc) if log.n >= 16 else None
-    cal, rep = fit_calibration(data, field_ut=args.field_ut, source=src, up_device=up, field_up_ut=args.field_up_ut)
+    cal, rep = fit_calibration(data, field_ut=args.field_ut, source=src, up_device=up, field_up_ut=args.field_up_ut,
+                               field_total_ut=args.field_total_ut, field_up_sign=args.field_up_sign)
     cal.meta["log"] = str(args.log)
     cal.save(args.out)
     o = rep["offset_ut"]
