@@ -203,23 +203,39 @@ def plot_error_cdf(errors_by_method, *, title="Error at checkpoints", xmax_m=Non
     return fig
 
 
-def _draw_plan(ax, fmap):
-    ex = fmap.extent
+def _draw_plan(ax, fmap, box=None):
+    """Free space (raster) and graph edges, cropped to ``box`` =
+    (xmin, xmax, ymin, ymax) when given (drawing only what is seen)."""
+    from matplotlib.collections import LineCollection
+
     r = fmap.resolution_m
-    ax.imshow(
-        np.where(fmap.free, 1.0, 0.0),
-        origin="lower",
-        extent=(ex[0] - r / 2, ex[1] + r / 2, ex[2] - r / 2, ex[3] + r / 2),
-        cmap="Greys_r",
-        vmin=-0.4,
-        vmax=1.0,
-        interpolation="nearest",
-    )
+    ny, nx = fmap.free.shape
+    x0, y0 = fmap.origin_xy
+    if box is None:
+        i0, i1, j0, j1 = 0, nx, 0, ny
+    else:
+        i0 = int(np.clip(np.floor((box[0] - x0) / r), 0, nx))
+        i1 = int(np.clip(np.ceil((box[1] - x0) / r) + 1, 0, nx))
+        j0 = int(np.clip(np.floor((box[2] - y0) / r), 0, ny))
+        j1 = int(np.clip(np.ceil((box[3] - y0) / r) + 1, 0, ny))
+    if i1 > i0 and j1 > j0:
+        ax.imshow(
+            np.where(fmap.free[j0:j1, i0:i1], 1.0, 0.0),
+            origin="lower",
+            extent=(x0 + (i0 - 0.5) * r, x0 + (i1 - 0.5) * r, y0 + (j0 - 0.5) * r, y0 + (j1 - 0.5) * r),
+            cmap="Greys_r",
+            vmin=-0.4,
+            vmax=1.0,
+            interpolation="nearest",
+        )
     g = fmap.graph
     if g.n_edges:
-        from matplotlib.collections import LineCollection
-
         seg = np.stack([g.nodes_xy[g.edges[:, 0]], g.nodes_xy[g.edges[:, 1]]], axis=1)
+        if box is not None:
+            mid = seg.mean(axis=1)
+            keep = (mid[:, 0] >= box[0] - 2) & (mid[:, 0] <= box[1] + 2) & (mid[:, 1] >= box[2] - 2) & (
+                mid[:, 1] <= box[3] + 2)
+            seg = seg[keep]
         ax.add_collection(LineCollection(seg, colors="#9ab", linewidths=0.3))
 
 
@@ -248,27 +264,29 @@ def plot_tracks(fmap, walks, *, ncols=3, max_panels=12, title=None):
         fig = _new_figure((4.0 * ncols, 3.6 * nrows))
         for i, w in enumerate(chunk):
             ax = fig.add_subplot(nrows, ncols, i + 1)
-            _draw_plan(ax, fmap)
             cps = w["checkpoints"]
-            pts = [cps.xy, w["track"].xy]
-            if w.get("truth") is not None:
-                ax.plot(w["truth"].xy[:, 0], w["truth"].xy[:, 1], color="#2a2", lw=1.0, label="true path")
-                pts.append(w["truth"].xy)
-            if w.get("baseline") is not None:
-                b = w["baseline"]
-                ax.plot(b.xy[:, 0], b.xy[:, 1], color="#c80", lw=0.9, ls="--", label=w.get("baseline_label", "dead reckoning"))
-            ax.plot(w["track"].xy[:, 0], w["track"].xy[:, 1], color="#16c", lw=1.2, label="estimate")
-            ax.plot(cps.xy[:, 0], cps.xy[:, 1], "o", ms=4, mfc="none", mec="#d11", label="checkpoints")
-            est = w["track"].at(cps.t)
-            for a, b in zip(cps.xy, est):
-                ax.plot([a[0], b[0]], [a[1], b[1]], color="#d11", lw=0.6)
+            pts = [cps.xy, w["track"].xy] + ([w["truth"].xy] if w.get("truth") is not None else [])
             allp = np.vstack(pts)
             lo = np.nanmin(allp, axis=0) - 4.0
             hi = np.nanmax(allp, axis=0) + 4.0
             span = max(hi[0] - lo[0], hi[1] - lo[1])
             mid = (lo + hi) / 2
-            ax.set_xlim(mid[0] - span / 2, mid[0] + span / 2)
-            ax.set_ylim(mid[1] - span / 2, mid[1] + span / 2)
+            box = (mid[0] - span / 2, mid[0] + span / 2, mid[1] - span / 2, mid[1] + span / 2)
+            _draw_plan(ax, fmap, box)
+            if w.get("truth") is not None:
+                ax.plot(w["truth"].xy[:, 0], w["truth"].xy[:, 1], color="#2a2", lw=1.0, label="true path")
+            if w.get("baseline") is not None:
+                b = w["baseline"]
+                ax.plot(b.xy[:, 0], b.xy[:, 1], color="#c80", lw=0.9, ls="--",
+                        label=w.get("baseline_label", "dead reckoning"))
+            ax.plot(w["track"].xy[:, 0], w["track"].xy[:, 1], color="#16c", lw=1.2, label="estimate")
+            ax.plot(cps.xy[:, 0], cps.xy[:, 1], "o", ms=4, mfc="none", mec="#d11", label="checkpoints")
+            est = w["track"].at(cps.t)
+            from matplotlib.collections import LineCollection
+
+            ax.add_collection(LineCollection(np.stack([cps.xy, est], axis=1), colors="#d11", linewidths=0.6))
+            ax.set_xlim(box[0], box[1])
+            ax.set_ylim(box[2], box[3])
             ax.set_aspect("equal")
             label = w["name"]
             if w.get("errors_m") is not None and np.size(w["errors_m"]):
