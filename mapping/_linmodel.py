@@ -32,6 +32,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
+import scipy.linalg.blas
 import scipy.linalg.lapack
 import scipy.sparse
 
@@ -89,6 +90,13 @@ class SufficientStats:
             np.zeros(3, dtype=np.int64),
         )
 
+    def __add__(self, other):
+        return SufficientStats(
+            self.n_field, self.n_walks, self.noise_group, self.gff + other.gff, self.bf + other.bf,
+            self.gfo + other.gfo, self.goo + other.goo, self.bo + other.bo, self.yy + other.yy, self.n + other.n,
+            self.blocks,
+        )
+
     def __sub__(self, other):
         return SufficientStats(
             self.n_field,
@@ -138,6 +146,7 @@ def accumulate(design, idx, xy, b, *, groups=None, rotations=None, n_walks=0, no
     st = SufficientStats.zeros(n_field, w, noise_group)
     st.blocks = blocks
     n = xy.shape[0]
+    local = [np.zeros((len(ix), len(ix)), order="F") for ix in idx]
     for s in range(0, n, chunk):
         sl = slice(s, min(s + chunk, n))
         feats = design(xy[sl])
@@ -151,7 +160,9 @@ def accumulate(design, idx, xy, b, *, groups=None, rotations=None, n_walks=0, no
             ix = idx[c]
             g = int(st.noise_group[c])
             y = b[sl, c]
-            st.gff[g][np.ix_(ix, ix)] += f.T @ f
+            # upper triangle only (BLAS syrk, half the work of f.T @ f),
+            # accumulated per component and embedded once at the end
+            local[c] = scipy.linalg.blas.dsyrk(1.0, f.T, trans=0, lower=0, c=local[c], beta=1.0, overwrite_c=1)
             st.bf[g, ix] += f.T @ y
             st.yy[c] += float(y @ y)
             st.n[c] += m
@@ -161,6 +172,11 @@ def accumulate(design, idx, xy, b, *, groups=None, rotations=None, n_walks=0, no
                     st.gfo[g][ix, :, k] += (onehot.multiply(r[:, k][None, :]).tocsr() @ f).T
                 st.goo[g] += np.asarray(onehot @ (r[:, :, None] * r[:, None, :]).reshape(m, 9)).reshape(w, 3, 3)
                 st.bo[g] += np.asarray(onehot @ (r * y[:, None]))
+    for c in range(3):
+        # ``idx[c]`` is increasing, so the local upper triangle is global upper
+        st.gff[int(st.noise_group[c])][np.ix_(idx[c], idx[c])] += np.triu(local[c])
+    for g in range(st.n_groups):
+        st.gff[g] = np.triu(st.gff[g]) + np.triu(st.gff[g], 1).T
     return st
 
 
@@ -201,11 +217,12 @@ class _Factor:
         n = s.shape[0]
         parts = None
         if blocks is not None and len(blocks) > 1:
-            mask = np.zeros((n, n), dtype=bool)
-            for b in blocks:
-                mask[np.ix_(b, b)] = True
-            if not np.any(s[~mask]):
-                parts = [np.asarray(b, dtype=np.int64) for b in blocks]
+            bl = [np.asarray(b, dtype=np.int64) for b in blocks]
+            covered = sum(b.size for b in bl) == n
+            if covered and not any(
+                np.any(s[np.ix_(bl[i], bl[j])]) for i in range(len(bl)) for j in range(i + 1, len(bl))
+            ):
+                parts = bl
         self.n = n
         self.parts = parts if parts is not None else [np.arange(n)]
         self.chols = [scipy.linalg.cho_factor(s[np.ix_(b, b)], lower=True, check_finite=False) for b in self.parts]

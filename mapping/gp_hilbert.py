@@ -135,25 +135,32 @@ class BoxBasis:
         }
 
     # -- evaluation --------------------------------------------------------
-    def _phase(self, xy):
+    def _trig(self, xy):
+        """sin and cos of the phases along x and y for the mode numbers in
+        use, gathered per basis function: four (N, m) arrays. Evaluated per
+        distinct mode number (a few dozen) and gathered, which is much
+        cheaper than one sin per basis function."""
         xy = np.asarray(xy, float).reshape(-1, 2)
-        ux = (xy[:, 0:1] - self.centre_xy[0] + self.half_width_m[0]) * self.omega_x[None, :]
-        uy = (xy[:, 1:2] - self.centre_xy[1] + self.half_width_m[1]) * self.omega_y[None, :]
-        return ux, uy
+        ux_modes, ix = np.unique(self.jx, return_inverse=True)
+        uy_modes, iy = np.unique(self.jy, return_inverse=True)
+        wx = np.pi * ux_modes / (2 * self.half_width_m[0])
+        wy = np.pi * uy_modes / (2 * self.half_width_m[1])
+        px = (xy[:, 0:1] - self.centre_xy[0] + self.half_width_m[0]) * wx[None, :]
+        py = (xy[:, 1:2] - self.centre_xy[1] + self.half_width_m[1]) * wy[None, :]
+        return np.sin(px)[:, ix], np.cos(px)[:, ix], np.sin(py)[:, iy], np.cos(py)[:, iy]
 
     def values(self, xy):
         """``phi_j(x)`` at points (N, 2) -> (N, m)."""
-        ux, uy = self._phase(xy)
-        return np.sin(ux) * np.sin(uy) / np.sqrt(self.half_width_m.prod())
+        sx, _, sy, _ = self._trig(xy)
+        return sx * sy / np.sqrt(self.half_width_m.prod())
 
     def gradients(self, xy):
         """``(d phi_j / dx, d phi_j / dy)`` at points (N, 2) -> two (N, m)
         arrays, 1/m."""
-        ux, uy = self._phase(xy)
+        sx, cx, sy, cy = self._trig(xy)
         s = 1.0 / np.sqrt(self.half_width_m.prod())
-        sx, sy = np.sin(ux), np.sin(uy)
-        dx = (s * self.omega_x)[None, :] * np.cos(ux) * sy
-        dy = (s * self.omega_y)[None, :] * sx * np.cos(uy)
+        dx = (s * self.omega_x)[None, :] * cx * sy
+        dy = (s * self.omega_y)[None, :] * sx * cy
         return dx, dy
 
     def factors(self, xs, ys):

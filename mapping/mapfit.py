@@ -33,6 +33,18 @@ Registry :data:`MAP_KERNELS` (name -> class):
 ``"constant"``
     Per-component mean; variance is the sample variance.
 
+Large floors (the reduced-rank GPs): one box of ``n_basis`` eigenfunctions
+resolves length scales down to about ``3 / omega_max``, which grows with the
+box. With ``tiles="auto"`` (default) a floor whose single box could not
+resolve what tiles of ``tile_m`` metres (plus ``tile_overlap_m`` each side,
+``tile_basis`` functions each) can is split into overlapping tiles: each
+tile is its own reduced-rank GP with its own constant and walk offsets, the
+hyperparameters are shared and fitted on the sum of the tiles' log
+marginal likelihoods, and predictions are blended with smooth weights over
+the overlaps (mixture mean and variance). Inside a tile the field stays
+exactly curl-free; in an overlap it is a weighted sum of two curl-free
+fields, curl-free only up to the blend's gradient.
+
 Estimator contract (scikit-learn style): ``__init__`` only stores
 parameters; ``fit(xy (N, 2), b (N, 3), *, groups=None, rotations=None)``
 validates, sets attributes ending in ``_`` and returns ``self``;
@@ -244,9 +256,16 @@ class _ReducedRankGP(_Fitted):
         n_walks = len(names)
         use_offsets = codes is not None
         self.fallback_mean_ = b.mean(axis=0)
+        fold = None
+        if use_offsets and self.between_walk and n_walks >= 2:
+            rng = np.random.default_rng(self.seed)
+            k = int(min(max(int(self.n_folds), 2), n_walks))
+            fold_of_walk = np.empty(n_walks, dtype=np.int64)
+            fold_of_walk[rng.permutation(n_walks)] = np.arange(n_walks) % k
+            fold = fold_of_walk[codes]
         parts = []
         if boxes is None:
-            self._setup_part(basis, xy, b, codes, rotations, n_walks, np.ones(n, dtype=bool), None)
+            self._setup_part(basis, xy, b, codes, rotations, n_walks, np.ones(n, dtype=bool), None, fold)
             parts.append(self)
         else:
             for elo, ehi in boxes:
@@ -256,7 +275,7 @@ class _ReducedRankGP(_Fitted):
                 sub = type(self)(**{k: getattr(self, k) for k in self._param_names})
                 sub.tiles = "never"
                 tb = BoxBasis.covering(elo, ehi, margin_m=float(self.margin_m), n_basis=int(self.tile_basis))
-                sub._setup_part(tb, xy, b, codes, rotations, n_walks, sel, (elo, ehi))
+                sub._setup_part(tb, xy, b, codes, rotations, n_walks, sel, (elo, ehi), fold)
                 parts.append(sub)
             if not parts:
                 raise DataError("no map tile holds enough survey samples (need 20 in at least one)")
@@ -287,27 +306,42 @@ class _ReducedRankGP(_Fitted):
         self.calibration_ = {}
         if use_offsets and self.between_walk and n_walks >= 2:
             with threadpool_limits(limits=1, user_api="blas"):
-                self._fit_between_walk(parts, xy, b, codes, rotations, n_walks, hyper)
+                self._fit_between_walk(parts, xy, b, fold, hyper)
         for p in parts:
             p.n_samples_ = int(p.sel_.sum())
         self.n_samples_ = n
         return self
 
-    def _setup_part(self, basis, xy, b, codes, rotations, n_walks, sel, box):
+    def _setup_part(self, basis, xy, b, codes, rotations, n_walks, sel, box, fold=None):
         """Basis, layout and sufficient statistics of one box (the whole
-        domain, or one tile: samples ``sel``, box ``(lo, hi)``)."""
+        domain, or one tile: samples ``sel``, box ``(lo, hi)``); with
+        ``fold`` (N,) the statistics of each fold, summed for the total."""
         self.basis_ = basis
         self.n_field_, self.idx_ = self._layout(basis.n)
         self.sel_ = sel
         self.box_ = box
         g = None if codes is None else codes[sel]
         self.walk_codes_ = None if g is None else np.unique(g)
-        local = None if g is None else np.searchsorted(self.walk_codes_, g)
-        self.stats_ = _linmodel.accumulate(
-            lambda q: self._design(basis, q), self.idx_, xy[sel], b[sel], groups=local,
-            rotations=None if rotations is None else rotations[sel],
-            n_walks=0 if g is None else self.walk_codes_.size, chunk=int(self.chunk), blocks=self._blocks(basis.n),
-        )
+        local_all = None if codes is None else np.searchsorted(self.walk_codes_, np.where(sel, codes, codes[sel][0]))
+
+        def stats_of(mask):
+            return _linmodel.accumulate(
+                lambda q: self._design(basis, q), self.idx_, xy[mask], b[mask],
+                groups=None if codes is None else local_all[mask],
+                rotations=None if rotations is None else rotations[mask],
+                n_walks=0 if codes is None else self.walk_codes_.size, chunk=int(self.chunk),
+                blocks=self._blocks(basis.n),
+            )
+
+        if fold is None:
+            self.fold_stats_ = None
+            self.stats_ = stats_of(sel)
+        else:
+            self.fold_stats_ = [stats_of(sel & (fold == f)) for f in range(int(fold.max()) + 1)]
+            total = self.fold_stats_[0]
+            for st in self.fold_stats_[1:]:
+                total = total + st
+            self.stats_ = total
 
     def _tile_boxes(self, lo, hi, basis):
         """Extended tile boxes [(lo, hi), ...], or None for one box. "auto"
@@ -466,28 +500,19 @@ class _ReducedRankGP(_Fitted):
             "length_scale_bounds_m": [float(lo_l), float(hi_l)],
         }
 
-    def _fit_between_walk(self, parts, xy, b, codes, rotations, n_walks, hyper):
+    def _fit_between_walk(self, parts, xy, b, fold, hyper):
         """Between-walk variance from group k-fold predictions (see module
         docstring)."""
-        rng = np.random.default_rng(self.seed)
-        k = int(min(max(int(self.n_folds), 2), n_walks))
-        fold_of_walk = np.empty(n_walks, dtype=np.int64)
-        fold_of_walk[rng.permutation(n_walks)] = np.arange(n_walks) % k
-        fold = fold_of_walk[codes]
+        k = int(fold.max()) + 1
         noise = self._noise(hyper)
         res, var = [], []
         for f in range(k):
             sel = fold == f
             posts = []
             for p in parts:
-                ps = p.sel_ & sel
-                local = np.searchsorted(p.walk_codes_, codes[ps])
-                held = _linmodel.accumulate(
-                    lambda q, p=p: p._design(p.basis_, q), p.idx_, xy[ps], b[ps], groups=local,
-                    rotations=None if rotations is None else rotations[ps], n_walks=p.walk_codes_.size,
-                    chunk=int(self.chunk), blocks=p.stats_.blocks,
+                post = _linmodel.posterior(
+                    p.stats_ - p.fold_stats_[f], p._prior_var(hyper), noise, hyper["offset_ut"] ** 2
                 )
-                post = _linmodel.posterior(p.stats_ - held, p._prior_var(hyper), noise, hyper["offset_ut"] ** 2)
                 posts.append((post.mean_f, post.cov_f))
             mean, latent = self._blend_points(xy[sel], posts)
             res.append(b[sel] - mean)
