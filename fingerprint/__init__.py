@@ -7,6 +7,8 @@ from .errors import ConfigError, ConvergenceError, DataError, FormatError, Lodem
 from .fieldmap import COMPONENTS, FieldMap
 from .floorgraph import FloorGraph
 from .records import Checkpoints, Motion, ProcessedWalk, Track, WalkLog
+from .logio import read_checkpoints, read_track, read_walk_log
+from .pipeline import process_walk
 
 __all__ = [
     "LodemapError",
@@ -23,4 +25,8 @@ __all__ = [
     "Track",
     "Motion",
     "ProcessedWalk",
+    "read_walk_log",
+    "read_checkpoints",
+    "read_track",
+    "process_walk",
 ]

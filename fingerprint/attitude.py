@@ -168,6 +168,8 @@ class Attitude:
     up_device : (N, 3) unit up direction in the device frame
     gyro_bias : (3,) rad/s
     meta : dict
+    mag_earth_ut : (N, 3) µT or None, the magnetometer readings rotated to
+        the earth frame by ``quat`` (complementary method with a magnetometer)
     """
 
     quat: np.ndarray
@@ -175,6 +177,14 @@ class Attitude:
     up_device: np.ndarray
     gyro_bias: np.ndarray
     meta: dict = field(default_factory=dict)
+    mag_earth_ut: np.ndarray | None = None
+
+
+def row_norm(x):
+    """Euclidean norm of each row of an (N, k) array -> (N,) (the same as
+    ``np.linalg.norm(x, axis=1)``, faster for short rows)."""
+    x = np.asarray(x, float)
+    return np.sqrt(np.einsum("ij,ij->i", x, x))
 
 
 def _rolling_sd(x, w):
@@ -203,8 +213,8 @@ def gyro_bias(t, acc, gyro, *, settings=None, still_hint=None):
         return np.zeros(3), np.zeros(t.size, bool)
     dt = float(np.median(np.diff(t)))
     w = max(3, int(round(s.still_window_s / dt)))
-    an = np.linalg.norm(acc, axis=1)
-    gn = np.linalg.norm(gyro, axis=1)
+    an = row_norm(acc)
+    gn = row_norm(gyro)
     still = (
         (_rolling_sd(an, w) < s.still_acc_sd)
         & (np.abs(uniform_filter1d(an, w, mode="nearest") - GRAVITY_M_S2) < 0.5)
@@ -224,9 +234,12 @@ def tilt_quat(up_device):
     half-way quaternion; common practice, no source). Upside-down samples
     (u = -z) get a half turn about x."""
     u = np.asarray(up_device, float)
-    u = u / np.linalg.norm(u, axis=1, keepdims=True)
-    q = np.column_stack([u[:, 1], -u[:, 0], np.zeros(len(u)), 1.0 + u[:, 2]])
-    nq = np.linalg.norm(q, axis=1)
+    u = u / row_norm(u)[:, None]
+    q = np.zeros((len(u), 4))
+    q[:, 0] = u[:, 1]
+    q[:, 1] = -u[:, 0]
+    q[:, 3] = 1.0 + u[:, 2]
+    nq = row_norm(q)
     bad = nq < 1e-9
     q[bad] = [1.0, 0.0, 0.0, 0.0]
     nq[bad] = 1.0
@@ -315,7 +328,7 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None, st
         g = _lowpass(acc - _cross(w, v), fs, s.tilt_cutoff_hz)
     else:
         g = _lowpass(acc, fs, s.tilt_cutoff_hz)
-    gn = np.linalg.norm(g, axis=1)
+    gn = row_norm(g)
     if np.any(gn <= 1e-6):
         raise DataError("accelerometer gives no gravity direction (zero low-passed acceleration)")
     up = g / gn[:, None]
@@ -324,14 +337,20 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None, st
     # yaw rate about earth up; minus the twist of the tilt rotation itself:
     # the z part of the rotation vector of qt[k+1] * qt[k]^-1
     w_up = np.einsum("ij,ij->i", w, up)
-    a, b = qt[1:], qt[:-1] * [-1.0, -1.0, -1.0, 1.0]
-    rv = a[:, 3:4] * b[:, :3] + b[:, 3:4] * a[:, :3] + _cross(a[:, :3], b[:, :3])
-    rw = a[:, 3] * b[:, 3] - np.einsum("ij,ij->i", a[:, :3], b[:, :3])
-    sgn = np.where(rw < 0, -1.0, 1.0)
-    vn = np.linalg.norm(rv, axis=1)
+    # tilt quaternions have no z part: with a = qt[k+1] = (ax, ay, 0, aw)
+    # and b = qt[k]^-1 = (-bx, -by, 0, bw), the product a * b has vector
+    # part (aw*(-bx) + bw*ax, aw*(-by) + bw*ay, ax*(-by) - ay*(-bx))
+    qx, qy, qw_ = np.ascontiguousarray(qt[:, 0]), np.ascontiguousarray(qt[:, 1]), np.ascontiguousarray(qt[:, 3])
+    ax_, ay_, aw_ = qx[1:], qy[1:], qw_[1:]
+    bx_, by_, bw_ = qx[:-1], qy[:-1], qw_[:-1]
+    rvx = bw_ * ax_ - aw_ * bx_
+    rvy = bw_ * ay_ - aw_ * by_
+    rvz = ay_ * bx_ - ax_ * by_
+    rw = aw_ * bw_ + ax_ * bx_ + ay_ * by_
+    vn = np.sqrt(rvx * rvx + rvy * rvy + rvz * rvz)
     ang = 2.0 * np.arctan2(vn, np.abs(rw))
     scale = np.where(vn > 1e-15, ang / np.where(vn > 1e-15, vn, 1.0), 2.0)
-    twist = sgn * rv[:, 2] * scale
+    twist = np.where(rw < 0, -rvz, rvz) * scale
     dpsi = 0.5 * (w_up[1:] + w_up[:-1]) * dt - twist
     # across a gap in the log the gyro saw nothing: the turn over the gap is
     # taken from the magnetometer azimuths just before and after it (zero
@@ -344,9 +363,8 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None, st
     corr = np.zeros(n)
     if mag is not None:
         mag = np.asarray(mag, float)
-        mL = quat_rotate(qt, mag)
-        alpha = np.arctan2(mL[:, 1], mL[:, 0])
-        psi_m = np.pi / 2 - alpha
+        mLx, mLy, mLz = _tilt_apply(qx, qy, qw_, mag[:, 0], mag[:, 1], mag[:, 2])
+        psi_m = np.pi / 2 - np.arctan2(mLy, mLx)
         if gaps.size:
             nw = max(1, int(round(fs)))
             d0 = np.exp(1j * (psi_m - psi_g))  # gyro-relative azimuth, gap turn = 0
@@ -357,9 +375,9 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None, st
             psi_g = np.concatenate([[0.0], np.cumsum(dpsi)])
         d = psi_m - psi_g
         # weights: magnitude and dip far from the walk median = disturbed
-        bm = np.linalg.norm(mag, axis=1)
-        bh = np.hypot(mL[:, 0], mL[:, 1])
-        bu = mL[:, 2]
+        bm = np.sqrt(mLx * mLx + mLy * mLy + mLz * mLz)
+        bh = np.hypot(mLx, mLy)
+        bu = mLz
         wgt = np.exp(
             -0.5 * (((bm - np.median(bm)) / s.disturbance_ut) ** 2 + ((bu - np.median(bu)) / s.disturbance_ut) ** 2)
         ) * (bh > 1.0)
@@ -401,13 +419,40 @@ def estimate_attitude(t, acc, gyro, mag, *, forward_axis=None, settings=None, st
     else:
         meta["heading_reference"] = "none (relative heading)"
     psi = psi_g + corr
-    # quaternion of Rz(psi) * tilt, in closed form
-    sh, ch = np.sin(psi / 2)[:, None], np.cos(psi / 2)[:, None]
-    x, y, z, qw = qt[:, 0:1], qt[:, 1:2], qt[:, 2:3], qt[:, 3:4]
-    quat = np.hstack([ch * x - sh * y, ch * y + sh * x, ch * z + sh * qw, ch * qw - sh * z])
-    fL = quat_rotate(qt, fwd)
-    heading = np.angle(np.exp(1j * (psi + np.arctan2(fL[:, 1], fL[:, 0]))))
-    return Attitude(quat=quat, heading_rad=heading, up_device=up, gyro_bias=bias, meta=meta)
+    # quaternion of Rz(psi) * tilt, in closed form (tilt has no z part)
+    sh, ch = np.sin(psi / 2), np.cos(psi / 2)
+    quat = np.empty((n, 4))
+    quat[:, 0] = ch * qx - sh * qy
+    quat[:, 1] = ch * qy + sh * qx
+    quat[:, 2] = sh * qw_
+    quat[:, 3] = ch * qw_
+    fLx, fLy, _ = _tilt_apply(qx, qy, qw_, *fwd)
+    heading = _wrap(psi + np.arctan2(fLy, fLx))
+    mag_earth = None
+    if mag is not None:
+        # Rz(psi) applied to the levelled field: cos psi = ch² - sh², sin psi = 2 sh ch
+        cp, sp = ch * ch - sh * sh, 2.0 * sh * ch
+        mag_earth = np.empty((n, 3))
+        mag_earth[:, 0] = cp * mLx - sp * mLy
+        mag_earth[:, 1] = sp * mLx + cp * mLy
+        mag_earth[:, 2] = mLz
+    return Attitude(quat=quat, heading_rad=heading, up_device=up, gyro_bias=bias, meta=meta, mag_earth_ut=mag_earth)
+
+
+def _wrap(a):
+    """Angles to [-pi, pi)."""
+    return np.mod(a + np.pi, 2.0 * np.pi) - np.pi
+
+
+def _tilt_apply(qx, qy, qw, vx, vy, vz):
+    """Rotate vectors (components, (N,) or scalars) by tilt quaternions
+    ``(qx, qy, 0, qw)`` ((N,) each): ``v + w t + qv x t`` with
+    ``t = 2 qv x v`` (the formula of :func:`quat_rotate` with qz = 0).
+    Returns the three components."""
+    tx = 2.0 * (qy * vz)
+    ty = -2.0 * (qx * vz)
+    tz = 2.0 * (qx * vy - qy * vx)
+    return vx + qw * tx + qy * tz, vy + qw * ty - qx * tz, vz + qw * tz + (qx * ty - qy * tx)
 
 
 def _robust_offset(d, wgt, *, passes, scale_rad, n_bins=72):
@@ -425,7 +470,7 @@ def _robust_offset(d, wgt, *, passes, scale_rad, n_bins=72):
     for _ in range(passes):
         cos_res = cd * np.cos(c) + sd * np.sin(c)
         w_it = wgt * np.exp((cos_res - 1.0) / scale_rad**2)
-        c = float(np.arctan2(np.dot(w_it, sd), np.dot(w_it, cd)))
+        c = float(np.arctan2((w_it * sd).sum(), (w_it * cd).sum()))
     tot = float(wgt.sum())
     return c, {"heading_offset_rad": c, "heading_offset_inlier_share": float(w_it.sum() / tot) if tot > 0 else 0.0}
 

@@ -19,7 +19,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from .attitude import FORWARD_AXIS, AttitudeSettings, _lowpass, estimate_attitude, quat_rotate
+from .attitude import FORWARD_AXIS, AttitudeSettings, _lowpass, estimate_attitude, quat_rotate, row_norm
 from .calibration import Calibration, fit_calibration
 from .errors import ConvergenceError, DataError
 from .odometry import OdometrySettings, odometry_motion
@@ -118,7 +118,7 @@ def calibration_verdict(mag_ut, *, calibrated_flag):
 
     Returns dict with ``verdict`` (str), ``b_mean_ut``, ``b_sd_ut``, ``flag``.
     """
-    b = np.linalg.norm(mag_ut, axis=1)
+    b = row_norm(mag_ut)
     mean, sd = float(np.mean(b)), float(np.std(b))
     rel = sd / mean if mean > 0 else np.inf
     if not (20.0 <= mean <= 80.0):
@@ -266,7 +266,7 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         mag_earth = np.full((log.n, 3), np.nan)
         noise = float("nan")
     else:
-        mag_earth = quat_rotate(att.quat, mag)
+        mag_earth = att.mag_earth_ut if att.mag_earth_ut is not None else quat_rotate(att.quat, mag)
         noise = mag_noise_ut(mag)
         meta["calibration_verdict"] = calibration_verdict(mag, calibrated_flag=log.magnetometer_calibrated)
     meta["mag_noise_ut"] = noise

@@ -145,7 +145,7 @@ def detect_steps(t, acc, *, settings=None):
     if not np.isfinite(acc).all():
         raise DataError("step detection needs accelerometer samples without gaps (NaN); interpolate first")
     fs = 1.0 / float(np.median(np.diff(t)))
-    an = np.linalg.norm(acc, axis=1)
+    an = np.sqrt(np.einsum("ij,ij->i", acc, acc))
     x = _lowpass(an, fs, s.cutoff_hz)
     xa = x if s.amplitude_cutoff_hz == s.cutoff_hz else _lowpass(an, fs, s.amplitude_cutoff_hz)
     w = max(3, int(round(s.window_s * fs)))

@@ -55,17 +55,20 @@ def test_real_walk_matches_csv_module():
         "0,1,2\n0.5,3,4\n",
         "0,1e-3,-2.5E2\n1,  3,4\r\n2,5,6",
         "0,+1,.5\n1,-0,7.\n",
+        "0,1,\n1,,3\n,2,3",  # empty cells: NaN on both paths
+        "0.1234567890123456789,1e-320,1.7976931348623157e308\n",  # exact rounding, subnormal, max
     ],
 )
 def test_fast_path_equals_slow_scan(body):
-    """numpy fast path vs the exact scan (slow twin) on clean bodies."""
+    """pandas fast path vs the exact scan (slow twin, Python's float())."""
     fast = logio._fast_parse(body, 3)
     slow, _ = logio._slow_parse(body, 1, 3, "x", allow_empty_cols=[True] * 3, names=["a", "b", "c"])
     assert fast is not None
     np.testing.assert_array_equal(fast, slow)
 
 
-@pytest.mark.parametrize("body", ["0,1,\n1,2,3\n", "0,1,2\n\n1,2,3\n", "0,1,2,3\n1,2\n", "0,x,2\n"])
+@pytest.mark.parametrize("body", ["0,1,2\n\n1,2,3\n", "0,1,2,3\n1,2\n", "0,x,2\n", "0,nan,2\n", "0,NaN,2\n",
+                                  '0,"1",2\n', "0,1,2\n#x,1,2\n", "0,1e,2\n", "0,1,2\n1,2,3,"])
 def test_fast_path_declines_what_it_cannot_read(body):
     assert logio._fast_parse(body, 3) is None
 
@@ -189,3 +192,23 @@ def test_empty_cells_on_a_long_log(tmp_path):
     slow, _ = logio._slow_parse(body, fl, len(names), str(p), allow_empty_cols=[n != "t" for n in names], names=names)
     np.testing.assert_array_equal(np.isnan(slow[:, 7:10]), np.isnan(back.mag))
     np.testing.assert_array_equal(slow[:, 7:10][~np.isnan(slow[:, 7:10])], back.mag[~np.isnan(back.mag)])
+
+
+def test_brisk_real_walk_passes_the_accelerometer_unit_check(tmp_path):
+    """real_data/siteA/B1/walk_047 (vendored in tests/data/real/extra):
+    median |a| 6.7 m/s² on a real walk (gravity included; short and brisk),
+    so the sanity range must reach below it; the same log in g units (a
+    phone logging 0.9 g: median near 1) is still refused and named so."""
+    p = Path(__file__).parent / "data" / "real" / "extra" / "B1_walk_047.log.csv.gz"
+    log = read_walk_log(p)
+    med = float(np.median(np.linalg.norm(log.acc, axis=1)))
+    assert 6.5 < med < 6.9 and log.n == 383
+    from dataclasses import replace
+
+    from fingerprint.errors import DataError
+
+    g_units = replace(log, acc=log.acc / 9.80665 * 1.3)  # median ~0.9 g: a phone logging in g
+    q = tmp_path / "g_units.log.csv"
+    write_walk_log(q, g_units)
+    with pytest.raises(DataError, match="g units"):
+        read_walk_log(q)

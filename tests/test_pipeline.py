@@ -165,3 +165,14 @@ def test_expected_total_from_geomag_background(tmp_path):
                   meta={"platform": "robot", "magnetometer_calibrated": "no"})
     w = process_walk(log, expected_total_ut=geo.total_ut)
     np.testing.assert_allclose(w.meta["calibration"]["offset_ut"], [12.0, 40.0, -70.0], atol=0.7)
+
+
+def test_package_reexports_the_sensor_chain():
+    import fingerprint
+    from fingerprint import logio, pipeline
+
+    assert fingerprint.read_walk_log is logio.read_walk_log
+    assert fingerprint.read_checkpoints is logio.read_checkpoints
+    assert fingerprint.read_track is logio.read_track
+    assert fingerprint.process_walk is pipeline.process_walk
+    assert {"read_walk_log", "read_checkpoints", "read_track", "process_walk"} <= set(fingerprint.__all__)
