@@ -16,6 +16,7 @@ CONFIG.toml (paths relative to it):
   [data]
   walks = ["sim/G/test"]
   map = "G.map"            # or site = ..., floor = ..., survey = [...] to build maps
+  # split = "split.json"; use = "test"   # score one part of a split (maps: its survey part)
   [grid]
   n_particles = [500, 2000]
   field_temper = [0.1, 0.2]
