@@ -248,8 +248,13 @@ def _write_demo_report(path, site, pooled, track_imgs, summaries, timings, *, se
         if s.title == "Summary":
             s.body = head + "<h3>Tracking mode, all floors</h3>" + s.body
         if s.title == "Error CDF":
-            s.body = R.img_tag(cdf, "error CDF of all modes") + ('<p class="note">Global mode scores every '
-                                                                 "checkpoint, the others all but the first.</p>")
+            g = pooled["global"]
+            series = [(w.name, w.distance_m[w.main_result.scored], w.main_result.scored_errors_m) for w in g.walks]
+            conv = R.figure_to_base64(R.plot_error_vs_distance(
+                series, title="Global start: error along the walks (dashed: 3 m)"))
+            s.body = (R.img_tag(cdf, "error CDF of all modes") + ('<p class="note">Global mode scores every '
+                                                                  "checkpoint, the others all but the first.</p>")
+                      + R.img_tag(conv, "global mode: error against distance walked"))
         if s.title == "Per-walk results":
             g = pooled["global"]
             gc, gr = E.per_walk_rows(g)

@@ -598,7 +598,11 @@ def report_sections(ev, fmap, *, extra_cautions=(), tracks_body=None, extra_meth
     errs = {method_label(m): ev.pooled(m) for m in METHODS if any(m in w.results for w in ev.walks)}
     fig = R.plot_error_cdf(errs, title=f"Error at checkpoints ({ev.mode})")
     images["error_cdf.png"] = R.figure_to_base64(fig)
-    sections.append(R.Section("Error CDF", R.img_tag(images["error_cdf.png"], "error CDF")))
+    series = [(w.name, w.distance_m[w.main_result.scored], w.main_result.scored_errors_m) for w in ev.walks]
+    fig = R.plot_error_vs_distance(series, title=f"{method_label(main)}: error along the walks (dashed: 3 m)")
+    images["error_distance.png"] = R.figure_to_base64(fig)
+    sections.append(R.Section("Error CDF", R.img_tag(images["error_cdf.png"], "error CDF")
+                              + R.img_tag(images["error_distance.png"], "error against distance walked")))
 
     # tracks
     if tracks_body is not None:

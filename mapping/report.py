@@ -27,6 +27,7 @@ __all__ = [
     "write_report",
     "plot_error_cdf",
     "plot_tracks",
+    "plot_error_vs_distance",
     "save_figure",
     "save_png",
 ]
@@ -199,6 +200,43 @@ def plot_error_cdf(errors_by_method, *, title="Error at checkpoints", xmax_m=Non
     ax.set_title(title)
     ax.grid(alpha=0.3)
     ax.legend(loc="lower right", fontsize=8)
+    fig.tight_layout()
+    return fig
+
+
+def plot_error_vs_distance(series, *, title="Error along the walks", threshold_m=3.0):
+    """Error at each scored checkpoint against the distance walked, one line
+    per walk (shows how fast a global start converges, and where a tracked
+    walk is lost).
+
+    Parameters
+    ----------
+    series : list of (label, distance_m (C,), errors_m (C,))
+    threshold_m : float, the convergence threshold drawn as a line
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    fig = _new_figure((7.0, 4.2))
+    ax = fig.add_subplot(1, 1, 1)
+    top = 1.0
+    for label, d, e in series:
+        d = np.asarray(d, dtype=float)
+        e = np.asarray(e, dtype=float)
+        if e.size == 0:
+            continue
+        ax.plot(d, np.maximum(e, 0.01), marker=".", ms=3, lw=0.8, alpha=0.8, label=label)
+        top = max(top, float(np.nanmax(e)))
+    ax.axhline(threshold_m, color="k", lw=0.8, ls="--")
+    ax.set_yscale("log")
+    ax.set_ylim(0.05, top * 1.5)
+    ax.set_xlabel("distance walked (m)")
+    ax.set_ylabel("error at checkpoint (m, log scale)")
+    ax.set_title(title)
+    ax.grid(alpha=0.3, which="both")
+    if 0 < len(series) <= 12:
+        ax.legend(fontsize=6, ncol=2, loc="upper right")
     fig.tight_layout()
     return fig
 
