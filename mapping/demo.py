@@ -219,8 +219,10 @@ def _write_demo_report(path, site, pooled, track_imgs, summaries, timings, *, se
     s_all = summaries["tracking"]["all"]
     med, dr = s_all["median_error_m"], s_all["dead_reckoning_median_error_m"]
     if med is not None and dr is not None and med > 0:
+        rel = (f"{dr / med:.1f} times smaller" if dr >= med
+               else f"dead reckoning alone is {med / dr:.1f} times better on these walks")
         head += (f"<p>Tracking on all floors: median error {med:.2f} m against {dr:.2f} m for dead reckoning "
-                 f"alone ({dr / med:.1f} times smaller).</p>")
+                 f"alone ({rel}).</p>")
     secs, _ = E.report_sections(
         tr, None,
         tracks_body=E.TRACKS_NOTE + "".join(
