@@ -116,3 +116,11 @@ def fake_walk(*, heading_bias_rad=0.0, scale=1.0, noise_ut=0.3, speed=1.2, step=
     cps = Checkpoints(t=s_cp / speed, xy=cp_xy)
     truth = Track(t=t, xy=xy, heading_rad=hd_plan)
     return walk, cps, truth
+
+
+def slow_run(task):
+    """A sweep run that takes a while (for the kill-and-resume test)."""
+    import time
+
+    time.sleep(0.25)
+    return {"median_error_m": float(task["seed_index"]) + 0.5}

@@ -245,3 +245,39 @@ def test_perturb_walk_noise_settings():
     np.testing.assert_allclose(p.motion.length_m, 1.1 * walk.motion.length_m)
     assert p.mag_noise_ut == pytest.approx(2.0)
     assert perturb_walk(walk, {}, np.random.default_rng(0)) is walk
+
+
+def test_killed_sweep_subprocess_loses_nothing_finished(tmp_path):
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    tasks = make_tasks([{"n_particles": n} for n in range(1, 31)], ["a"], seeds=1, root_seed=2)
+    (tmp_path / "tasks.json").write_text(json.dumps(tasks))
+    runs = tmp_path / "runs"
+    code = (
+        "import json, sys; sys.path.insert(0, %r)\n"
+        "from eval_fakes import slow_run\n"
+        "from mapping.sweep import RunStore, execute\n"
+        "tasks = json.load(open(%r))\n"
+        "execute(tasks, slow_run, store=RunStore(%r), jobs=1, progress=False)\n"
+    ) % (os.path.dirname(__file__), str(tmp_path / "tasks.json"), str(runs))
+    proc = subprocess.Popen([sys.executable, "-c", code])
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline and len(list(runs.glob("*.json"))) < 3:
+            time.sleep(0.05)
+        proc.send_signal(signal.SIGKILL)
+    finally:
+        proc.wait()
+    finished = {p.stem for p in runs.glob("*.json")}
+    assert 3 <= len(finished) < len(tasks)  # killed part-way
+    store = RunStore(runs)
+    for k in finished:  # every stored run is complete JSON
+        assert store.load(k)["result"]["median_error_m"] == 0.5
+    _CALLS.update(n=0, limit=None, seen=[])
+    out = execute(tasks, counting_run, store=store, jobs=1, progress=False)
+    assert out["skipped"] == len(finished) and out["done"] == len(tasks) - len(finished)
+    assert not finished & set(_CALLS["seen"])
