@@ -8,9 +8,15 @@
    ``magnetometer_calibrated: yes`` is used as given (its residual is only
    checked, see :func:`calibration_verdict`), and an uncalibrated log is
    calibrated from the walk itself (ellipsoid fit, or the circle fallback
-   for planar motion).
-3. Attitude (:mod:`fingerprint.attitude`), earth-frame field, heading.
-4. Motion: steps with Weinberg lengths (handheld) or grouped odometry
+   for planar motion; with ``expected_total_ut`` the vertical offset of a
+   planar fit is set so that the median |B| matches it).
+3. Steps are detected first (handheld; they need only |a|), so that the
+   attitude can remove the centripetal acceleration of turns (speed from
+   the steps or the odometry); a robot's still periods for the gyro bias
+   are those where its wheels report no motion.
+4. Attitude (:mod:`fingerprint.attitude`: gyro heading plus one robust
+   magnetometer offset per walk by default), earth-frame field, heading.
+5. Motion: steps with Weinberg lengths (handheld) or grouped odometry
    (robot with ``odom_*`` columns).
 """
 
