@@ -176,3 +176,40 @@ def test_package_reexports_the_sensor_chain():
     assert fingerprint.read_track is logio.read_track
     assert fingerprint.process_walk is pipeline.process_walk
     assert {"read_walk_log", "read_checkpoints", "read_track", "process_walk"} <= set(fingerprint.__all__)
+
+
+def test_cli_calibrate_with_expected_total(tmp_path, capsys):
+    import json
+
+    from fingerprint.logio import write_walk_log
+    from mapping.cli import main
+
+    log, _, _ = _robot_log(offset=(30.0, -80.0, 55.0))
+    p = tmp_path / "rb.log.csv"
+    write_walk_log(p, log)
+    out = tmp_path / "calibration.json"
+    assert main(["calibrate", str(p), "--out", str(out), "--field-total-ut", f"{np.linalg.norm(B_ENU):.4f}"]) == 0
+    assert "expected total field" in capsys.readouterr().out
+    rep = json.loads(out.read_text())
+    np.testing.assert_allclose(rep["offset_ut"], [30.0, -80.0, 55.0], atol=0.7)
+    assert rep["report"]["vertical_offset_from"] == "total"
+
+
+def test_wheels_still_and_step_speed():
+    from fingerprint.pipeline import step_speed, wheels_still
+    from fingerprint.steps import StepEvents
+
+    t = np.arange(500) / 50.0
+    odom = np.zeros((500, 3))
+    odom[200:300, 0] = 0.01  # driving for 2 s
+    odom[350, 2] = np.nan  # no sample: counts as no motion
+    still = wheels_still(t, odom, window_s=1.0)
+    # still only a half window (0.5 s) away from any motion
+    assert still[:170].all() and not still[176:325].any() and still[330:].all()
+    # a step of 0.7 m lasting 0.5 s is 1.4 m/s inside it and 0 outside
+    k = 0.5
+    amax, amin = np.array([k ** -4 * 0.7 ** 4 + 1.0]), np.array([1.0])  # Weinberg: L = k (amax - amin)^(1/4)
+    ev = StepEvents(np.array([2.25]), np.array([112]), amax, amin, np.array([2.0]), np.array([2.5]))
+    v = step_speed(t, ev, step_constant=k)
+    assert v[(t >= 2.0) & (t <= 2.5)] == pytest.approx(1.4)
+    assert not v[(t < 2.0) | (t > 2.5)].any()
