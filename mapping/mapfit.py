@@ -727,6 +727,9 @@ class CurlFreeGP(_ReducedRankGP):
     n_folds : int, group folds for it
     domain : ((2,), (2,)) or None, plan box the map must cover
     seed : int, for the fold assignment
+    tiles : {"auto", "never", "always"}, split a large floor into tiles
+    tile_m, tile_overlap_m : float, tile core size and overlap each side
+    tile_basis : int, basis functions per block in each tile
     """
 
     name = "curl-free"
