@@ -60,7 +60,8 @@ def _nuisance_prior(n, settings, rng):
     hoff = s.heading_sigma0_rad * rng.standard_normal(n)
     scale = np.clip(1.0 + s.scale_sigma0 * rng.standard_normal(n), 0.5, 1.5)
     bias = np.zeros((n, 3))
-    bias_var = np.full((n, 3), s.bias_sigma0_ut**2)
+    up = s.bias_sigma0_ut if s.bias_up_sigma0_ut is None else s.bias_up_sigma0_ut
+    bias_var = np.tile(np.array([s.bias_sigma0_ut**2, s.bias_sigma0_ut**2, up**2]), (n, 1))
     return hoff, scale, bias, bias_var
 
 
@@ -159,7 +160,7 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
     if s.use_field and obs is not None:
         xy = ctx.graph.point(state.edge, state.offset_m)
         psi = obs.heading_rad + ctx.earth_to_plan_rad + state.heading_offset_rad
-        bias_var = state.bias_var_ut2 + s.bias_rw_ut**2 if s.bias_sigma0_ut > 0 else state.bias_var_ut2
+        bias_var = state.bias_var_ut2 + s.bias_rw_ut**2 * (state.bias_var_ut2 > 0)
         llf, bias, bias_var = field_log_likelihood(
             obs, xy, psi, state.bias_ut, bias_var, state.log_w,
             lookup=ctx.table.lookup, settings=s, sensor_noise_ut=ctx.sensor_noise_ut,

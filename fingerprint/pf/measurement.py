@@ -13,7 +13,7 @@ the particle's field bias adds to each feature. Feature sets:
 - ``"vertical+horizontal"``: horizontal magnitude and vertical field;
 - ``"total"``: magnitude of the field.
 
-The variance of a feature is ``V = map var + sensor_noise**2 / n_samples +
+The variance of a feature is ``V = map_var_scale * map var + sensor_noise**2 / n_samples +
 mismatch**2``. The field bias ``b`` of each particle is Gaussian,
 ``N(b_hat, P)``, and is marginalised exactly for the Gaussian likelihood.
 The likelihood is *tempered* with exponent ``tau`` (``field_temper``)::
@@ -190,7 +190,7 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, look
     y, pred, mvar, bidx = feats(obs, mean, var, psi_rad)
     bidx = list(bidx)
     tau = s.field_temper
-    v = mvar + (sensor_noise_ut**2 / max(obs.n, 1) + s.mismatch_ut**2)
+    v = s.map_var_scale * mvar + (sensor_noise_ut**2 / max(obs.n, 1) + s.mismatch_ut**2)
     b = bias_ut[:, bidx]
     p = bias_var_ut2[:, bidx]
     r = y[None, :] - pred - b

@@ -15,6 +15,10 @@ __all__ = ["FilterSettings"]
 class FilterSettings:
     """Every tunable of the localisation filter.
 
+    The defaults were chosen on the survey/test split of the real floors
+    (shared real_data siteA F1 and B1; maps from ``build_floor_map``): see
+    ``tests/test_pf_realdata.py`` and the engine notes in the report.
+
     Particles and modes
     -------------------
     n_particles : particles in tracking mode
@@ -50,8 +54,13 @@ class FilterSettings:
     mismatch_ut : 1-sigma model-mismatch term added to every feature
     coverage_max_m : no field update for particles farther than this from
         any survey sample (map ``coverage_m``)
-    bias_sigma0_ut : prior 1-sigma of the per-walk field bias per component
-        (0 = no bias states)
+    bias_sigma0_ut : prior 1-sigma of the per-walk field bias, horizontal
+        components (0 = no bias states)
+    bias_up_sigma0_ut : the same for the vertical component (None = as
+        ``bias_sigma0_ut``)
+    map_var_scale : factor on the map's variance in the likelihood (below 1
+        when the map's variance already holds a between-walk part that the
+        bias state models)
     bias_rw_ut : random walk of the bias per update
 
     Resampling and recovery (``fingerprint.pf.loop``)
@@ -84,19 +93,21 @@ class FilterSettings:
     scale_rw: float = 0.005
     heading_sigma0_rad: float = math.radians(8.0)
     heading_rw_rad: float = math.radians(0.5)
-    heading_kappa: float = 4.0
+    heading_kappa: float = 2.0
     reverse_prior: float = 0.05
     use_heading_likelihood: bool = True
     # field
     use_field: bool = True
-    feature_set: str = "full"
-    likelihood: str = "gaussian"
+    feature_set: str = "vertical+horizontal"
+    likelihood: str = "student-t"
     student_nu: float = 4.0
-    field_temper: float = 0.15
+    field_temper: float = 0.1
     sensor_noise_ut: float | None = None
-    mismatch_ut: float = 2.0
-    coverage_max_m: float = 3.0
-    bias_sigma0_ut: float = 4.0
+    mismatch_ut: float = 3.0
+    coverage_max_m: float = 1.5
+    bias_sigma0_ut: float = 5.0
+    bias_up_sigma0_ut: float | None = 10.0
+    map_var_scale: float = 1.0
     bias_rw_ut: float = 0.05
     # resampling and recovery
     resampler: str = "systematic"
@@ -127,7 +138,7 @@ class FilterSettings:
         for name in (
             "length_sigma_frac", "length_sigma_m", "scale_sigma0", "scale_rw", "heading_sigma0_rad",
             "heading_rw_rad", "heading_kappa", "mismatch_ut", "bias_sigma0_ut", "bias_rw_ut",
-            "rough_heading_rad", "rough_scale", "update_min_m", "recovery_drop",
+            "rough_heading_rad", "rough_scale", "update_min_m", "recovery_drop", "map_var_scale",
         ):
             v = getattr(self, name)
             if not (isinstance(v, (int, float)) and math.isfinite(v) and v >= 0):
@@ -140,6 +151,8 @@ class FilterSettings:
             v = getattr(self, name)
             if not (isinstance(v, (int, float)) and 0 <= v <= 1):
                 bad(name, "a number in [0, 1]")
+        if self.bias_up_sigma0_ut is not None and not self.bias_up_sigma0_ut >= 0:
+            bad("bias_up_sigma0_ut", "None or a number >= 0")
         if self.sensor_noise_ut is not None and not self.sensor_noise_ut >= 0:
             bad("sensor_noise_ut", "None or a number >= 0")
         if self.feature_set not in FEATURE_SETS:

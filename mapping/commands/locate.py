@@ -45,10 +45,10 @@ def add_arguments(parser):
     parser.add_argument("--no-field", action="store_true",
                         help="switch the field updates off: the same filter on steps and floor graph only")
     parser.add_argument("--features", default=None, metavar="NAME",
-                        help="feature set: full (default), vertical+horizontal or total")
-    parser.add_argument("--likelihood", default=None, metavar="NAME", help="gaussian (default) or student-t")
+                        help="feature set: vertical+horizontal (default), full or total")
+    parser.add_argument("--likelihood", default=None, metavar="NAME", help="student-t (default) or gaussian")
     parser.add_argument("--temper", type=float, default=None, metavar="TAU",
-                        help="exponent on the field likelihood (default 0.15)")
+                        help="exponent on the field likelihood (default 0.1)")
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
                         help="any other FilterSettings field, e.g. --set heading_kappa=3 (repeatable)")
     parser.add_argument("--calibration", default=None, metavar="calibration.json",
