@@ -41,7 +41,7 @@ def corridor_map(length_m=300.0, node_every_m=10.0):
 
 def linear_settings(**kw):
     base = FilterSettings(
-        n_particles=40000,
+        n_particles=25000,
         update_min_m=0.0,
         length_sigma_frac=0.0,
         length_sigma_m=0.2,
