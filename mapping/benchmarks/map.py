@@ -25,7 +25,8 @@ HELP = "field-map speed (100,000 samples; vs exact sklearn GPR) and held-out acc
 
 
 def add_arguments(parser):
-    parser.add_argument("--samples", type=int, default=100_000, metavar="N", help="survey samples for the speed run (default 100000)")
+    parser.add_argument("--samples", type=int, default=100_000, metavar="N",
+                        help="survey samples for the speed run (default 100000; 0 = only the comparison)")
     parser.add_argument("--exact-samples", type=int, default=5000, metavar="N",
                         help="samples for the comparison with exact sklearn GPR (default 5000; 0 = skip)")
     parser.add_argument("--sklearn-fixed", action="store_true",
@@ -113,6 +114,10 @@ def _speed(args, log=print):
     test_xy = rng.uniform([1, 1], [59, 39], size=(4000, 2))
     test_b = field(test_xy)
     n = int(args.samples)
+    if n <= 0:
+        if int(args.exact_samples) > 0:
+            res["exact"] = _vs_exact(int(args.exact_samples), rng, field, test_xy, test_b, args, log)
+        return res
     xy, b, walk, rot = synthetic_survey(n, rng, field)
     log(f"speed: {n} samples, {walk.max() + 1} walks, 60 m x 40 m, n_basis {args.n_basis} per block")
     t0 = time.perf_counter()
