@@ -34,10 +34,10 @@ from .errors import DataError
 from .pf.estimate import Estimate, cluster_estimate
 from .pf.loop import RecoveryTracker, filter_step, initial_state, make_context
 from .pf.measurement import window_observation
-from .pf.settings import FilterSettings
+from .pf.settings import PRESETS, FilterSettings, preset
 from .records import Track
 
-__all__ = ["FilterSettings", "Localiser", "localise", "Estimate"]
+__all__ = ["FilterSettings", "PRESETS", "preset", "Localiser", "localise", "Estimate"]
 
 
 def _as_rng(rng):

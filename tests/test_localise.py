@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from fingerprint.errors import ConfigError, ConvergenceError, DataError
-from fingerprint.localise import FilterSettings, Localiser, localise
+from fingerprint.localise import FilterSettings, Localiser, localise, preset
 from fingerprint.pf.estimate import cluster_estimate
 from fingerprint.pf.loop import RecoveryTracker, filter_step
 from fingerprint.pf.measurement import window_observation
@@ -197,6 +197,10 @@ def test_bad_input_raises(floor):
         FilterSettings(likelihood="cauchy")
     with pytest.raises(ConfigError, match="n_particles"):
         FilterSettings(n_particles=0)
+    with pytest.raises(ConfigError, match="simulated"):
+        preset("bogus")
+    assert preset("simulated", n_particles=7).n_particles == 7
+    assert preset("default") == FilterSettings()
     with pytest.raises(ConfigError, match="unknown filter settings"):
         FilterSettings.from_dict({"n_particles": 10, "bogus": 1})
     loc = Localiser(fm, start_xy=(3.0, 3.0), settings=FilterSettings(n_particles=10))

@@ -114,6 +114,7 @@ def test_no_field_and_settings_are_recorded(files, capsys):
         (["--start", "1,2,-1"], "SIGMA"),
         (["--set", "bogus=1"], "unknown filter setting"),
         (["--features", "nope"], "feature_set"),
+        (["--preset", "nope"], "preset"),
     ],
 )
 def test_bad_options_give_one_line_and_exit_2(files, capsys, extra, needle):
@@ -136,5 +137,5 @@ def test_help_explains_every_option(capsys):
     assert exc.value.code == 0
     text = capsys.readouterr().out
     for opt in ("--map", "--start", "--start-time", "--out", "--geojson", "--seed", "--particles", "--no-field",
-                "--features", "--likelihood", "--temper", "--set", "--calibration", "--step-constant", "LOG"):
+                "--preset", "--features", "--likelihood", "--temper", "--set", "--calibration", "--step-constant", "LOG"):
         assert opt in text

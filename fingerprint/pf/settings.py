@@ -8,7 +8,7 @@ from dataclasses import asdict, dataclass, fields
 
 from ..errors import ConfigError
 
-__all__ = ["FilterSettings"]
+__all__ = ["FilterSettings", "PRESETS", "preset"]
 
 
 @dataclass(frozen=True)
@@ -176,3 +176,22 @@ class FilterSettings:
         if unknown:
             raise ConfigError(f"unknown filter settings {unknown}; valid: {sorted(names)}")
         return cls(**d)
+
+
+#: Named starting points: setting name -> value changes from the defaults.
+#: "default" was chosen on the real phone walks (a weak, walk-dependent
+#: field: heavy-tailed, strongly tempered, no heading-dependent features);
+#: "simulated" suits the simulator's walks (an exactly known field model and
+#: small residual offsets: the full vector, Gaussian, less tempering).
+PRESETS = {
+    "default": {},
+    "simulated": {"feature_set": "full", "likelihood": "gaussian", "field_temper": 0.2, "mismatch_ut": 1.5},
+}
+
+
+def preset(name, **changes):
+    """FilterSettings of the preset ``name`` (see :data:`PRESETS`), with
+    further ``changes``; an unknown name lists the valid ones."""
+    if name not in PRESETS:
+        raise ConfigError(f"unknown filter preset {name!r}; expected one of {sorted(PRESETS)}")
+    return FilterSettings(**{**PRESETS[name], **changes})

@@ -44,6 +44,10 @@ def add_arguments(parser):
                              "n_particles_global in global mode)")
     parser.add_argument("--no-field", action="store_true",
                         help="switch the field updates off: the same filter on steps and floor graph only")
+    parser.add_argument("--preset", default="default", metavar="NAME",
+                        help="starting settings: default (tuned on real phone walks) or simulated "
+                             "(simulator walks: full field vector, Gaussian, temper 0.2); the options "
+                             "below change it further")
     parser.add_argument("--features", default=None, metavar="NAME",
                         help="feature set: vertical+horizontal (default), full or total")
     parser.add_argument("--likelihood", default=None, metavar="NAME", help="student-t (default) or gaussian")
@@ -91,7 +95,7 @@ def _parse_value(text):
 
 def build_settings(args, *, global_mode):
     """FilterSettings from the command-line options."""
-    from fingerprint.localise import FilterSettings
+    from fingerprint.localise import FilterSettings, preset
 
     valid = {f.name for f in dataclasses.fields(FilterSettings)}
     changes = {}
@@ -115,7 +119,7 @@ def build_settings(args, *, global_mode):
         changes["likelihood"] = args.likelihood
     if args.temper is not None:
         changes["field_temper"] = args.temper
-    base = FilterSettings()
+    base = preset(getattr(args, "preset", "default"))
     for name, value in changes.items():
         if isinstance(getattr(base, name), float) and isinstance(value, int) and not isinstance(value, bool):
             changes[name] = float(value)
