@@ -696,7 +696,7 @@ def _sweep_report(path, cfg, ranking, records, counts):
         [[r["rank"], r["settings"], r["runs"], r["mean"], r["ci_low"], r["ci_high"], r["best_overlap"]]
          for r in ranking]))]
     if ranking:
-        fig = R._new_figure((7.0, 0.5 + 0.35 * len(ranking)))
+        fig = R._new_figure((8.0, 1.2 + 0.35 * len(ranking)))
         ax = fig.add_subplot(1, 1, 1)
         y = np.arange(len(ranking))[::-1]
         mean = np.array([r["mean"] for r in ranking])
@@ -707,6 +707,7 @@ def _sweep_report(path, cfg, ranking, records, counts):
         ax.set_yticklabels([r["settings"][:60] for r in ranking], fontsize=7)
         ax.set_xlabel(f"mean over runs of {cfg.metric} (95 % bootstrap CI)")
         ax.grid(alpha=0.3)
+        fig.tight_layout()
         secs.append(R.Section("Settings compared", R.img_tag(R.figure_to_base64(fig), "ranking")))
     secs.append(R.Section("Sweep", R.html_table(["item", "value"], [
         ["config", cfg.path], ["mode", cfg.mode], ["search", cfg.search], ["root seed", cfg.seed],
