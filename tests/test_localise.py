@@ -219,3 +219,25 @@ def test_every_feature_set_and_likelihood_tracks(floor, features, likelihood):
     s = FilterSettings(n_particles=600, feature_set=features, likelihood=likelihood)
     tr = localise(w, fm, settings=s, start_xy=xy[0], rng=1)
     assert np.median(S.errors(tr, t, xy)) < 1.0
+
+
+def test_nan_field_samples_are_dropped_not_propagated(floor):
+    # samples with a NaN cell carry no field; the filter must give exactly
+    # the track of the same walk with those samples removed.
+    from fingerprint.records import ProcessedWalk
+
+    g, fm = floor
+    w, t, xy = make_walk(g, 9, n_legs=6)
+    bad = np.zeros(w.n, bool)
+    bad[5::7] = True
+    mag = w.mag_earth_ut.copy()
+    mag[bad, 1] = np.nan
+    with_nan = ProcessedWalk(w.t, w.quat, mag, w.heading_rad, w.mag_noise_ut, w.motion)
+    keep = ~bad
+    without = ProcessedWalk(w.t[keep], w.quat[keep], w.mag_earth_ut[keep], w.heading_rad[keep], w.mag_noise_ut,
+                            w.motion)
+    s = FilterSettings(n_particles=300)
+    a = localise(with_nan, fm, settings=s, start_xy=xy[0], rng=2)
+    b = localise(without, fm, settings=s, start_xy=xy[0], rng=2)
+    np.testing.assert_array_equal(a.xy, b.xy)
+    assert np.all(np.isfinite(a.xy))
