@@ -13,9 +13,11 @@ that lives in ``mapping.graphbuild``.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
+import shapely
 
 from .errors import DataError
 
@@ -102,9 +104,18 @@ class FloorGraph:
         off = np.clip(np.asarray(offset_m, dtype=float), 0.0, self.length_m[edge])
         return self.nodes_xy[self.edges[edge, 0]] + self.unit[edge] * off[..., None]
 
-    def project(self, xy, *, chunk=4096):
-        """Nearest point of the graph to each query point (exact, brute force
-        over edges in chunks; E is a few thousand for a floor).
+    @functools.cached_property
+    def _edge_tree(self):
+        """shapely STRtree over the edges as LineStrings (built on first use)."""
+        lines = shapely.linestrings(self.nodes_xy[self.edges])  # (E, 2, 2) coordinates
+        return shapely.STRtree(lines)
+
+    def project(self, xy):
+        """Nearest point of the graph to each query point (exact).
+
+        Candidate edges come from a shapely STRtree of the edges
+        (``query_nearest``); the foot point on the chosen edge is computed
+        here. :meth:`project_brute` is the slow, obviously correct twin.
 
         Parameters
         ----------
@@ -116,6 +127,21 @@ class FloorGraph:
         offset_m : (N,) float
         distance_m : (N,) float
         """
+        xy = np.asarray(xy, dtype=float).reshape(-1, 2)
+        n = xy.shape[0]
+        if n == 0:
+            return np.zeros(0, np.int64), np.zeros(0), np.zeros(0)
+        idx = self._edge_tree.query_nearest(shapely.points(xy), all_matches=False)
+        edge = np.empty(n, dtype=np.int64)
+        edge[idx[0]] = idx[1]
+        a = self.nodes_xy[self.edges[edge, 0]]
+        off = np.clip(np.sum((xy - a) * self.unit[edge], axis=1), 0.0, self.length_m[edge])
+        foot = a + off[:, None] * self.unit[edge]
+        return edge, off, np.hypot(*(xy - foot).T)
+
+    def project_brute(self, xy, *, chunk=256):
+        """Same as :meth:`project` by brute force over all edges, in chunks
+        of ``chunk`` points (memory ``chunk x E x 2`` floats)."""
         xy = np.asarray(xy, dtype=float).reshape(-1, 2)
         a = self.nodes_xy[self.edges[:, 0]]
         n = xy.shape[0]

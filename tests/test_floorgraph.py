@@ -17,11 +17,12 @@ def _grid_graph():
     return g
 
 
-def test_projection_matches_shapely_distance():
+@pytest.mark.parametrize("method", ["project", "project_brute"])
+def test_projection_matches_shapely_distance(method):
     fg = FloorGraph.from_networkx(_grid_graph())
     rng = np.random.default_rng(1)
     q = rng.uniform([-1, -1], [7, 4], size=(500, 2))
-    edge, off, dist = fg.project(q, chunk=64)
+    edge, off, dist = getattr(fg, method)(q)
     lines = shapely.linestrings(fg.nodes_xy[fg.edges])  # (E, 2, 2)
     union = shapely.union_all(lines)
     # shapely's distance to the union of all edges is the exact nearest distance
@@ -30,6 +31,18 @@ def test_projection_matches_shapely_distance():
     # and the reported (edge, offset) is a point at that distance
     p = fg.point(edge, off)
     np.testing.assert_allclose(np.hypot(*(p - q).T), ref, atol=1e-9)
+
+
+def test_indexed_projection_equals_brute_force_on_a_random_graph():
+    # the STRtree path against its slow twin on irregular geometry
+    rng = np.random.default_rng(7)
+    xy = rng.uniform(0, 50, size=(300, 2))
+    edges = np.array([(i, j) for i in range(300) for j in rng.choice(300, 2) if i != j])
+    fg = FloorGraph.from_arrays(xy, edges)
+    q = rng.uniform(-5, 55, size=(2000, 2))
+    _, _, d_fast = fg.project(q)
+    _, _, d_slow = fg.project_brute(q)
+    np.testing.assert_allclose(d_fast, d_slow, atol=1e-9)
 
 
 def test_incidence_matches_networkx_degree():

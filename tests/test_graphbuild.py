@@ -293,7 +293,7 @@ def test_real_plan_graph_covers_checkpoints(floor):
     # all the checkpoints of the floor (full shared copy when present)
     src = FULL if (FULL / floor).is_dir() else REAL
     cps = np.vstack([read_checkpoints(p).xy for p in sorted((src / floor).glob("*.checkpoints.csv"))])
-    _, _, d = g.project(cps, chunk=32)
+    _, _, d = g.project(cps)
     # reference twin: shapely distance to the union of the edges
     np.testing.assert_allclose(d[::10], union_distance(g, cps[::10]), atol=1e-6)
     assert np.mean(d <= 2.0) >= 0.95
