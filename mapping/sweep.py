@@ -5,6 +5,7 @@ A sweep is described by a TOML file (read with :mod:`tomllib`)::
 
     [sweep]
     mode = "tracking"          # tracking | global | no-field | dead-reckoning
+    preset = "default"         # filter settings preset the settings below change
     search = "grid"            # grid | random
     samples = 8                # random search: number of settings drawn
     seeds = 2                  # seeds per (settings, walk)
@@ -87,7 +88,7 @@ MAP_SETTINGS = ("map_resolution_m", "map_kernel", "map_n_basis")
 #: settings that perturb the input walk
 NOISE_SETTINGS = ("noise_mag_ut", "noise_heading_deg", "noise_step_scale")
 _SEARCHES = ("grid", "random")
-_SWEEP_KEYS = {"mode", "search", "samples", "seeds", "seed", "metric"}
+_SWEEP_KEYS = {"mode", "search", "samples", "seeds", "seed", "metric", "preset"}
 _DATA_KEYS = {"walks", "map", "site", "floor", "survey", "split", "use"}
 
 
@@ -101,6 +102,7 @@ class SweepConfig:
     seeds: int = 1
     seed: int = 0
     metric: str = "median_error_m"
+    preset: str = "default"
     walks: list = field(default_factory=list)
     map: Path | None = None
     site: Path | None = None
@@ -167,6 +169,7 @@ def parse_sweep_config(raw, *, base=".", path="<sweep>"):
             raise ConfigError(f"{path}: [sweep] {name} must be an integer >= {0 if name == 'seed' else 1}, got {v!r}")
         setattr(cfg, name, v)
     cfg.metric = str(sw.get("metric", cfg.metric))
+    cfg.preset = str(sw.get("preset", cfg.preset))
 
     def _paths(v, key):
         if isinstance(v, str):
@@ -492,12 +495,12 @@ def split_settings(settings):
     return m, n, f
 
 
-def filter_settings(overrides):
-    """``FilterSettings`` with ``overrides`` applied; unknown names raise a
-    ConfigError listing the valid ones."""
+def filter_settings(overrides, *, preset_name="default"):
+    """``FilterSettings`` of the preset with ``overrides`` applied; unknown
+    names raise a ConfigError listing the valid ones."""
     import dataclasses
 
-    from fingerprint.localise import FilterSettings
+    from fingerprint.localise import FilterSettings, preset
 
     valid = {f.name for f in dataclasses.fields(FilterSettings)}
     bad = sorted(set(overrides) - valid)
@@ -505,7 +508,7 @@ def filter_settings(overrides):
         raise ConfigError(
             f"unknown setting(s) {bad}; valid: {sorted(valid | set(MAP_SETTINGS) | set(NOISE_SETTINGS))}"
         )
-    return dataclasses.replace(FilterSettings(), **overrides)
+    return dataclasses.replace(preset(preset_name), **overrides)
 
 
 def perturb_walk(walk, noise, rng):
@@ -564,7 +567,7 @@ def evaluation_run(task):
 
     wf = WalkFiles(**{k: (None if v is None else Path(v)) if k != "name" else v for k, v in task["walk_files"].items()})
     _, noise, filt = split_settings(task["settings"])
-    s = filter_settings(filt)
+    s = filter_settings(filt, preset_name=task.get("preset", "default"))
     ss = np.random.SeedSequence(task["seed"]["entropy"], spawn_key=tuple(task["seed"]["spawn_key"]))
     noise_ss, run_ss = ss.spawn(2)
     walk, cps, truth = load_walk(wf)
@@ -650,7 +653,7 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     # validate names before anything runs
     for s in settings_list:
         _, _, f = split_settings(s)
-        filter_settings(f)
+        filter_settings(f, preset_name=cfg.preset)
     walks = [w for w in find_walks(cfg.walks, split=cfg.split, part=cfg.use if cfg.split else None)
              if w.checkpoints is not None]
     if not walks:
@@ -661,8 +664,11 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
         raise ConfigError(f"{cfg.path}: walks with the same name in different folders: {dup}")
     maps = prepare_maps(cfg, settings_list, out, progress=progress)
     by_name = {w.name: w for w in walks}
-    tasks = make_tasks(settings_list, names, seeds=cfg.seeds, root_seed=cfg.seed, mode=cfg.mode,
-                       data=cfg.data_identity())
+    data = cfg.data_identity()
+    if cfg.preset != "default":
+        data["preset"] = cfg.preset  # part of every run key
+    tasks = make_tasks(settings_list, names, seeds=cfg.seeds, root_seed=cfg.seed, mode=cfg.mode, data=data,
+                       extra={"preset": cfg.preset})
     for t in tasks:
         m, _, _ = split_settings(t["settings"])
         w = by_name[t["walk"]]

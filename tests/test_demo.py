@@ -146,6 +146,9 @@ def test_evaluate_cli_errors(demo, tmp_path, capsys):
     rc = main(["evaluate", "--map", str(out / "maps" / "T.map"), str(out / "sim" / "T" / "test"),
                "--out", str(tmp_path / "y"), "--baselines", "magic"])
     assert rc == 2 and "magic" in capsys.readouterr().err
+    rc = main(["evaluate", "--map", str(out / "maps" / "T.map"), str(out / "sim" / "T" / "test"),
+               "--out", str(tmp_path / "z"), "--preset", "bogus"])
+    assert rc == 2 and "bogus" in capsys.readouterr().err
 
 
 def test_sweep_cli_on_the_demo_map_and_resume(demo, tmp_path, capsys):

@@ -281,3 +281,15 @@ def test_killed_sweep_subprocess_loses_nothing_finished(tmp_path):
     out = execute(tasks, counting_run, store=store, jobs=1, progress=False)
     assert out["skipped"] == len(finished) and out["done"] == len(tasks) - len(finished)
     assert not finished & set(_CALLS["seen"])
+
+
+def test_filter_settings_from_a_preset():
+    from fingerprint.localise import PRESETS
+    from mapping.sweep import filter_settings
+
+    s = filter_settings({"n_particles": 123}, preset_name="simulated")
+    assert s.n_particles == 123
+    for k, v in PRESETS["simulated"].items():
+        assert getattr(s, k) == v
+    with pytest.raises(ConfigError, match="preset"):
+        filter_settings({}, preset_name="bogus")

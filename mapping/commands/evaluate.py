@@ -38,6 +38,9 @@ def add_arguments(parser):
     parser.add_argument("--use", default="test", choices=["survey", "test"],
                         help="which part of --split to evaluate (default: test)")
     parser.add_argument("--seed", type=int, default=0, help="root random seed, recorded in run.json (default: 0)")
+    parser.add_argument("--preset", default="default", metavar="NAME",
+                        help="filter settings preset: 'default' (chosen on real phone walks) or 'simulated' "
+                             "(simulator walks) (default: default)")
     parser.add_argument("--particles", type=int, metavar="N",
                         help="particles of the filter (tracking and global; default: the filter's own defaults)")
     parser.add_argument("--start-sigma", type=float, default=1.0, metavar="M",
@@ -92,9 +95,12 @@ def run(args):
     if not (args.start_sigma > 0):
         raise ConfigError(f"--start-sigma must be > 0, got {args.start_sigma}")
     baselines = parse_baselines(args.baselines)
+    from fingerprint.localise import preset
+
+    settings = preset(args.preset)
     fmap = load_map(args.map)
     walks = find_walks(args.walks, split=args.split, part=args.use if args.split else None)
-    ev = evaluate_walks(fmap, walks, mode=args.mode, n_particles=args.particles, seed=args.seed,
+    ev = evaluate_walks(fmap, walks, mode=args.mode, settings=settings, n_particles=args.particles, seed=args.seed,
                         baselines=baselines, start_sigma_m=args.start_sigma, jobs=args.jobs,
                         progress=not args.no_progress, map_info=map_info(fmap, args.map),
                         on_error="skip" if args.skip_bad else "raise")

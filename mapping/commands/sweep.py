@@ -10,6 +10,7 @@ CONFIG.toml (paths relative to it):
 
   [sweep]
   mode = "tracking"        # tracking | global | no-field | dead-reckoning
+  preset = "default"       # filter preset the settings change ("simulated" for simulator walks)
   search = "grid"          # grid | random (with samples = N)
   seeds = 2                # seeds per settings and walk
   seed = 0                 # root seed (runs get SeedSequence(seed).spawn(seeds))
