@@ -172,7 +172,7 @@ class Localiser:
         w = st.weights()
         mean, cov, conf = cluster_estimate(xy, w, radius_m=s.cluster_radius_m)
         if s.project_estimate:
-            e, o, _ = self._ctx.projector.project(mean[None, :])
+            e, o, _ = graph.project(mean[None, :])
             mean = graph.point(e, o)[0]
         sigma = float(np.sqrt(max(np.trace(cov), 0.0)))
         hoff = float(np.arctan2(w @ np.sin(st.heading_offset_rad), w @ np.cos(st.heading_offset_rad)))

@@ -1,5 +1,14 @@
-"""Fast bilinear lookup of a FieldMap's mean, variance and coverage in one
-gather (the filter's hot path); same numbers as ``FieldMap.lookup``."""
+"""Fast bilinear lookup of a FieldMap's mean, variance and coverage (the
+filter's hot path); the same numbers as ``FieldMap.lookup`` to float32
+precision.
+
+Particles live on the floor graph, so only the raster cells that the graph
+passes through are ever looked up. :class:`MapTable` keeps, for those cells
+only, the four bilinear coefficients of the seven channels (mean 3, variance
+3, coverage 1) in float32: one lookup is one gather of 28 numbers per
+particle and ``A + B wx + (C + D wx) wy``. A query in a cell that is not in
+the table (a point off the graph) falls back to ``FieldMap.lookup``.
+"""
 
 from __future__ import annotations
 
@@ -7,24 +16,68 @@ import numpy as np
 
 __all__ = ["MapTable"]
 
+#: coverage values beyond this are stored as this (float32 arithmetic on inf
+#: would give NaN coefficients); any real coverage limit is far below
+_COVERAGE_CAP_M = 1e6
+
+
+def _graph_cells(fmap, nx, ny):
+    """(ny * nx,) bool: cells that a point on an edge of the graph can fall in."""
+    g = fmap.graph
+    res = float(fmap.resolution_m)
+    hit = np.zeros(ny * nx, dtype=bool)
+    if g.n_edges == 0:
+        return hit
+    # points every res / 4 along every edge (and both ends), a 3 x 3 block
+    # of cells around each
+    k = np.maximum(np.ceil(g.length_m / (0.25 * res)).astype(np.int64), 1)
+    e = np.repeat(np.arange(g.n_edges), k + 1)
+    frac = np.arange(e.size) - np.repeat(np.cumsum(k + 1) - (k + 1), k + 1)
+    off = frac / np.repeat(k, k + 1) * g.length_m[e]
+    xy = g.point(e, off)
+    ix = np.floor((xy[:, 0] - fmap.origin_xy[0]) / res).astype(np.int64)
+    iy = np.floor((xy[:, 1] - fmap.origin_xy[1]) / res).astype(np.int64)
+    for dy in (-1, 0, 1):  # 9 shifts, setup only
+        for dx in (-1, 0, 1):
+            jx = np.clip(ix + dx, 0, max(nx - 2, 0))
+            jy = np.clip(iy + dy, 0, max(ny - 2, 0))
+            hit[jy * nx + jx] = True
+    return hit
+
 
 class MapTable:
-    """The map's ``mean_ut``, ``var_ut2`` and ``coverage_m`` stacked as one
-    ``(ny * nx, 7)`` table for a single gather per corner.
+    """Bilinear coefficients of the map's cells along the graph.
 
     Parameters
     ----------
-    fmap : FieldMap
+    fmap : FieldMap (its graph says which cells are needed)
+
+    Attributes
+    ----------
+    row : (ny * nx,) int32, row of each cell in ``coef`` (-1 = not stored)
+    coef : (4, M, 8) float32, per stored cell the coefficients ``A, B, C, D``
+        of 7 channels (mean 3, variance 3, coverage; padded to 8)
     """
 
     def __init__(self, fmap):
         ny, nx = fmap.free.shape
+        self.fmap = fmap
         self.nx, self.ny = nx, ny
         self.x0, self.y0 = float(fmap.origin_xy[0]), float(fmap.origin_xy[1])
         self.res = float(fmap.resolution_m)
-        self.table = np.ascontiguousarray(
-            np.concatenate([fmap.mean_ut, fmap.var_ut2, fmap.coverage_m[..., None]], axis=-1).reshape(ny * nx, 7)
-        )
+        cells = np.flatnonzero(_graph_cells(fmap, nx, ny))
+        iy, ix = np.divmod(cells, nx)
+        ix1 = np.minimum(ix + 1, nx - 1)
+        iy1 = np.minimum(iy + 1, ny - 1)
+        cov = np.minimum(fmap.coverage_m, _COVERAGE_CAP_M)[..., None]
+        chans = [np.concatenate([fmap.mean_ut[j, i], fmap.var_ut2[j, i], cov[j, i]], axis=-1)
+                 for j, i in ((iy, ix), (iy, ix1), (iy1, ix), (iy1, ix1))]
+        a, b, c, d = chans  # (M, 7) float64 each
+        self.coef = np.zeros((4, cells.size, 8), dtype=np.float32)
+        for k, v in enumerate((a, b - a, c - a, d - c - b + a)):
+            self.coef[k, :, :7] = v
+        self.row = np.full(ny * nx, -1, dtype=np.int32)
+        self.row[cells] = np.arange(cells.size, dtype=np.int32)
 
     def lookup(self, xy):
         """Bilinear lookup at (N, 2) plan positions.
@@ -32,27 +85,34 @@ class MapTable:
         Returns
         -------
         mean_ut : (N, 3) ; var_ut2 : (N, 3) ; coverage_m : (N,), inf outside
+            (float32 where the table has the cell)
         """
         nx, ny = self.nx, self.ny
-        fx = (xy[:, 0] - self.x0) / self.res
-        fy = (xy[:, 1] - self.y0) / self.res
+        fx = (xy[:, 0] - self.x0) * (1.0 / self.res)
+        fy = (xy[:, 1] - self.y0) * (1.0 / self.res)
         inside = (fx >= 0) & (fx <= nx - 1) & (fy >= 0) & (fy <= ny - 1)
-        fx = np.clip(fx, 0, nx - 1)
-        fy = np.clip(fy, 0, ny - 1)
+        np.clip(fx, 0, nx - 1, out=fx)
+        np.clip(fy, 0, ny - 1, out=fy)
         ix = np.minimum(fx.astype(np.int64), max(nx - 2, 0))
         iy = np.minimum(fy.astype(np.int64), max(ny - 2, 0))
-        wx = (fx - ix)[:, None]
-        wy = (fy - iy)[:, None]
-        dx = 1 if nx > 1 else 0
-        dy = nx if ny > 1 else 0
-        i00 = iy * nx + ix
-        t = self.table
-        a = t[i00]
-        b = t[i00 + dx]
-        c = t[i00 + dy]
-        d = t[i00 + dy + dx]
-        top = a + (b - a) * wx
-        bot = c + (d - c) * wx
-        out = top + (bot - top) * wy
-        cov = np.where(inside, out[:, 6], np.inf)
-        return out[:, 0:3], out[:, 3:6], cov
+        wx = (fx - ix).astype(np.float32)[:, None]
+        wy = (fy - iy).astype(np.float32)[:, None]
+        row = self.row[iy * nx + ix]
+        # one gather (np.take is much faster than fancy indexing here); rows
+        # of cells not in the table (-1) are replaced below
+        out, b, c, d = np.take(self.coef, row, axis=1)
+        b *= wx
+        out += b
+        d *= wx
+        d += c
+        d *= wy
+        out += d  # A + B wx + (C + D wx) wy
+        cov = out[:, 6]
+        cov = np.where(inside, cov, np.inf) if not inside.all() else cov
+        mean, var = out[:, 0:3], out[:, 3:6]
+        missing = row < 0
+        if missing.any():
+            m, v, c = self.fmap.lookup(xy[missing])
+            mean, var, cov = mean.astype(float), var.astype(float), cov.astype(float)
+            mean[missing], var[missing], cov[missing] = m, v, c
+        return mean, var, cov

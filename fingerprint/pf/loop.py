@@ -4,15 +4,15 @@ calling the motion and measurement models."""
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
 
 from ..errors import ConvergenceError
 from ._lookup import MapTable
-from ._project import GraphProjector
 from .measurement import field_log_likelihood
-from .motion import graph_tables, move
+from .motion import edge_point, graph_tables, move
 from .resampling import get_resampler
 from .state import ParticleState, effective_sample_size, normalise_log_weights
 
@@ -26,7 +26,6 @@ class FilterContext:
     fmap: object
     table: object
     graph: object
-    projector: object
     tables: object
     settings: object
     earth_to_plan_rad: float
@@ -39,7 +38,6 @@ def make_context(fmap, settings, *, sensor_noise_ut):
         fmap=fmap,
         table=MapTable(fmap),
         graph=fmap.graph,
-        projector=GraphProjector(fmap.graph),
         tables=graph_tables(fmap.graph),
         settings=settings,
         earth_to_plan_rad=float(fmap.earth_to_plan_rad),
@@ -53,6 +51,7 @@ class RecoveryTracker:
 
     level: float = 0.0
     count: int = 0
+    outliers: int = 0  # consecutive updates with an outlying field innovation
 
 
 def _nuisance_prior(n, settings, rng):
@@ -76,7 +75,7 @@ def initial_state(ctx, rng, *, start_xy=None, start_sigma_m=1.0):
     else:
         n = s.n_particles
         xy = np.asarray(start_xy, dtype=float).reshape(1, 2) + start_sigma_m * rng.standard_normal((n, 2))
-        edge, off, _ = ctx.projector.project(xy)
+        edge, off, _ = graph.project(xy)
     direc = np.where(rng.random(n) < 0.5, 1, -1).astype(np.int8)
     hoff, scale, bias, bias_var = _nuisance_prior(n, s, rng)
     return ParticleState(
@@ -126,11 +125,26 @@ def _resample(state, ctx, rng):
     new = state.take(idx)
     n = new.n
     changes = {}
-    if s.rough_heading_rad > 0:
-        changes["heading_offset_rad"] = new.heading_offset_rad + s.rough_heading_rad * rng.standard_normal(n)
-    if s.rough_scale > 0:
-        changes["scale"] = np.clip(new.scale + s.rough_scale * rng.standard_normal(n), 0.5, 1.5)
+    if s.rough_heading_rad > 0 or s.rough_scale > 0:
+        z = rng.standard_normal((2, n), dtype=np.float32)  # one draw for both jitters
+        if s.rough_heading_rad > 0:
+            changes["heading_offset_rad"] = new.heading_offset_rad + s.rough_heading_rad * z[0]
+        if s.rough_scale > 0:
+            changes["scale"] = np.clip(new.scale + s.rough_scale * z[1], 0.5, 1.5)
     return new.replace(**changes) if changes else new
+
+
+def _predict_bias(state, s):
+    """Bias prediction over one update: a random walk (constant per-walk
+    bias) or, with ``bias_corr_updates``, a first-order autoregression towards
+    0 whose stationary variance is the bias prior."""
+    has = state.bias_var_ut2 > 0
+    if s.bias_corr_updates is None:
+        return state.bias_ut, state.bias_var_ut2 + s.bias_rw_ut**2 * has
+    phi = float(np.exp(-1.0 / s.bias_corr_updates))
+    up = s.bias_sigma0_ut if s.bias_up_sigma0_ut is None else s.bias_up_sigma0_ut
+    prior = np.array([s.bias_sigma0_ut**2, s.bias_sigma0_ut**2, up**2])
+    return phi * state.bias_ut, phi * phi * state.bias_var_ut2 + ((1.0 - phi * phi) * prior) * has
 
 
 def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
@@ -158,16 +172,22 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
     )
     field_used = False
     if s.use_field and obs is not None:
-        xy = ctx.graph.point(state.edge, state.offset_m)
+        xy = edge_point(ctx.tables, state.edge, state.offset_m)
         psi = obs.heading_rad + ctx.earth_to_plan_rad + state.heading_offset_rad
-        bias_var = state.bias_var_ut2 + s.bias_rw_ut**2 * (state.bias_var_ut2 > 0)
-        llf, bias, bias_var = field_log_likelihood(
-            obs, xy, psi, state.bias_ut, bias_var, state.log_w,
-            lookup=ctx.table.lookup, settings=s, sensor_noise_ut=ctx.sensor_noise_ut,
+        bias, bias_var = _predict_bias(state, s)
+        llf, bias, bias_var, chi2 = field_log_likelihood(
+            obs, xy, psi, bias, bias_var, state.log_w,
+            lookup=ctx.table.lookup, settings=s, sensor_noise_ut=ctx.sensor_noise_ut, return_chi2=True,
         )
-        ll = ll + llf
-        state = state.replace(bias_ut=bias, bias_var_ut2=bias_var)
-        field_used = True
+        gated = False
+        if s.field_gate is not None:
+            outliers = tracker.outliers + 1 if chi2 > s.field_gate else 0
+            tracker = dataclasses.replace(tracker, outliers=outliers)
+            gated = outliers >= s.field_gate_after
+        if not gated:
+            ll = ll + llf
+            state = state.replace(bias_ut=bias, bias_var_ut2=bias_var)
+            field_used = True
     if np.any(np.isnan(ll)):
         raise ConvergenceError("log-likelihood is NaN")
     log_w, log_total = normalise_log_weights(state.log_w + ll)
@@ -182,7 +202,7 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
             lost = True
         value = max(log_total, tracker.level - s.recovery_drop) if tracker.count else log_total
         level = value if tracker.count == 0 else (1 - s.recovery_rate) * tracker.level + s.recovery_rate * value
-        tracker = RecoveryTracker(level=float(level), count=tracker.count + 1)
+        tracker = RecoveryTracker(level=float(level), count=tracker.count + 1, outliers=tracker.outliers)
     resampled = False
     if effective_sample_size(state.log_w) < s.ess_threshold * state.n:
         state = _resample(state, ctx, rng)

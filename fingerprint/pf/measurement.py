@@ -163,7 +163,8 @@ def _get(registry, name, what):
         raise ConfigError(f"unknown {what} {name!r}; expected one of {sorted(registry)}") from None
 
 
-def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, lookup, settings, sensor_noise_ut):
+def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, lookup, settings, sensor_noise_ut,
+                         return_chi2=False):
     """Tempered field log-likelihood of every particle and its bias update.
 
     Parameters
@@ -182,6 +183,9 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, look
     -------
     log_lik : (N,) float
     bias_ut, bias_var_ut2 : (N, 3) float, updated
+    chi2 : float, only with ``return_chi2``: weighted mean over the covered
+        particles of ``r**2 / (V + tau P)`` per feature (about 1 when the
+        field matches the map as the model expects; NaN when none is covered)
     """
     s = settings
     feats = _get(FEATURE_SETS, s.feature_set, "feature set")
@@ -216,4 +220,11 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, look
         else:
             neutral = 0.0
         ll = np.where(covered, ll, neutral)
+    if return_chi2:
+        chi2 = np.nan
+        if np.any(covered):
+            wc = np.exp(log_w[covered] - log_w[covered].max())
+            d2 = np.mean(r[covered] ** 2 / s2[covered], axis=1)
+            chi2 = float(wc @ d2 / wc.sum())
+        return ll, new_b, new_p, chi2
     return ll, new_b, new_p

@@ -28,7 +28,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["GraphTables", "graph_tables", "move"]
+__all__ = ["GraphTables", "graph_tables", "move", "edge_point"]
 
 _EPS_M = 1e-9
 
@@ -44,6 +44,12 @@ class GraphTables:
         direction (node is ``edges[e, 0]``), -1 otherwise
     out_cos, out_sin : (K, D) float, unit vector of leaving along the edge
     start_offset_m : (K, D) float, offset of the node on that edge (0 or length)
+    pad_prior : (K, D) float, 0 for a real slot, -inf for padding
+    dead_end : (K,) bool, node of degree 1 (the way back is the only way
+        and gets prior 1)
+    out_cs : (K, 2, D) float, ``out_cos`` and ``out_sin`` stacked (one gather)
+    edge_tab : (E, 5) float, per edge unit x, unit y, length (m), start x, y (one gather)
+    end_node : (E, 2) int64, node reached travelling forward / backward
     """
 
     cand: np.ndarray
@@ -51,6 +57,11 @@ class GraphTables:
     out_cos: np.ndarray
     out_sin: np.ndarray
     start_offset_m: np.ndarray
+    pad_prior: np.ndarray
+    dead_end: np.ndarray
+    out_cs: np.ndarray
+    edge_tab: np.ndarray
+    end_node: np.ndarray
 
 
 def graph_tables(graph):
@@ -69,7 +80,25 @@ def graph_tables(graph):
     out_cos = np.where(valid, graph.unit[c, 0] * out_dir, 0.0)
     out_sin = np.where(valid, graph.unit[c, 1] * out_dir, 0.0)
     start = np.where(leaves_forward, 0.0, graph.length_m[c])
-    return GraphTables(cand, out_dir, out_cos, out_sin, start)
+    pad_prior = np.where(valid, 0.0, -np.inf)
+    edge_tab = np.zeros((graph.n_edges, 5))
+    edge_tab[:, 0:2] = graph.unit
+    edge_tab[:, 2] = graph.length_m
+    edge_tab[:, 3:5] = graph.nodes_xy[graph.edges[:, 0]]
+    end_node = np.ascontiguousarray(graph.edges[:, ::-1], dtype=np.int64)
+    dead_end = deg == 1
+    out_cs = np.ascontiguousarray(np.stack([out_cos, out_sin], axis=1))
+    return GraphTables(
+        cand=cand, out_dir=out_dir, out_cos=out_cos, out_sin=out_sin, start_offset_m=start, pad_prior=pad_prior,
+        dead_end=dead_end, out_cs=out_cs, edge_tab=edge_tab, end_node=end_node,
+    )
+
+
+def edge_point(tables, edge, offset_m):
+    """Plan positions (N, 2) of graph positions whose offsets are already
+    within their edges (``FloorGraph.point`` without the clip, one gather)."""
+    t = np.take(tables.edge_tab, edge, axis=0)
+    return t[:, 3:5] + t[:, 0:2] * offset_m[:, None]
 
 
 def _log_prior(p):
@@ -96,7 +125,10 @@ def move(state, length_m, heading_rad, *, graph, tables, settings, rng, earth_to
     """
     s = settings
     n = state.n
-    z = rng.standard_normal((4, n))
+    # all random numbers of the update in two calls (float32 normals are
+    # plenty for the jitter); the uniforms are reused below
+    z = rng.standard_normal((3, n), dtype=np.float32)
+    u = rng.random(n)
     # nuisance random walks
     hoff = state.heading_offset_rad
     if s.heading_rw_rad > 0:
@@ -104,71 +136,89 @@ def move(state, length_m, heading_rad, *, graph, tables, settings, rng, earth_to
     scale = state.scale
     if s.scale_rw > 0:
         scale = np.clip(scale + s.scale_rw * z[1], 0.5, 1.5)
-    hp = heading_rad + earth_to_plan_rad + hoff
+    hp = hoff + (heading_rad + earth_to_plan_rad)
     ch, sh = np.cos(hp), np.sin(hp)
     dist = length_m * scale
-    if s.length_sigma_frac > 0:
-        dist = dist * (1.0 + s.length_sigma_frac * z[2])
-    if s.length_sigma_m > 0:
-        dist = dist + s.length_sigma_m * z[3]
-    remaining = np.maximum(dist, 0.0)
+    # relative and absolute length noise: one Gaussian with both variances,
+    # L s (1 + f e1) + m e2  ~  L s + sqrt((L s f)^2 + m^2) e
+    f, m = s.length_sigma_frac, s.length_sigma_m
+    if f > 0 or m > 0:
+        sd = np.sqrt((dist * f) ** 2 + m * m) if f > 0 else m
+        dist += sd * z[2]
+    remaining = np.maximum(dist, 0.0, out=dist)
 
     kappa = s.heading_kappa
     lp_rev = _log_prior(s.reverse_prior)
     edge = state.edge.copy()
-    off = state.offset_m.copy()
-    direc = state.direction.copy()
 
     # decision 1: go on or turn back on the current edge.
     # s_on = kappa (c - 1), s_back = kappa (-c - 1) + log p_rev, so with
     # x = exp(s_back - s_on): P(back) = x / (1 + x), lse = s_on + log1p(x)
-    unit = graph.unit[edge]
-    cosf = (ch * unit[:, 0] + sh * unit[:, 1]) * direc
+    et = np.take(tables.edge_tab, edge, axis=0)  # (N, 5)
+    direc = state.direction
+    cosf = (ch * et[:, 0] + sh * et[:, 1]) * direc
     x = np.exp(lp_rev - 2.0 * kappa * cosf)
-    u = rng.random(n)
-    back = u * (1.0 + x) < x
+    p_back = x / (1.0 + x)
+    back = u < p_back
+    # the uniform, given the branch taken, is uniform again on [0, 1):
+    # reuse it for the first node choice (one uniform draw per update)
+    u = np.where(back, u / np.maximum(p_back, 1e-300), (u - p_back) / np.maximum(1.0 - p_back, 1e-300))
+    np.clip(u, 0.0, np.nextafter(1.0, 0.0), out=u)
     direc = np.where(back, -direc, direc).astype(np.int8)
     log_lik = np.minimum(0.0, kappa * (cosf - 1.0) + np.log1p(x))
 
     # travel, choosing an edge at each node reached (inverse-CDF draw over
-    # the padded incident edges)
-    moving = np.flatnonzero(remaining > 0)
-    lengths = graph.length_m
+    # the padded incident edges). First leg on the full arrays.
+    o = state.offset_m
+    to_end = np.where(direc > 0, et[:, 2] - o, o)
+    stp = np.minimum(remaining, to_end)
+    off = o + direc * stp
+    remaining -= stp
+    moving = np.flatnonzero(remaining > _EPS_M)
+    d_max = tables.cand.shape[1]
+    # scores are <= 0 and the best real option scores >= -2 kappa, so
+    # exp() cannot underflow for every option unless kappa is huge
+    need_top = 2.0 * kappa > 600.0
+    fresh = False
     for _ in range(max_hops):
         if moving.size == 0:
             break
-        e = edge[moving]
-        o = off[moving]
-        dr = direc[moving]
-        el = lengths[e]
-        to_end = np.where(dr > 0, el - o, o)
-        rem = remaining[moving]
+        e = np.take(edge, moving)
+        dr = np.take(direc, moving)
+        node = np.take(tables.end_node, 2 * e + (dr < 0))
+        cand = np.take(tables.cand, node, axis=0)  # (m, D)
+        prior = np.where(cand == e[:, None], np.where(np.take(tables.dead_end, node), 0.0, lp_rev)[:, None],
+                         np.take(tables.pad_prior, node, axis=0))
+        cs = np.take(tables.out_cs, node, axis=0)  # (m, 2, D)
+        score = np.take(ch, moving)[:, None] * cs[:, 0]
+        score += np.take(sh, moving)[:, None] * cs[:, 1]
+        score -= 1.0
+        score *= kappa
+        score += prior
+        if need_top:
+            top = score.max(axis=1)
+            score -= top[:, None]
+        else:
+            top = 0.0
+        cdf = np.cumsum(np.exp(score), axis=1)
+        total = cdf[:, -1]
+        uu = rng.random(moving.size) if fresh else np.take(u, moving)
+        fresh = True
+        slot = np.count_nonzero(cdf < (uu * total)[:, None], axis=1)
+        flat = node * d_max + np.minimum(slot, d_max - 1)
+        log_lik[moving] += np.minimum(0.0, top + np.log(total))
+        e = np.take(tables.cand, flat)
+        dr = np.take(tables.out_dir, flat)
+        o = np.take(tables.start_offset_m, flat)
+        edge[moving] = e
+        direc[moving] = dr
+        rem = np.take(remaining, moving)
+        to_end = np.where(dr > 0, np.take(tables.edge_tab[:, 2], e) - o, o)
         stp = np.minimum(rem, to_end)
         off[moving] = o + dr * stp
-        rem = rem - stp
-        cross = rem > _EPS_M
-        remaining[moving] = np.where(cross, rem, 0.0)
-        moving = moving[cross]
-        if moving.size == 0:
-            break
-        e = e[cross]
-        node = np.where(dr[cross] > 0, graph.edges[e, 1], graph.edges[e, 0])
-        cand = tables.cand[node]  # (m, D)
-        valid = cand >= 0
-        prior = np.where(cand == e[:, None], lp_rev, 0.0)
-        prior = np.where(valid, prior, -np.inf)
-        prior = prior - prior.max(axis=1, keepdims=True)
-        cosang = ch[moving, None] * tables.out_cos[node] + sh[moving, None] * tables.out_sin[node]
-        score = kappa * (cosang - 1.0) + prior
-        top = score.max(axis=1)
-        cdf = np.cumsum(np.exp(score - top[:, None]), axis=1)
-        total = cdf[:, -1]
-        slot = np.sum(cdf < rng.random(moving.size)[:, None] * total[:, None], axis=1)
-        slot = np.minimum(slot, cand.shape[1] - 1)
-        log_lik[moving] += np.minimum(0.0, top + np.log(total))
-        edge[moving] = cand[np.arange(moving.size), slot]
-        direc[moving] = tables.out_dir[node, slot]
-        off[moving] = tables.start_offset_m[node, slot]
+        rem -= stp
+        remaining[moving] = rem
+        moving = moving[rem > _EPS_M]
     if not s.use_heading_likelihood:
         log_lik = np.zeros(n)
     new = state.replace(edge=edge, offset_m=off, direction=direc, heading_offset_rad=hoff, scale=scale)

@@ -62,6 +62,19 @@ class FilterSettings:
         when the map's variance already holds a between-walk part that the
         bias state models)
     bias_rw_ut : random walk of the bias per update
+    bias_corr_updates : None = the bias is a per-walk constant (plus the
+        random walk ``bias_rw_ut``); a number T = the bias is a first-order
+        autoregressive process towards 0 with correlation time T updates and
+        stationary 1-sigma ``bias_sigma0_ut`` / ``bias_up_sigma0_ut``
+        (``b <- phi b + w``, ``phi = exp(-1/T)``), integrated out by the same
+        per-particle Kalman update: the map mismatch is correlated over
+        about ten steps
+    field_gate : None = no gate; a number G = skip the field update (walls
+        only) while the weighted mean normalised squared innovation
+        ``r**2 / (V + tau P)`` per feature has exceeded G for
+        ``field_gate_after`` consecutive updates (a walk whose field does not
+        match the map at all)
+    field_gate_after : consecutive outlying updates before the gate closes
 
     Resampling and recovery (``fingerprint.pf.loop``)
     -------------------------------------------------
@@ -109,6 +122,9 @@ class FilterSettings:
     bias_up_sigma0_ut: float | None = 10.0
     map_var_scale: float = 1.0
     bias_rw_ut: float = 0.05
+    bias_corr_updates: float | None = None
+    field_gate: float | None = None
+    field_gate_after: int = 3
     # resampling and recovery
     resampler: str = "systematic"
     ess_threshold: float = 0.5
@@ -161,6 +177,12 @@ class FilterSettings:
             bad("likelihood", f"one of {sorted(LIKELIHOODS)}")
         if self.resampler not in RESAMPLERS:
             bad("resampler", f"one of {sorted(RESAMPLERS)}")
+        for name in ("bias_corr_updates", "field_gate"):
+            v = getattr(self, name)
+            if v is not None and not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
+                bad(name, "None or a finite number > 0")
+        if not (isinstance(self.field_gate_after, int) and self.field_gate_after >= 1):
+            bad("field_gate_after", "an integer >= 1")
         if not (isinstance(self.recovery_warmup, int) and self.recovery_warmup >= 0):
             bad("recovery_warmup", "an integer >= 0")
 

@@ -51,7 +51,7 @@ class ParticleState:
     def take(self, index) -> "ParticleState":
         """The particles at ``index`` ((M,) int), log-weights reset to uniform."""
         index = np.asarray(index, dtype=np.int64)
-        arrays = {f.name: getattr(self, f.name)[index] for f in fields(self)}
+        arrays = {f.name: np.take(getattr(self, f.name), index, axis=0) for f in fields(self)}
         arrays["log_w"] = np.full(index.shape[0], -np.log(index.shape[0]))
         return ParticleState(**arrays)
 

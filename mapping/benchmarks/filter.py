@@ -28,6 +28,15 @@ def add_arguments(parser):
     parser.add_argument("--start", default=None, metavar="X,Y[,SIGMA]",
                         help="start for --log (default: global mode)")
     parser.add_argument("--seed", type=int, default=0, metavar="N", help="random seed (default 0)")
+    parser.add_argument("--real", default=None, metavar="SITE_DIR",
+                        help="instead of the speed runs: field vs no-field accuracy on the real floors of "
+                             "SITE_DIR (site.json, <floor>/split.json; maps built from the survey split and "
+                             "cached, test walks started at their first checkpoint); minutes per floor")
+    parser.add_argument("--real-seeds", default="0,1,2", metavar="S[,S...]",
+                        help="filter seeds for --real (default 0,1,2)")
+    parser.add_argument("--real-cache", default=None, metavar="DIR",
+                        help="where --real keeps its maps (default SITE_DIR/.lodemap_cache)")
+    parser.add_argument("--real-floors", default=None, metavar="F[,F...]", help="floors for --real (default all)")
 
 
 def synthetic_floor(*, nx=61, ny=41, spacing_m=1.0, seed=0):
@@ -122,6 +131,16 @@ def run(args):
     from fingerprint.errors import ConfigError
     from fingerprint.localise import FilterSettings, localise
 
+    if getattr(args, "real", None):
+        from .filter_real import run_real
+
+        try:
+            seeds = tuple(int(x) for x in str(args.real_seeds).split(",") if x.strip())
+        except ValueError:
+            raise ConfigError(f"--real-seeds: expected comma-separated integers, got {args.real_seeds!r}") from None
+        floors = None if not args.real_floors else [f.strip() for f in args.real_floors.split(",") if f.strip()]
+        run_real(args.real, floors=floors, seeds=seeds or (0,), cache_dir=args.real_cache)
+        return 0
     try:
         counts = [int(x) for x in str(args.particles).split(",") if x.strip()]
     except ValueError:

@@ -1,0 +1,112 @@
+"""``lodemap bench filter --real DIR``: the filter with and without the field
+on real floors (a site folder such as shared ``real_data/siteA``).
+
+For every floor: a map from the floor's survey split
+(``mapping.mapbuild.build_floor_map``, cached as ``<cache>/<floor>.map``),
+each test walk started at its first checkpoint (sigma 1.5 m), errors at the
+later checkpoints, several seeds. Prints median and 95th percentile error
+per floor and pooled for every filter variant. Minutes per floor, so not a
+unit test.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["VARIANTS", "run_real"]
+
+#: variant name -> FilterSettings changes from the default preset
+VARIANTS = {
+    "no-field": {"use_field": False},
+    "field": {},
+}
+
+
+def _floor_data(site_dir, floor, cache_dir, *, seed=0):
+    from fingerprint.logio import read_checkpoints, read_walk_log
+    from fingerprint.mapfile import load_map, save_map
+    from fingerprint.pipeline import process_walk
+    from mapping.mapbuild import build_floor_map
+    from mapping.walkset import find_walks, load_split
+
+    d = Path(site_dir) / floor
+    split = load_split(d / "split.json")
+    cache = Path(cache_dir) / f"{floor}.map"
+    if cache.exists():
+        fmap = load_map(cache)
+    else:
+        survey = find_walks([d], split=split, part="survey")
+        fmap = build_floor_map(Path(site_dir) / "site.json", floor, survey, seed=seed, progress=False)
+        cache.parent.mkdir(parents=True, exist_ok=True)
+        save_map(cache, fmap)
+    tests = []
+    for name in split["test"]:
+        log = d / f"{name}.log.csv"
+        if not log.exists():
+            log = d / f"{name}.log.csv.gz"
+        tests.append((name, process_walk(read_walk_log(log)), read_checkpoints(d / f"{name}.checkpoints.csv")))
+    return fmap, tests
+
+
+def walk_errors(fmap, tests, settings, *, seeds=(0, 1, 2)):
+    """Errors (m) at the later checkpoints of every test walk, every seed.
+
+    Returns
+    -------
+    dict walk name -> (S, K) float array (S seeds, K checkpoints after the first)
+    """
+    from fingerprint.localise import localise
+
+    out = {}
+    for name, w, cp in tests:
+        rows = []
+        for sd in seeds:
+            tr = localise(w, fmap, settings=settings, start_xy=cp.xy[0], start_sigma_m=1.5,
+                          start_time_s=cp.t[0], rng=sd)
+            est = tr.at(cp.t[1:]) if tr.t.size else np.repeat(cp.xy[:1], cp.n - 1, axis=0)
+            rows.append(np.hypot(*(est - cp.xy[1:]).T))
+        out[name] = np.array(rows)
+    return out
+
+
+def _stats(errs):
+    e = np.concatenate([v.ravel() for v in errs.values()]) if errs else np.zeros(0)
+    return float(np.median(e)), float(np.percentile(e, 95))
+
+
+def run_real(site_dir, *, floors=None, variants=None, seeds=(0, 1, 2), cache_dir=None, json_out=None,
+             base="default"):
+    """Run the variants on the floors and print the table; returns a dict
+    ``{variant: {floor: (median, p95), "pooled": (median, p95)}}``."""
+    from fingerprint.localise import preset
+
+    site_dir = Path(site_dir)
+    if floors is None:
+        floors = sorted(f["floor"] for f in json.loads((site_dir / "site.json").read_text())["floors"])
+    cache_dir = Path(cache_dir) if cache_dir else site_dir / ".lodemap_cache"
+    variants = variants or VARIANTS
+    data = {f: _floor_data(site_dir, f, cache_dir) for f in floors}
+    table = {}
+    print(f"{'variant':<28}" + "".join(f"{f:>14}" for f in floors) + f"{'pooled':>14}   (median/p95 m, seeds {list(seeds)})")
+    for name, changes in variants.items():
+        s = preset(base, **changes)
+        per = {}
+        pooled = {}
+        for f in floors:
+            fmap, tests = data[f]
+            errs = walk_errors(fmap, tests, s, seeds=seeds)
+            per[f] = _stats(errs)
+            pooled.update({f"{f}/{k}": v for k, v in errs.items()})
+        per["pooled"] = _stats(pooled)
+        table[name] = per
+        print(f"{name:<28}" + "".join(f"{per[f][0]:>7.2f}/{per[f][1]:<6.2f}" for f in floors)
+              + f"{per['pooled'][0]:>7.2f}/{per['pooled'][1]:<6.2f}", flush=True)
+    if json_out:
+        from fingerprint._atomic import write_json_atomic
+
+        write_json_atomic(json_out, table)
+    return table
