@@ -557,3 +557,34 @@ def test_cli_robot_only_and_plan_graph(tmp_path):
     summary = json.loads((out2 / "simulation.json").read_text())
     assert summary["floors"]["L1"]["route_graph"] == "graph built from the plan"
     assert len(list((out2 / "L1" / "survey").glob("hh_*.track.csv"))) >= 2
+
+
+def test_calibrated_phone_residual_is_new_every_session(small_walks):
+    # FORMATS.md §1: even calibrated data keep residual errors that "differ
+    # between devices and sessions"; the same phone on two walks must not
+    # carry the same offset (it would look like field to a map)
+    by_phone = {}
+    for f, j, w in small_walks:
+        dev = w.params["device"]
+        if not dev["calibrated"]:
+            continue
+        by_phone.setdefault(dev["name"], []).append(np.asarray(dev["mag_residual"]))
+        # the log is the distorted true field plus that session's offset
+        # (noise 0.4 µT and quantisation 0.15 µT as set)
+        resid = w.log.mag - w.truth.mag_device_ut @ np.asarray(dev["mag_soft"]).T
+        np.testing.assert_allclose(resid.mean(axis=0), dev["mag_residual"], atol=0.1)
+    pairs = [v for v in by_phone.values() if len(v) >= 2]
+    assert pairs, "no phone used twice"
+    for v in pairs:
+        assert np.abs(v[0] - v[1]).max() > 0.05
+
+
+def test_session_residual_spread():
+    # Device.for_session draws N(0, sd) per axis: the sample sd of many
+    # sessions matches it (chi-square bound, common practice, no source)
+    phone = Device.random_phone(np.random.default_rng(5))
+    rng = np.random.default_rng(6)
+    res = np.array([phone.for_session(rng, residual_sd_ut=1.5).mag_residual for _ in range(400)])
+    assert res.std(axis=0) == pytest.approx(np.full(3, 1.5), rel=0.12)
+    robot = Device.random_robot(np.random.default_rng(5))
+    assert robot.for_session(rng) is robot  # a bare sensor has no device calibration

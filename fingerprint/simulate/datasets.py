@@ -53,6 +53,9 @@ class DatasetSettings:
     test_length_m, robot_test_length_m : float
     rate_hz : float, sample rate of the logs
     survey_lateral_sd_m, test_lateral_sd_m : float, sideways wander
+    session_residual_sd_ut : float, µT, 1-sigma per axis of a calibrated
+        phone's residual offset, drawn anew for every walk
+        (:meth:`~fingerprint.simulate.sensors.Device.for_session`)
     """
 
     platforms: tuple = ("handheld", "robot")
@@ -70,6 +73,7 @@ class DatasetSettings:
     test_lateral_sd_m: float = 0.2
     checkpoint_radius_m: float = 0.9
     checkpoint_spacing_m: float = 12.0
+    session_residual_sd_ut: float = 1.5
 
     def __post_init__(self):
         bad = set(self.platforms) - {"handheld", "robot"}
@@ -263,6 +267,11 @@ def simulate_job(job, floor, field_model, route_graph, *, free=None, seed=0, set
         device = robots[job.device_id]
         who = f"robot-{job.walker_id}"
     device = Device(**{**device.__dict__, "rate_hz": float(settings.rate_hz)})
+    # the session's own residual calibration offset, from a generator of its
+    # own (so the walk itself does not depend on it)
+    session_rng = np.random.default_rng(
+        np.random.SeedSequence(job.seed.entropy, spawn_key=tuple(job.seed.spawn_key) + (7919,)))
+    device = device.for_session(session_rng, residual_sd_ut=settings.session_residual_sd_ut)
     traj = walker.walk(poly, rng=rng, free=free)
     meta = {
         "floor": floor,

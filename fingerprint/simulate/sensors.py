@@ -8,7 +8,8 @@ trajectory.
   the device's soft iron (a matrix near identity) and hard iron (an offset),
   plus noise and quantisation. A phone reports a field from which it has
   already removed most of the hard iron (``magnetometer_calibrated: yes``,
-  a residual offset of a few µT stays) and also the raw field; a robot's
+  a residual offset of a few µT stays, new in every session:
+  :meth:`Device.for_session`) and also the raw field; a robot's
   bare sensor reports the raw field (``no``);
 - timestamps at a nominal rate with jitter;
 - robot wheel odometry: body-frame increments with a scale error, random
@@ -24,7 +25,7 @@ iron from motors and frame up to ~100 µT; odometry scale errors of 1-2 %.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 
 import numpy as np
 from scipy.spatial.transform import Rotation, Slerp
@@ -102,6 +103,25 @@ class Device:
             odom_scale=float(1 + rng.normal(0, 0.015)), odom_yaw_scale=float(1 + rng.normal(0, 0.02)),
             odom_slip=0.03,
         )
+
+    def for_session(self, rng, *, residual_sd_ut=1.5):
+        """The device as it is in one session (one walk).
+
+        A phone keeps re-running its own magnetometer calibration, so the
+        offset it leaves in a calibrated field is new every session
+        (FORMATS.md: residual errors "differ between devices and sessions");
+        its soft iron and raw hard iron belong to the hardware and stay. A
+        bare sensor (``calibrated`` False) is returned as it is.
+
+        Parameters
+        ----------
+        rng : numpy.random.Generator
+        residual_sd_ut : float, µT, 1-sigma per axis of the session's
+            residual offset (common practice, no source: a few µT)
+        """
+        if not self.calibrated:
+            return self
+        return replace(self, mag_residual=tuple(rng.normal(0.0, residual_sd_ut, 3)))
 
     def to_json(self):
         d = asdict(self)
