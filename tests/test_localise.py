@@ -241,3 +241,34 @@ def test_nan_field_samples_are_dropped_not_propagated(floor):
     b = localise(without, fm, settings=s, start_xy=xy[0], rng=2)
     np.testing.assert_array_equal(a.xy, b.xy)
     assert np.all(np.isfinite(a.xy))
+
+
+def _gate_step(fm, settings, obs, tracker, seed=0):
+    loc = Localiser(fm, settings=settings, start_xy=(9.0, 6.0), rng=seed)
+    return filter_step(loc.state, 0.7, 0.2, obs, loc._ctx, np.random.default_rng(seed), tracker)
+
+
+def test_field_gate_closes_after_consecutive_outliers_and_resets(floor):
+    # an observation 60 µT off every map value is an outlier; with
+    # field_gate_after - 1 outliers already counted the gate closes and the
+    # update equals the no-field update for the same draws (walls only);
+    # before that the field is applied; a matching observation resets the
+    # count (common practice, no source).
+    _, fm = floor
+    s = FilterSettings(n_particles=500, ess_threshold=0.0, field_gate=4.0, field_gate_after=3)
+    far = window_observation(np.array([[70.0, 75.0, 20.0]] * 5), np.zeros(5))
+    nofield, _, _ = _gate_step(fm, dataclasses.replace(s, use_field=False), far, RecoveryTracker())
+    closed, tr, _ = _gate_step(fm, s, far, RecoveryTracker(count=5, outliers=2))
+    assert tr.outliers == 3
+    np.testing.assert_array_equal(closed.log_w, nofield.log_w)
+    np.testing.assert_array_equal(closed.bias_ut, nofield.bias_ut)
+    still_open, tr, _ = _gate_step(fm, s, far, RecoveryTracker(count=5, outliers=0))
+    assert tr.outliers == 1
+    assert not np.allclose(still_open.log_w, nofield.log_w)
+    # the map's own value at the start: no outlier
+    mean, _, _ = fm.lookup(np.array([[9.0, 6.0]]))
+    c, sn = np.cos(-E2P), np.sin(-E2P)  # plan -> earth
+    e = [c * mean[0, 0] - sn * mean[0, 1], sn * mean[0, 0] + c * mean[0, 1], mean[0, 2]]
+    near = window_observation(np.array([e] * 5), np.zeros(5))
+    _, tr, _ = _gate_step(fm, s, near, RecoveryTracker(count=5, outliers=2))
+    assert tr.outliers == 0

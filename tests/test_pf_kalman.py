@@ -69,6 +69,8 @@ def linear_settings(**kw):
 
 
 def run_both(settings, *, steps=30, x0=60.0, p0=4.0, bias_ut=0.0, seed=0):
+    # with settings.bias_corr_updates = T the bias is simulated and modelled
+    # as b_k = phi b_{k-1} + w_k, phi = exp(-1/T), var(w) = (1 - phi^2) sb^2
     """Simulate the linear model once; run the particle filter and a
     filterpy Kalman filter on the same data; return per-step (pf_mean,
     pf_sd, kf_mean, kf_sd)."""
@@ -81,9 +83,12 @@ def run_both(settings, *, steps=30, x0=60.0, p0=4.0, bias_ut=0.0, seed=0):
     kf.x = np.zeros((dim, 1))
     kf.x[0, 0] = x0
     kf.P = np.diag([p0, sb**2][:dim])
-    kf.F = np.eye(dim)
+    T = settings.bias_corr_updates
+    phi = 1.0 if T is None else float(np.exp(-1.0 / T))
+    qb = (1.0 - phi**2) * sb**2
+    kf.F = np.diag([1.0, phi][:dim])
     kf.B = np.eye(dim)[:, :1]
-    kf.Q = np.diag([q**2, 0.0][:dim])
+    kf.Q = np.diag([q**2, qb][:dim])
     kf.H = np.array([[SLOPE, 1.0][:dim]])
     kf.R = np.array([[r]])
     loc = Localiser(corridor_map(), settings=settings, start_xy=(x0, 0.0), start_sigma_m=np.sqrt(p0), rng=seed)
@@ -91,6 +96,8 @@ def run_both(settings, *, steps=30, x0=60.0, p0=4.0, bias_ut=0.0, seed=0):
     out = []
     for k in range(steps):
         x = x + 1.0 + q * rng.standard_normal()
+        if T is not None:
+            bias_ut = phi * bias_ut + np.sqrt(qb) * rng.standard_normal()
         y = B0 + SLOPE * x + bias_ut + settings.sensor_noise_ut * rng.standard_normal()
         loc.push(float(k + 1), np.array([BX, 0.0, y]), 0.0)
         est = loc.push_motion(float(k + 1), 1.0, 0.0)
@@ -126,6 +133,20 @@ def test_field_bias_state_matches_two_state_kalman_filter():
     pf_m, pf_s, kf_m, kf_s = res.T
     assert np.all(np.abs(pf_m - kf_m) <= 0.05 * kf_s)
     assert np.all(np.abs(pf_s - kf_s) <= 0.05 * kf_s)
+
+
+def test_autoregressive_bias_matches_kalman_filter_with_ar1_state():
+    # y = H x + b_k + v with b_k a first-order autoregression (correlation
+    # time T updates): the per-particle Kalman prediction b <- phi b,
+    # P <- phi^2 P + (1 - phi^2) sb^2 and update must give the posterior of
+    # the Kalman filter on [x, b] with F = diag(1, phi) (filterpy, reference
+    # library; AR(1) state model, common practice, no source).
+    res = run_both(linear_settings(bias_sigma0_ut=3.0, bias_corr_updates=8.0), bias_ut=2.0, seed=4, steps=40)
+    pf_m, pf_s, kf_m, kf_s = res.T
+    assert np.all(np.abs(pf_m - kf_m) <= 0.05 * kf_s)
+    assert np.all(np.abs(pf_s - kf_s) <= 0.05 * kf_s)
+    # the field did something: the spread shrank below the prior's 2 m
+    assert kf_s[-1] < 0.9 * 2.0
 
 
 def test_without_field_spread_grows_like_random_walk():
