@@ -44,7 +44,7 @@ def add_arguments(parser):
     parser.add_argument("--jobs", type=int, default=1, metavar="N",
                         help="parallel runs on this machine with joblib (default: 1; -1 = all cores)")
     parser.add_argument("--scheduler", metavar="ADDRESS",
-                        help="address of a running Dask scheduler (e.g. tcp://10.0.0.5:8786): runs go to its "
+                        help="address of a running Dask scheduler (e.g. tcp://scheduler-host:8786): runs go to its "
                              "workers, which must see the same walk and map paths; --jobs is then ignored")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
 
