@@ -38,6 +38,7 @@ __all__ = [
     "raster_map",
     "build_floor_map",
     "plan_rotation_matrix",
+    "track_heading_offset",
 ]
 
 MAP_META_VERSION = 1
@@ -242,7 +243,45 @@ def walk_samples(walk, positions, *, earth_to_plan_rad, spacing_m=0.25, tilt=Fal
     }
 
 
-def collect_samples(walks, *, plan=None, earth_to_plan_rad, spacing_m=0.25, positions=None, progress=False):
+def track_heading_offset(walk, track, *, earth_to_plan_rad, min_speed_m_s=0.3):
+    """The constant heading error of a processed walk against a track that
+    knows the device heading (a robot localised by lidar, a simulator's
+    truth): the circular mean of ``track heading - (walk heading +
+    earth_to_plan)`` over the samples inside the track's time span where
+    the track moves at least ``min_speed_m_s``.
+
+    The attitude holds magnetic north by one robust offset per walk; where
+    the steel of a building bends the field over much of a walk, that offset
+    is off by a few degrees (up to 12° on short simulated demo walks), which
+    turns the whole walk's horizontal field. A survey walk with a known
+    heading need not carry that error into the map.
+
+    Returns
+    -------
+    float, rad (add to ``earth_to_plan_rad`` for this walk), or None when
+    the track has no heading or too few moving samples
+    """
+    if track is None or track.heading_rad is None or track.t.size < 2:
+        return None
+    t = np.asarray(walk.t, float)
+    inside = (t >= track.t[0]) & (t <= track.t[-1])
+    if inside.sum() < 10:
+        return None
+    tt = t[inside]
+    c = np.interp(tt, track.t, np.cos(track.heading_rad))
+    s = np.interp(tt, track.t, np.sin(track.heading_rad))
+    vx = np.gradient(np.interp(tt, track.t, track.xy[:, 0]), tt)
+    vy = np.gradient(np.interp(tt, track.t, track.xy[:, 1]), tt)
+    moving = np.hypot(vx, vy) >= min_speed_m_s
+    ok = moving & np.isfinite(np.asarray(walk.heading_rad)[inside])
+    if ok.sum() < 10:
+        return None
+    d = np.arctan2(s, c)[ok] - (np.asarray(walk.heading_rad)[inside][ok] + earth_to_plan_rad)
+    return float(np.arctan2(np.sin(d).mean(), np.cos(d).mean()))
+
+
+def collect_samples(walks, *, plan=None, earth_to_plan_rad, spacing_m=0.25, positions=None, progress=False,
+                    heading_from_track=True):
     """Survey positions and stretch-averaged samples of many walks.
 
     Parameters
@@ -253,6 +292,11 @@ def collect_samples(walks, *, plan=None, earth_to_plan_rad, spacing_m=0.25, posi
     spacing_m : float
     positions : dict name -> SurveyPositions or (N, 2) array, optional;
         default :func:`mapping.survey.reconstruct_positions`
+    heading_from_track : bool
+        For walks whose positions come from a track with a heading column,
+        remove the walk's constant heading error against it
+        (:func:`track_heading_offset`); ``info["heading_corrections_deg"]``
+        lists them
 
     Returns
     -------
@@ -261,6 +305,7 @@ def collect_samples(walks, *, plan=None, earth_to_plan_rad, spacing_m=0.25, posi
     from .survey import reconstruct_positions
 
     parts, names, skipped = [], [], []
+    corrections = {}
     for w in _tqdm(walks, progress=progress, desc="survey positions", unit="walk"):
         if positions is not None and w.name in positions:
             pos = positions[w.name]
@@ -272,7 +317,13 @@ def collect_samples(walks, *, plan=None, earth_to_plan_rad, spacing_m=0.25, posi
             except DataError as err:
                 skipped.append({"walk": w.name, "reason": str(err)})
                 continue
-        smp = walk_samples(w.walk, pos, earth_to_plan_rad=earth_to_plan_rad, spacing_m=spacing_m)
+        angle = earth_to_plan_rad
+        if heading_from_track and w.track is not None and getattr(pos, "source", None) == "track":
+            dh = track_heading_offset(w.walk, w.track, earth_to_plan_rad=earth_to_plan_rad)
+            if dh is not None:
+                angle = earth_to_plan_rad + dh
+                corrections[w.name] = math.degrees(dh)
+        smp = walk_samples(w.walk, pos, earth_to_plan_rad=angle, spacing_m=spacing_m)
         if smp["xy"].shape[0] == 0:
             skipped.append({"walk": w.name, "reason": "no usable samples"})
             continue
@@ -291,7 +342,7 @@ def collect_samples(walks, *, plan=None, earth_to_plan_rad, spacing_m=0.25, posi
         sigma_m=cat["sigma_m"],
         heading_rad=cat["heading_rad"],
         n_raw=cat["n_raw"],
-        info={"skipped": skipped},
+        info={"skipped": skipped, "heading_corrections_deg": corrections},
     )
 
 
@@ -396,6 +447,7 @@ def build_floor_map(
     spacing_m=0.25,
     kernel_params=None,
     graph=None,
+    heading_from_track=True,
 ) -> FieldMap:
     """Build the field map of ``floor`` from survey walks.
 
@@ -412,6 +464,9 @@ def build_floor_map(
     spacing_m : float, walk distance per averaged survey sample
     kernel_params : dict or None, extra model parameters
     graph : FloorGraph or None (default: built from the plan)
+    heading_from_track : bool, correct each walk's constant heading error
+        from its track's heading where there is one (see
+        :func:`collect_samples`)
 
     Returns
     -------
@@ -432,7 +487,8 @@ def build_floor_map(
         graph = build_graph(plan)
     walks = load_walks(walk_files, use_track=use_track, progress=progress)
     angle, align = earth_to_plan_for(site, walks)
-    samples = collect_samples(walks, plan=plan, earth_to_plan_rad=angle, spacing_m=spacing_m, progress=progress)
+    samples = collect_samples(walks, plan=plan, earth_to_plan_rad=angle, spacing_m=spacing_m, progress=progress,
+                              heading_from_track=heading_from_track)
     xmin, ymin, xmax, ymax = plan.bounds
     model = fit_samples(
         samples, kernel=kernel, seed=seed, domain=((xmin, ymin), (xmax, ymax)), kernel_params=kernel_params
@@ -465,6 +521,8 @@ def build_floor_map(
             "kernel": kernel,
             "kernel_params": {k: v for k, v in (kernel_params or {}).items()},
             "use_track": bool(use_track),
+            "heading_from_track": bool(heading_from_track),
+            "heading_corrections_deg": samples.info.get("heading_corrections_deg", {}),
             "seed": int(seed),
         },
         "seed": int(seed),

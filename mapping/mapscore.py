@@ -19,7 +19,7 @@ from scipy.spatial import cKDTree
 
 from .mapbuild import collect_samples, earth_to_plan_for, fit_samples, load_walks
 
-__all__ = ["features_of", "residual_scores", "heldout_scores", "truth_scores"]
+__all__ = ["features_of", "walk_offsets", "residual_scores", "heldout_scores", "truth_scores"]
 
 COMPONENTS = ("b_x", "b_y", "b_up")
 FEATURES = ("b_up", "b_h", "b_total")
@@ -31,7 +31,34 @@ def features_of(b):
     return {"b_up": b[:, 2], "b_h": np.hypot(b[:, 0], b[:, 1]), "b_total": np.linalg.norm(b, axis=1)}
 
 
-def residual_scores(b_true, mean, var=None, noise_var=None, *, groups=None):
+def walk_offsets(residual, rotations, groups):
+    """Least-squares constant device-frame offset of each walk's residuals.
+
+    ``residual ≈ R_i o_w`` for the samples ``i`` of walk ``w`` with
+    ``R_i`` (device-to-plan rotations, orthogonal): the normal equations
+    reduce to ``o_w = mean_i(R_i^T r_i)``.
+
+    Parameters
+    ----------
+    residual : (N, 3) µT, measured minus mapped, plan frame
+    rotations : (N, 3, 3) device-to-plan (or heading-frame) rotations
+    groups : (N,) walk labels
+
+    Returns
+    -------
+    offsets : (W, 3) µT, device frame, one per walk in ``np.unique`` order
+    fitted : (N, 3) µT, ``R_i o_w`` of every sample (plan frame)
+    """
+    r = np.asarray(residual, float)
+    rot = np.asarray(rotations, float)
+    g = np.unique(np.asarray(groups), return_inverse=True)[1]
+    cnt = np.bincount(g)
+    local = np.einsum("nji,nj->ni", rot, r)  # R^T r
+    off = np.stack([np.bincount(g, weights=local[:, i]) / cnt for i in range(3)], axis=1)
+    return off, np.einsum("nij,nj->ni", rot, off[g])
+
+
+def residual_scores(b_true, mean, var=None, noise_var=None, *, groups=None, rotations=None, offset_var=None):
     """RMSE per component and feature, coverage within ±1 sd.
 
     Parameters
@@ -41,6 +68,14 @@ def residual_scores(b_true, mean, var=None, noise_var=None, *, groups=None):
     noise_var : (3,) float or None, added to ``var`` for a measurement's sd
     groups : (N,) walk labels or None; with them also the RMSE after
         removing each walk's mean residual (what a per-walk offset costs)
+    rotations : (N, 3, 3) or None; with ``groups``, also the scores after
+        removing each walk's constant device-frame offset fitted to its
+        residuals (:func:`walk_offsets`): a phone's residual calibration
+        error differs per walk and turns with the device, the map cannot
+        know it for a new walk, and a localiser estimates it as a bias
+    offset_var : (3,) µT² or None, the part of ``var`` that stands for
+        such between-walk offsets (``between_walk_var_`` of a GP model);
+        taken out of the sd for the offset-removed ±1 sd share
 
     Returns
     -------
@@ -61,6 +96,20 @@ def residual_scores(b_true, mean, var=None, noise_var=None, *, groups=None):
         mu = np.stack([np.bincount(g, weights=r[:, i]) / cnt for i in range(3)], axis=1)
         rr = r - mu[g]
         out["rmse_walk_mean_removed_ut"] = {c: float(np.sqrt(np.mean(rr[:, i] ** 2))) for i, c in enumerate(COMPONENTS)}
+        if rotations is not None:
+            off, fitted = walk_offsets(r, rotations, groups)
+            ro = r - fitted
+            out["rmse_offset_removed_ut"] = {c: float(np.sqrt(np.mean(ro[:, i] ** 2))) for i, c in enumerate(COMPONENTS)}
+            fo = features_of(np.asarray(b_true, float) - fitted)
+            out["feature_rmse_offset_removed_ut"] = {k: float(np.sqrt(np.mean((fo[k] - fm[k]) ** 2))) for k in FEATURES}
+            out["walk_offsets_ut"] = off.tolist()
+            if var is not None:
+                v = np.asarray(var, float)
+                if offset_var is not None:
+                    v = np.clip(v - np.asarray(offset_var, float)[None, :], 0.0, None)
+                sdo = np.sqrt(v + (0.0 if noise_var is None else np.asarray(noise_var, float)[None, :]))
+                out["within_1sd_offset_removed"] = {c: float(np.mean(np.abs(ro[:, i]) <= sdo[:, i]))
+                                                    for i, c in enumerate(COMPONENTS)}
     return out
 
 
@@ -78,6 +127,7 @@ def heldout_scores(
     progress=False,
     log=None,
     reference_fields=None,
+    heading_from_track=True,
 ):
     """Fit each kernel on the survey walks and score it on the test walks.
 
@@ -91,6 +141,9 @@ def heldout_scores(
     reference_fields : dict name -> callable ``f(xy (N, 2)) -> (N, 3)``,
         optional; scored like a kernel (e.g. a simulator's true field: the
         error no map can go below, given the processed test walks)
+    heading_from_track : bool, survey and test walks with a heading track
+        have their constant heading error removed (as a map build does, see
+        :func:`mapping.mapbuild.collect_samples`)
 
     Returns
     -------
@@ -104,8 +157,10 @@ def heldout_scores(
     survey = load_walks(survey_files, use_track=use_track, progress=progress, desc="survey walks")
     test = load_walks(test_files, use_track=use_track, progress=progress, desc="test walks")
     angle, align = earth_to_plan_for(site, survey)
-    s = collect_samples(survey, plan=plan, earth_to_plan_rad=angle, spacing_m=spacing_m)
-    t = collect_samples(test, plan=plan, earth_to_plan_rad=angle, spacing_m=spacing_m)
+    s = collect_samples(survey, plan=plan, earth_to_plan_rad=angle, spacing_m=spacing_m,
+                        heading_from_track=heading_from_track)
+    t = collect_samples(test, plan=plan, earth_to_plan_rad=angle, spacing_m=spacing_m,
+                        heading_from_track=heading_from_track)
     d, _ = cKDTree(s.xy).query(t.xy)
     xmin, ymin, xmax, ymax = plan.bounds
     out = {
@@ -120,23 +175,28 @@ def heldout_scores(
             "coverage_p90_m": float(np.quantile(d, 0.9)),
             "within_2m": float(np.mean(d <= 2.0)),
         },
+        "heading_from_track": bool(heading_from_track),
+        "heading_corrections_deg": {"survey": s.info.get("heading_corrections_deg", {}),
+                                    "test": t.info.get("heading_corrections_deg", {})},
         "kernels": {},
     }
     for name, f in (reference_fields or {}).items():
         mean = f(t.xy)
-        sc = residual_scores(t.b_ut, mean, groups=t.walk)
+        sc = residual_scores(t.b_ut, mean, groups=t.walk, rotations=t.rotations)
         out.setdefault("references", {})[name] = sc
         if log is not None:
             log(f"  {name:<14s} RMSE x,y,up = " + ", ".join(f"{v:.2f}" for v in sc["rmse_ut"].values())
                 + "  features up,h,total = " + ", ".join(f"{v:.2f}" for v in sc["feature_rmse_ut"].values())
-                + "  walk mean removed: " + ", ".join(f"{v:.2f}" for v in sc["rmse_walk_mean_removed_ut"].values()))
+                + "  walk mean removed: " + ", ".join(f"{v:.2f}" for v in sc["rmse_walk_mean_removed_ut"].values())
+                + "  walk device offset removed: " + ", ".join(f"{v:.2f}" for v in sc["rmse_offset_removed_ut"].values()))
     for k in kernels:
         t0 = time.perf_counter()
         params = (kernel_params or {}).get(k)
         model = fit_samples(s, kernel=k, seed=seed, domain=((xmin, ymin), (xmax, ymax)), kernel_params=params)
         fit_s = time.perf_counter() - t0
         mean, var = model.predict(t.xy)
-        sc = residual_scores(t.b_ut, mean, var, getattr(model, "noise_var_", None), groups=t.walk)
+        sc = residual_scores(t.b_ut, mean, var, getattr(model, "noise_var_", None), groups=t.walk,
+                             rotations=t.rotations, offset_var=getattr(model, "between_walk_var_", None))
         near = d <= 2.0
         if near.any():
             sc["covered_within_2m"] = residual_scores(t.b_ut[near], mean[near], var[near], getattr(model, "noise_var_", None))
@@ -148,6 +208,10 @@ def heldout_scores(
                 + "  features up,h,total = " + ", ".join(f"{v:.2f}" for v in sc["feature_rmse_ut"].values())
                 + "  within 1 sd = " + ", ".join(f"{100 * v:.0f}%" for v in sc.get("within_1sd", {}).values())
                 + f"  ({fit_s:.1f} s)")
+            log(f"  {'':<14s} walk device offset removed: RMSE x,y,up = "
+                + ", ".join(f"{v:.2f}" for v in sc["rmse_offset_removed_ut"].values())
+                + "  features up,h,total = " + ", ".join(f"{v:.2f}" for v in sc["feature_rmse_offset_removed_ut"].values())
+                + "  within 1 sd = " + ", ".join(f"{100 * v:.0f}%" for v in sc.get("within_1sd_offset_removed", {}).values()))
     return out
 
 
