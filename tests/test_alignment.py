@@ -26,6 +26,7 @@ from _plans_synth import checkpoints_of, make_walk, polyline_walk
 from fingerprint.errors import ConvergenceError, DataError
 from mapping.alignment import circular_median, estimate_earth_to_plan, expected_earth_to_plan, wrap_angle
 from mapping.site import Site
+from _realdata import real_dir
 
 ROOT = Path(__file__).resolve().parent
 
@@ -135,10 +136,7 @@ def test_bad_input():
 
 
 def _real_dir():
-    for cand in (ROOT / "data" / "real" / "siteA", Path("/work/shared/real_data/siteA")):
-        if (cand / "F1" / "split.json").is_file():
-            return cand
-    return None
+    return real_dir("F1/split.json")
 
 
 REAL = _real_dir()

@@ -15,22 +15,17 @@ from shapely.geometry import Point
 
 from fingerprint.errors import DataError, FormatError
 from mapping.floorplan import check_points, load_floor_plan, plan_from_geojson
+from _realdata import FULL, needs_full, real_dir
 
 ROOT = Path(__file__).resolve().parent
 
 
 def _real_dir():
-    for cand in (ROOT / "data" / "real" / "siteA", Path("/work/shared/real_data/siteA")):
-        if (cand / "F1" / "floor.plan.geojson").is_file():
-            return cand
-    return None
+    return real_dir("F1/floor.plan.geojson")
 
 
 REAL = _real_dir()
 needs_real = pytest.mark.skipif(REAL is None, reason="real-data sample not available")
-# the full shared copy, for checks against the README's whole-floor totals
-FULL = Path("/work/shared/real_data/siteA")
-needs_full = pytest.mark.skipif(not (FULL / "F1" / "split.json").is_file(), reason="full real-data copy not available")
 
 
 def feat(kind, coords, gtype="Polygon"):

@@ -27,22 +27,17 @@ from mapping.graphbuild import (
     load_graph_geojson,
     plan_summary,
 )
+from _realdata import FULL, real_dir
 
 ROOT = Path(__file__).resolve().parent
 
 
 def _real_dir():
-    for cand in (ROOT / "data" / "real" / "siteA", Path("/work/shared/real_data/siteA")):
-        if (cand / "F1" / "floor.plan.geojson").is_file():
-            return cand
-    return None
+    return real_dir("F1/floor.plan.geojson")
 
 
 REAL = _real_dir()
 needs_real = pytest.mark.skipif(REAL is None, reason="real-data sample not available")
-# the full shared copy, for checks against the README's whole-floor totals
-FULL = Path("/work/shared/real_data/siteA")
-needs_full = pytest.mark.skipif(not (FULL / "F1" / "split.json").is_file(), reason="full real-data copy not available")
 
 
 def feat(kind, coords, gtype="Polygon"):
@@ -291,7 +286,7 @@ def test_real_plan_graph_covers_checkpoints(floor):
     assert rep.edges_outside_free == 0
     assert g.length_m.max() <= 1.001
     # all the checkpoints of the floor (full shared copy when present)
-    src = FULL if (FULL / floor).is_dir() else REAL
+    src = FULL if FULL is not None and (FULL / floor).is_dir() else REAL
     cps = np.vstack([read_checkpoints(p).xy for p in sorted((src / floor).glob("*.checkpoints.csv"))])
     _, _, d = g.project(cps)
     # reference twin: shapely distance to the union of the edges

@@ -13,22 +13,13 @@ import pytest
 from fingerprint.errors import ConfigError, DataError, FormatError
 from mapping.site import load_site
 from mapping.walkset import find_walks, load_split, select_walks, walk_name
+from _realdata import FULL, needs_full, real_dir
 
 ROOT = Path(__file__).resolve().parent
 
 
-def _real_site_dir():
-    for cand in (ROOT / "data" / "real" / "siteA", Path("/work/shared/real_data/siteA")):
-        if (cand / "site.json").is_file():
-            return cand
-    return None
-
-
-REAL = _real_site_dir()
+REAL = real_dir("site.json")
 needs_real = pytest.mark.skipif(REAL is None, reason="real-data sample not available")
-# the full shared copy, for checks against the README's whole-floor totals
-FULL = Path("/work/shared/real_data/siteA")
-needs_full = pytest.mark.skipif(not (FULL / "F1" / "split.json").is_file(), reason="full real-data copy not available")
 
 
 def _write(path, obj):

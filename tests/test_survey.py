@@ -18,6 +18,7 @@ from fingerprint.errors import ConfigError, DataError
 from fingerprint.records import Checkpoints
 from mapping.floorplan import plan_from_geojson
 from mapping.survey import adjust_checkpoints, dead_reckoning, reconstruct_positions, segment_fits
+from _realdata import real_dir
 
 ROOT = Path(__file__).resolve().parent
 E2P = np.radians(20.0)
@@ -223,10 +224,7 @@ def test_bad_input():
 
 
 def _real_dir():
-    for cand in (ROOT / "data" / "real" / "siteA", Path("/work/shared/real_data/siteA")):
-        if (cand / "F1" / "split.json").is_file():
-            return cand
-    return None
+    return real_dir("F1/split.json")
 
 
 REAL = _real_dir()
