@@ -47,7 +47,9 @@ class GraphTables:
     pad_prior : (K, D) float, 0 for a real slot, -inf for padding
     dead_end : (K,) bool, node of degree 1 (the way back is the only way
         and gets prior 1)
-    out_cs : (K, 2, D) float, ``out_cos`` and ``out_sin`` stacked (one gather)
+    out_cs_t : (2, D, K) float, ``out_cos`` and ``out_sin`` stacked and
+        transposed (one gather, options along the first axis)
+    cand_t, pad_prior_t : (D, K), ``cand`` and ``pad_prior`` transposed
     edge_tab : (E, 5) float, per edge unit x, unit y, length (m), start x, y (one gather)
     end_node : (E, 2) int64, node reached travelling forward / backward
     """
@@ -59,7 +61,9 @@ class GraphTables:
     start_offset_m: np.ndarray
     pad_prior: np.ndarray
     dead_end: np.ndarray
-    out_cs: np.ndarray
+    out_cs_t: np.ndarray
+    cand_t: np.ndarray
+    pad_prior_t: np.ndarray
     edge_tab: np.ndarray
     end_node: np.ndarray
 
@@ -87,10 +91,11 @@ def graph_tables(graph):
     edge_tab[:, 3:5] = graph.nodes_xy[graph.edges[:, 0]]
     end_node = np.ascontiguousarray(graph.edges[:, ::-1], dtype=np.int64)
     dead_end = deg == 1
-    out_cs = np.ascontiguousarray(np.stack([out_cos, out_sin], axis=1))
+    out_cs_t = np.ascontiguousarray(np.stack([out_cos.T, out_sin.T]))
     return GraphTables(
         cand=cand, out_dir=out_dir, out_cos=out_cos, out_sin=out_sin, start_offset_m=start, pad_prior=pad_prior,
-        dead_end=dead_end, out_cs=out_cs, edge_tab=edge_tab, end_node=end_node,
+        dead_end=dead_end, out_cs_t=out_cs_t, cand_t=np.ascontiguousarray(cand.T),
+        pad_prior_t=np.ascontiguousarray(pad_prior.T), edge_tab=edge_tab, end_node=end_node,
     )
 
 
@@ -137,7 +142,8 @@ def move(state, length_m, heading_rad, *, graph, tables, settings, rng, earth_to
     if s.scale_rw > 0:
         scale = np.clip(scale + s.scale_rw * z[1], 0.5, 1.5)
     hp = hoff + (heading_rad + earth_to_plan_rad)
-    ch, sh = np.cos(hp), np.sin(hp)
+    hp32 = hp.astype(np.float32)  # float32 cos/sin: vectorised, ~1e-7 rad is plenty
+    ch, sh = np.cos(hp32), np.sin(hp32)
     dist = length_m * scale
     # relative and absolute length noise: one Gaussian with both variances,
     # L s (1 + f e1) + m e2  ~  L s + sqrt((L s f)^2 + m^2) e
@@ -186,25 +192,28 @@ def move(state, length_m, heading_rad, *, graph, tables, settings, rng, earth_to
         e = np.take(edge, moving)
         dr = np.take(direc, moving)
         node = np.take(tables.end_node, 2 * e + (dr < 0))
-        cand = np.take(tables.cand, node, axis=0)  # (m, D)
-        prior = np.where(cand == e[:, None], np.where(np.take(tables.dead_end, node), 0.0, lp_rev)[:, None],
-                         np.take(tables.pad_prior, node, axis=0))
-        cs = np.take(tables.out_cs, node, axis=0)  # (m, 2, D)
-        score = np.take(ch, moving)[:, None] * cs[:, 0]
-        score += np.take(sh, moving)[:, None] * cs[:, 1]
+        # (D, m) layout: each option's row is contiguous
+        cand = np.take(tables.cand_t, node, axis=1)  # (D, m)
+        prior = np.where(cand == e, np.where(np.take(tables.dead_end, node), 0.0, lp_rev),
+                         np.take(tables.pad_prior_t, node, axis=1))
+        cs = np.take(tables.out_cs_t, node, axis=2)  # (2, D, m)
+        score = np.take(ch, moving) * cs[0]
+        score += np.take(sh, moving) * cs[1]
         score -= 1.0
         score *= kappa
         score += prior
         if need_top:
-            top = score.max(axis=1)
-            score -= top[:, None]
+            top = score.max(axis=0)
+            score -= top
         else:
             top = 0.0
-        cdf = np.cumsum(np.exp(score), axis=1)
-        total = cdf[:, -1]
+        cdf = np.exp(score)
+        for j in range(1, d_max):  # running sum over the D options (faster than cumsum here)
+            cdf[j] += cdf[j - 1]
+        total = cdf[-1]
         uu = rng.random(moving.size) if fresh else np.take(u, moving)
         fresh = True
-        slot = np.count_nonzero(cdf < (uu * total)[:, None], axis=1)
+        slot = np.count_nonzero(cdf < uu * total, axis=0)
         flat = node * d_max + np.minimum(slot, d_max - 1)
         log_lik[moving] += np.minimum(0.0, top + np.log(total))
         e = np.take(tables.cand, flat)
