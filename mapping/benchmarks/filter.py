@@ -6,6 +6,11 @@ counts, with and without the per-update estimate, and the real-time factor
 (walk duration / time to localise it) of the default settings on one walk:
 a demo walk given with ``--map``/``--log`` (e.g. from ``lodemap simulate``)
 or, by default, a synthetic walk on a synthetic floor built here.
+
+With ``--real SITE_DIR`` it measures accuracy instead: the filter with and
+without the field on every floor of a real site (see
+``mapping.benchmarks.filter_real``), e.g.
+``lodemap bench filter --real ../shared/real_data/siteA``.
 """
 
 from __future__ import annotations
