@@ -18,7 +18,8 @@ Method
    morphological opening of free space with a disc of that diameter
    (shapely buffers); a regular lattice (square by default) of
    ``lattice_spacing_m`` covers them, keeping ``wall_margin_m`` from the
-   walls. Its rows run along the dominant wall direction, so that walks
+   walls. Its rows run along the dominant wall direction of each separate
+   part of the lattice zone, so that walks
    along walls, aisles and halls have straight lines to follow (optionally
    each separate part of it is centred on its own bounds). Centre lines are
    replaced by the lattice where it covers them (within 0.75 spacing of a
@@ -87,7 +88,8 @@ class GraphBuildReport:
         leave free space to join parts the drawing closes off
     bridge_length_m : float
     edges_outside_free : int, non-bridge edges not inside free space (0)
-    lattice_angle_deg : float, angle of the lattice rows to plan +x
+    lattice_angles_deg : list of float, distinct angles of the lattice rows
+        to plan +x (one per separate part of the lattice zone)
     """
 
     build_time_s: float = 0.0
@@ -104,7 +106,7 @@ class GraphBuildReport:
     bridge_edges: list = field(default_factory=list)
     bridge_length_m: float = 0.0
     edges_outside_free: int = 0
-    lattice_angle_deg: float = 0.0
+    lattice_angles_deg: list = field(default_factory=list)
 
     def to_dict(self):
         d = dict(self.__dict__)
@@ -353,11 +355,13 @@ def _simplify_chains(xy, edges, free, *, tolerance_m):
 # --------------------------------------------------------------------------
 # lattice
 # --------------------------------------------------------------------------
-def dominant_wall_angle(free):
+def dominant_wall_angle(free, *, step_deg=0.5, spread_deg=3.0):
     """Direction of the walls of ``free`` modulo 90 degrees, radians in
-    [-pi/4, pi/4): the length-weighted circular mean of four times the
-    boundary segment angles (a rectilinear building gives the angle of its
-    walls to the plan axes; common practice, no source).
+    [-pi/4, pi/4): the peak of the length-weighted density of the boundary
+    segment angles folded onto a quarter turn (a von Mises kernel of about
+    ``spread_deg`` on four times the angle). The peak, not the mean, so that
+    a plan with two wings at different angles gets the angle of the longer
+    walls rather than one in between (common practice, no source).
 
     Parameters
     ----------
@@ -373,12 +377,13 @@ def dominant_wall_angle(free):
         return 0.0
     d = np.vstack(d_all)
     w = np.hypot(d[:, 0], d[:, 1])
-    a = 4.0 * np.arctan2(d[:, 1], d[:, 0])
-    c, s_ = float(w @ np.cos(a)), float(w @ np.sin(a))
-    if np.hypot(c, s_) < 1e-9 * max(float(w.sum()), 1e-300):
+    if not w.sum() > 0:
         return 0.0
-    ang = 0.25 * np.arctan2(s_, c)
-    return float((ang + np.pi / 4) % (np.pi / 2) - np.pi / 4)
+    a4 = 4.0 * np.arctan2(d[:, 1], d[:, 0])
+    cand = np.radians(np.arange(-45.0, 45.0, step_deg))
+    kappa = 1.0 / np.radians(4.0 * spread_deg) ** 2
+    dens = np.exp(kappa * (np.cos(4.0 * cand[:, None] - a4[None, :]) - 1.0)) @ w
+    return float(cand[int(np.argmax(dens))])
 
 
 def _rotate_xy(xy, angle_rad):
@@ -387,50 +392,45 @@ def _rotate_xy(xy, angle_rad):
     return np.column_stack([c * xy[:, 0] - s * xy[:, 1], s * xy[:, 0] + c * xy[:, 1]])
 
 
-def _lattice(free, wide, *, spacing_m, wall_margin_m, kind="square", angle_rad=0.0, centred=True):
+def _lattice(free, wide, *, spacing_m, wall_margin_m, kind="square", angle_rad=None, centred=False):
     """Regular lattice over ``wide``, nodes at least ``wall_margin_m`` from
     walls, edges inside free space.
 
     kind : "square" (4 neighbours), "diagonal" (square plus both diagonals
         of each cell, crossing at a cell-centre node) or "triangular"
         (6 neighbours, rows ``spacing_m * sqrt(3) / 2`` apart)
-    angle_rad : float, lattice rows run at this angle to plan +x (CCW): the
-        walls' direction, so that a walk along a wall or an aisle has a
-        straight lattice line to follow instead of a zigzag
+    angle_rad : float, lattice rows run at this angle to plan +x (CCW); None
+        = each separate part of the lattice zone along its own dominant wall
+        direction (:func:`dominant_wall_angle`), so that a walk along a wall
+        or an aisle has a straight lattice line to follow, not a zigzag
     centred : bool, each separate part of the lattice zone gets its own
-        phase, a node at the centre of the part's bounds (an aisle or a
-        passage of about the threshold width gets a lattice line down its
-        middle, where people walk); False = nodes on multiples of the
-        spacing (in the rotated frame)
+        phase, a node at the centre of the part's bounds (a hall of about the
+        threshold width gets a lattice line down its middle); False = nodes
+        on multiples of the spacing (in the rotated frame)
 
-    Returns xy (L, 2), edges (M, 2)."""
+    Returns xy (L, 2), edges (M, 2) and the (P,) angles used (radians)."""
     if kind not in LATTICE_KINDS:
         raise ConfigError(f"unknown lattice kind {kind!r}; valid: {', '.join(LATTICE_KINDS)}")
     zone = shapely.intersection(wide, shapely.buffer(free, -wall_margin_m, quad_segs=4))
     if zone.is_empty:
-        return np.zeros((0, 2)), np.zeros((0, 2), dtype=np.int64)
-    if angle_rad:
-        from shapely import affinity
+        return np.zeros((0, 2)), np.zeros((0, 2), dtype=np.int64), np.zeros(0)
+    from shapely import affinity
 
-        zone_r = affinity.rotate(zone, -angle_rad, origin=(0.0, 0.0), use_radians=True)
-        free_r = affinity.rotate(free, -angle_rad, origin=(0.0, 0.0), use_radians=True)
-        shapely.prepare(free_r)
-    else:
-        zone_r, free_r = zone, free
-    pieces = list(shapely.get_parts(zone_r)) if centred else [zone_r]
-    all_xy, all_e, n = [], [], 0
+    pieces = list(shapely.get_parts(zone)) if (centred or angle_rad is None) else [zone]
+    all_xy, all_e, angles, n = [], [], [], 0
     for piece in pieces:
-        xy, e = _lattice_piece(piece, spacing_m=spacing_m, kind=kind, centred=centred)
-        all_xy.append(xy)
+        ang = dominant_wall_angle(piece) if angle_rad is None else float(angle_rad)
+        rot = affinity.rotate(piece, -ang, origin=(0.0, 0.0), use_radians=True) if ang else piece
+        xy, e = _lattice_piece(rot, spacing_m=spacing_m, kind=kind, centred=centred)
+        all_xy.append(_rotate_xy(xy, ang) if ang and len(xy) else xy)
         all_e.append(e + n)
+        angles.append(ang)
         n += len(xy)
-    xy = np.vstack(all_xy) if all_xy else np.zeros((0, 2))
-    e = np.vstack(all_e) if all_e else np.zeros((0, 2), dtype=np.int64)
+    xy = np.vstack(all_xy)
+    e = np.vstack(all_e)
     if len(e):
-        e = e[_segments_inside(free_r, xy[e[:, 0]], xy[e[:, 1]])]
-    if angle_rad and len(xy):
-        xy = _rotate_xy(xy, angle_rad)
-    return xy, e
+        e = e[_segments_inside(free, xy[e[:, 0]], xy[e[:, 1]])]
+    return xy, e, np.array(angles)
 
 
 def _lattice_piece(zone, *, spacing_m, kind, centred):
@@ -620,8 +620,8 @@ def build_graph_with_report(
         across its rows zigzags at ±30° and the filter's particles fall
         15 % short of the distance walked
     lattice_angle_rad : float or None, angle of the lattice rows to plan +x;
-        None = the plan's dominant wall direction
-        (:func:`dominant_wall_angle`)
+        None = each separate part of the lattice zone along its own
+        dominant wall direction (:func:`dominant_wall_angle`)
     lattice_centred : bool, each separate part of the lattice zone is
         centred on its own bounds (see ``_lattice``); default False, nodes
         on multiples of the spacing (on the demo walks both lie as close
@@ -670,10 +670,9 @@ def build_graph_with_report(
     if np.isfinite(wide_threshold_m):
         wide = shapely.buffer(shapely.buffer(free, -r_wide, quad_segs=8), r_wide, quad_segs=8)
         wide = shapely.intersection(wide, free)
-        angle = dominant_wall_angle(free) if lattice_angle_rad is None else float(lattice_angle_rad)
-        rep.lattice_angle_deg = float(np.degrees(angle))
-        la_xy, la_e = _lattice(free, wide, spacing_m=lattice_spacing_m, wall_margin_m=wall_margin_m, kind=lattice,
-                               angle_rad=angle, centred=lattice_centred)
+        la_xy, la_e, angles = _lattice(free, wide, spacing_m=lattice_spacing_m, wall_margin_m=wall_margin_m,
+                                       kind=lattice, angle_rad=lattice_angle_rad, centred=lattice_centred)
+        rep.lattice_angles_deg = sorted({round(float(np.degrees(a)), 2) for a in angles})
     else:
         la_xy, la_e = np.zeros((0, 2)), np.zeros((0, 2), dtype=np.int64)
     rep.lattice_length_m = float(_lengths(la_xy, la_e).sum()) if len(la_e) else 0.0

@@ -343,7 +343,7 @@ def test_walks_along_the_walls_have_straight_lattice_lines(angle_deg):
     along, across = np.array([c, s]), np.array([-s, c])
     centre = np.array(poly.centroid.coords[0])
     g, rep = build_graph_with_report(plan)
-    assert rep.lattice_angle_deg == pytest.approx(angle_deg, abs=1e-6)
+    assert rep.lattice_angles_deg == [pytest.approx(angle_deg, abs=1e-6)]
     assert edges_inside_slow(plan, g).all()
     for d, half in ((along, 5.0), (across, 3.0)):
         assert _route_ratio(g, centre - half * d, centre + half * d) < 1.02
@@ -360,3 +360,28 @@ def test_centred_lattice_puts_a_line_down_a_narrow_hall():
     mid = np.column_stack([np.linspace(4, 16, 25), np.full(25, 1.9)])
     assert union_distance(g, mid).max() < 0.05
     assert edges_inside_slow(plan, g).all()
+
+
+def test_two_wings_at_different_angles_get_their_own_lattice_angle():
+    # two halls, one along the plan axes and one turned by 30 degrees
+    # (shapely.affinity.rotate), joined by a corridor: each hall's lattice
+    # follows its own walls, so a walk along either hall is straight on the
+    # graph (networkx shortest path)
+    from shapely import affinity
+
+    a = shapely.box(0, 0, 14, 10)
+    b = affinity.rotate(shapely.box(0, 0, 14, 10), 30.0, origin=(0, 0))
+    b = affinity.translate(b, 30.0, 0.0)
+    link = shapely.box(13, 4, 31, 6)
+    free = shapely.union_all([a, b, link])
+    plan = plan_of(feat("walkable", [shapely.get_coordinates(free.exterior).tolist()]))
+    g, rep = build_graph_with_report(plan)
+    assert nx.is_connected(g.to_networkx())
+    assert edges_inside_slow(plan, g).all()
+    assert any(abs(x) < 1e-6 for x in rep.lattice_angles_deg)
+    assert any(abs(x - 30.0) < 1e-6 for x in rep.lattice_angles_deg)
+    c, s_ = np.cos(np.radians(30.0)), np.sin(np.radians(30.0))
+    centre_b = np.array(b.centroid.coords[0])
+    across_b = np.array([-s_, c])
+    assert _route_ratio(g, centre_b - 3.0 * across_b, centre_b + 3.0 * across_b) < 1.02
+    assert _route_ratio(g, np.array([2.0, 7.0]), np.array([11.0, 7.0])) < 1.02
