@@ -175,12 +175,15 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
         xy = edge_point(ctx.tables, state.edge, state.offset_m)
         psi = obs.heading_rad + ctx.earth_to_plan_rad + state.heading_offset_rad
         bias, bias_var = _predict_bias(state, s)
-        llf, bias, bias_var, chi2 = field_log_likelihood(
+        gate = s.field_gate is not None
+        out = field_log_likelihood(
             obs, xy, psi, bias, bias_var, state.log_w,
-            lookup=ctx.table.lookup, settings=s, sensor_noise_ut=ctx.sensor_noise_ut, return_chi2=True,
+            lookup=ctx.table.lookup, settings=s, sensor_noise_ut=ctx.sensor_noise_ut, return_chi2=gate,
         )
+        llf, bias, bias_var = out[:3]
         gated = False
-        if s.field_gate is not None:
+        if gate:
+            chi2 = out[3]
             outliers = tracker.outliers + 1 if chi2 > s.field_gate else 0
             tracker = dataclasses.replace(tracker, outliers=outliers)
             gated = outliers >= s.field_gate_after

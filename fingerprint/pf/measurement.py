@@ -223,8 +223,8 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, look
     if return_chi2:
         chi2 = np.nan
         if np.any(covered):
-            wc = np.exp(log_w[covered] - log_w[covered].max())
-            d2 = np.mean(r[covered] ** 2 / s2[covered], axis=1)
-            chi2 = float(wc @ d2 / wc.sum())
+            wc = np.where(covered, np.exp(log_w - log_w.max()), 0.0)
+            d2 = np.sum(r * r / s2, axis=1) * (1.0 / r.shape[1])
+            chi2 = float(wc @ np.where(covered, d2, 0.0) / wc.sum())
         return ll, new_b, new_p, chi2
     return ll, new_b, new_p
