@@ -272,3 +272,20 @@ def test_field_gate_closes_after_consecutive_outliers_and_resets(floor):
     near = window_observation(np.array([e] * 5), np.zeros(5))
     _, tr, _ = _gate_step(fm, s, near, RecoveryTracker(count=5, outliers=2))
     assert tr.outliers == 0
+
+
+def test_field_floor_bounds_the_field_weight_spread_of_one_update(floor):
+    # with field_floor_nats = c the field changes no log-weight by more than
+    # c relative to another (against the no-field update with the same
+    # draws); without the floor this observation spreads them much further
+    # (common practice, no source).
+    _, fm = floor
+    s = FilterSettings(n_particles=500, ess_threshold=0.0, field_floor_nats=1.5, field_temper=1.0)
+    obs = window_observation(np.array([[10.0, 15.0, -40.0]] * 5), np.zeros(5))
+    base, _, _ = _gate_step(fm, dataclasses.replace(s, use_field=False), obs, RecoveryTracker())
+    floored, _, _ = _gate_step(fm, s, obs, RecoveryTracker())
+    free, _, _ = _gate_step(fm, dataclasses.replace(s, field_floor_nats=None), obs, RecoveryTracker())
+    d = floored.log_w - base.log_w
+    assert np.ptp(d[np.isfinite(d)]) <= 1.5 + 1e-9
+    d = free.log_w - base.log_w
+    assert np.ptp(d[np.isfinite(d)]) > 2.0  # so the floor above did bind

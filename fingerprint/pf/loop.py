@@ -188,6 +188,8 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
             tracker = dataclasses.replace(tracker, outliers=outliers)
             gated = outliers >= s.field_gate_after
         if not gated:
+            if s.field_floor_nats is not None:
+                llf = np.maximum(llf, np.max(llf) - s.field_floor_nats)
             ll = ll + llf
             state = state.replace(bias_ut=bias, bias_var_ut2=bias_var)
             field_used = True

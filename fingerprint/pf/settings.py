@@ -75,6 +75,9 @@ class FilterSettings:
         ``field_gate_after`` consecutive updates (a walk whose field does not
         match the map at all)
     field_gate_after : consecutive outlying updates before the gate closes
+    field_floor_nats : None = off; a number c = no particle's field
+        log-likelihood is more than c below the best particle's in one update
+        (bounds how hard one update of the field can pull the cloud)
 
     Resampling and recovery (``fingerprint.pf.loop``)
     -------------------------------------------------
@@ -125,6 +128,7 @@ class FilterSettings:
     bias_corr_updates: float | None = None
     field_gate: float | None = None
     field_gate_after: int = 3
+    field_floor_nats: float | None = None
     # resampling and recovery
     resampler: str = "systematic"
     ess_threshold: float = 0.5
@@ -177,7 +181,7 @@ class FilterSettings:
             bad("likelihood", f"one of {sorted(LIKELIHOODS)}")
         if self.resampler not in RESAMPLERS:
             bad("resampler", f"one of {sorted(RESAMPLERS)}")
-        for name in ("bias_corr_updates", "field_gate"):
+        for name in ("bias_corr_updates", "field_gate", "field_floor_nats"):
             v = getattr(self, name)
             if v is not None and not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
                 bad(name, "None or a finite number > 0")
