@@ -122,10 +122,15 @@ def test_recovers_from_wrong_start_and_flags_it(floor):
     wrong = xy[0] + np.array([15.0, 9.0]) if xy[0, 0] < 15 else xy[0] - np.array([15.0, 9.0])
     # a Gaussian likelihood collapses clearly when the cloud is far off
     s = FilterSettings(n_particles=3000, recovery_warmup=3, likelihood="gaussian", field_temper=0.2)
-    tr = localise(w, fm, settings=s, start_xy=wrong, start_sigma_m=1.0, rng=3)
-    e = S.errors(tr, t, xy)
-    assert tr.extra["lost"].any()
-    assert np.median(e[-20:]) < 1.0
+    # recovery is random: over five seeds every run flags the loss and at
+    # least four settle back under 1 m (measured: 9 of 10 seeds do)
+    settled = 0
+    for seed in range(5):
+        tr = localise(w, fm, settings=s, start_xy=wrong, start_sigma_m=1.0, rng=seed)
+        e = S.errors(tr, t, xy)
+        assert tr.extra["lost"].any()
+        settled += np.median(e[-20:]) < 1.0
+    assert settled >= 4
     off = localise(w, fm, settings=dataclasses.replace(s, recovery=False), start_xy=wrong, start_sigma_m=1.0, rng=3)
     assert not off.extra["lost"].any()
     assert np.median(S.errors(off, t, xy)[-20:]) > np.median(e[-20:])

@@ -64,6 +64,8 @@ def linear_settings(**kw):
         recovery=False,
         cluster_radius_m=np.inf,
         project_estimate=False,
+        # the Kalman model measures the state after the move
+        field_at_midpoint=False,
     )
     return dataclasses.replace(base, **kw)
 

@@ -166,13 +166,19 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
         used for the field, earth frame, or None)
     """
     s = ctx.settings
+    want_field = s.use_field and obs is not None
+    # the observation averages the field over the whole increment, so it
+    # belongs to the middle of each particle's move, not to its end
+    xy_before = edge_point(ctx.tables, state.edge, state.offset_m) if want_field and s.field_at_midpoint else None
     state, ll = move(
         state, length_m, heading_rad, graph=ctx.graph, tables=ctx.tables, settings=s, rng=rng,
         earth_to_plan_rad=ctx.earth_to_plan_rad,
     )
     field_used = False
-    if s.use_field and obs is not None:
+    if want_field:
         xy = edge_point(ctx.tables, state.edge, state.offset_m)
+        if xy_before is not None:
+            xy = 0.5 * (xy + xy_before)
         psi = obs.heading_rad + ctx.earth_to_plan_rad + state.heading_offset_rad
         bias, bias_var = _predict_bias(state, s)
         gate = s.field_gate is not None

@@ -54,6 +54,10 @@ class FilterSettings:
     mismatch_ut : 1-sigma model-mismatch term added to every feature
     coverage_max_m : no field update for particles farther than this from
         any survey sample (map ``coverage_m``)
+    field_at_midpoint : look the map up halfway between each particle's
+        position before and after the move, where the window-averaged field
+        belongs (False: at the end of the move, which pulls the estimate
+        back by half an increment)
     bias_sigma0_ut : prior 1-sigma of the per-walk field bias, horizontal
         components (0 = no bias states)
     bias_up_sigma0_ut : the same for the vertical component (None = as
@@ -121,6 +125,7 @@ class FilterSettings:
     sensor_noise_ut: float | None = None
     mismatch_ut: float = 3.0
     coverage_max_m: float = 1.5
+    field_at_midpoint: bool = True
     bias_sigma0_ut: float = 5.0
     bias_up_sigma0_ut: float | None = 10.0
     map_var_scale: float = 1.0
