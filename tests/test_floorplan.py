@@ -15,6 +15,7 @@ from shapely.geometry import Point
 
 from fingerprint.errors import DataError, FormatError
 from mapping.floorplan import check_points, load_floor_plan, plan_from_geojson
+from _geojson import feat, fc, rect
 from _realdata import FULL, needs_full, real_dir
 
 ROOT = Path(__file__).resolve().parent
@@ -26,18 +27,6 @@ def _real_dir():
 
 REAL = _real_dir()
 needs_real = pytest.mark.skipif(REAL is None, reason="real-data sample not available")
-
-
-def feat(kind, coords, gtype="Polygon"):
-    return {"type": "Feature", "properties": {"kind": kind}, "geometry": {"type": gtype, "coordinates": coords}}
-
-
-def fc(*features, **extra):
-    return {"type": "FeatureCollection", "features": list(features), **extra}
-
-
-def rect(x0, y0, x1, y1):
-    return [[[x0, y0], [x1, y0], [x1, y1], [x0, y1], [x0, y0]]]
 
 
 # a 10 x 6 m room with a 2 x 2 m pillar in it: free area 60 - 4 = 56 m² by hand

@@ -27,6 +27,7 @@ from mapping.graphbuild import (
     load_graph_geojson,
     plan_summary,
 )
+from _geojson import feat, rect
 from _realdata import FULL, real_dir
 
 ROOT = Path(__file__).resolve().parent
@@ -38,14 +39,6 @@ def _real_dir():
 
 REAL = _real_dir()
 needs_real = pytest.mark.skipif(REAL is None, reason="real-data sample not available")
-
-
-def feat(kind, coords, gtype="Polygon"):
-    return {"type": "Feature", "properties": {"kind": kind}, "geometry": {"type": gtype, "coordinates": coords}}
-
-
-def rect(x0, y0, x1, y1):
-    return [[[x0, y0], [x1, y0], [x1, y1], [x0, y1], [x0, y0]]]
 
 
 def plan_of(*features):
