@@ -279,6 +279,20 @@ def _assemble(st, prior_var_f, noise_var, offset_var):
     return s, bf, yy, ndet, extra, parts
 
 
+def _log_ml(st, fac, bf, solved, yy, ndet, extra, prior_var_f):
+    """The log marginal likelihood from the assembled system: ``solved`` is
+    ``fac.solve(bf)`` (passed in because every caller needs it anyway)."""
+    quad = extra["quad"] + float(bf @ solved)
+    return float(
+        -0.5 * (yy - quad)
+        - 0.5 * (extra["logdet"] + fac.logdet())
+        - 0.5 * float(np.sum(np.log(prior_var_f)))
+        - 0.5 * extra["prior"]
+        - 0.5 * ndet
+        - 0.5 * int(st.n.sum()) * _LOG2PI
+    )
+
+
 def log_marginal(st, prior_var_f, noise_var, offset_var=1.0):
     """Log marginal likelihood of the data summarised by ``st``.
 
@@ -299,18 +313,7 @@ def log_marginal(st, prior_var_f, noise_var, offset_var=1.0):
         fac = _Factor(s, st.blocks)
     except (np.linalg.LinAlgError, scipy.linalg.LinAlgError):
         return -np.inf
-    alpha = fac.solve(bf)
-    quad = extra["quad"] + float(bf @ alpha)
-    logdet_s = fac.logdet()
-    n_tot = int(st.n.sum())
-    return float(
-        -0.5 * (yy - quad)
-        - 0.5 * (extra["logdet"] + logdet_s)
-        - 0.5 * float(np.sum(np.log(prior_var_f)))
-        - 0.5 * extra["prior"]
-        - 0.5 * ndet
-        - 0.5 * n_tot * _LOG2PI
-    )
+    return _log_ml(st, fac, bf, fac.solve(bf), yy, ndet, extra, prior_var_f)
 
 
 def posterior(st, prior_var_f, noise_var, offset_var=1.0):
@@ -335,16 +338,7 @@ def posterior(st, prior_var_f, noise_var, offset_var=1.0):
         mean_o = dib - np.einsum("wij,wj->wi", dinv, (gfo.T @ mean_f).reshape(w, 3))
     else:
         mean_o = np.zeros((0, 3))
-    quad = extra["quad"] + float(bf @ mean_f)
-    logdet_s = fac.logdet()
-    log_ml = float(
-        -0.5 * (yy - quad)
-        - 0.5 * (extra["logdet"] + logdet_s)
-        - 0.5 * float(np.sum(np.log(prior_var_f)))
-        - 0.5 * extra["prior"]
-        - 0.5 * ndet
-        - 0.5 * int(st.n.sum()) * _LOG2PI
-    )
+    log_ml = _log_ml(st, fac, bf, mean_f, yy, ndet, extra, prior_var_f)
     return Posterior(mean_f, cov_f, mean_o, log_ml)
 
 
@@ -377,16 +371,7 @@ def log_marginal_and_grad(st, prior_var_f, noise_var, offset_var=1.0):
         return -np.inf, None, None, None
     mu_f = fac.solve(bf)
     sinv = fac.inverse()
-    quad = extra["quad"] + float(bf @ mu_f)
-    logdet_s = fac.logdet()
-    value = float(
-        -0.5 * (yy - quad)
-        - 0.5 * (extra["logdet"] + logdet_s)
-        - 0.5 * float(np.sum(np.log(prior)))
-        - 0.5 * extra["prior"]
-        - 0.5 * ndet
-        - 0.5 * int(st.n.sum()) * _LOG2PI
-    )
+    value = _log_ml(st, fac, bf, mu_f, yy, ndet, extra, prior)
     diag_f = np.diag(sinv)
     d_prior = 0.5 * ((mu_f**2 + diag_f) / prior - 1.0)
     d_prior = np.where(raw >= prior, d_prior, 0.0)
