@@ -7,8 +7,26 @@ from .errors import ConfigError, ConvergenceError, DataError, FormatError, Lodem
 from .fieldmap import COMPONENTS, FieldMap
 from .floorgraph import FloorGraph
 from .records import Checkpoints, Motion, ProcessedWalk, Track, WalkLog
-from .logio import read_checkpoints, read_track, read_walk_log
-from .pipeline import process_walk
+
+# The sensor chain pulls in pandas and scipy.signal; importing it lazily keeps
+# ``import fingerprint.errors`` (and so ``lodemap --help``) fast.
+_LAZY = {
+    "read_walk_log": "logio",
+    "read_checkpoints": "logio",
+    "read_track": "logio",
+    "process_walk": "pipeline",
+}
+
+
+def __getattr__(name):
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'fingerprint' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(f".{module}", __name__), name)
+    globals()[name] = value
+    return value
 
 __all__ = [
     "LodemapError",
