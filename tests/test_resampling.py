@@ -34,6 +34,29 @@ def test_systematic_equals_filterpy_for_same_uniform(n, monkeypatch):
         np.testing.assert_array_equal(systematic_resample(w, u=u), ref)
 
 
+def test_systematic_search_equals_numpy_searchsorted():
+    # the O(N) search of systematic_resample against numpy.searchsorted
+    # (reference library), on weights with zeros, ties and a huge spread
+    from fingerprint.pf.resampling import _cumulative, _sorted_search
+
+    rng = np.random.default_rng(12)
+    for n in (1, 2, 3, 10, 999, 20000):
+        for kind in range(4):
+            w = _weights(rng, n)
+            if kind == 1:
+                w[rng.random(n) < 0.5] = 0.0
+            elif kind == 2:
+                w = np.round(w * n) + 1.0  # many ties
+            elif kind == 3:
+                w = np.exp(rng.normal(0, 20, n))
+            if not w.sum() > 0:
+                w[0] = 1.0
+            c = _cumulative(w / w.sum())
+            for u in (0.0, float(rng.random()), 0.999999):
+                pos = (u + np.arange(n)) / n
+                np.testing.assert_array_equal(_sorted_search(c, pos, u), np.searchsorted(c, pos, side="right"))
+
+
 def test_stratified_equals_filterpy_for_same_uniforms(monkeypatch):
     rng = np.random.default_rng(5)
     n = 500

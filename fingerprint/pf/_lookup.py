@@ -6,8 +6,11 @@ Particles live on the floor graph, so only the raster cells that the graph
 passes through are ever looked up. :class:`MapTable` keeps, for those cells
 only, the four bilinear coefficients of the seven channels (mean 3, variance
 3, coverage 1) in float32: one lookup is one gather of 28 numbers per
-particle and ``A + B wx + (C + D wx) wy``. A query in a cell that is not in
-the table (a point off the graph) falls back to ``FieldMap.lookup``.
+particle and ``A + B wx + (C + D wx) wy``. The table is channel-major
+(28, M), so the gather gives one contiguous row per coefficient and the
+arithmetic runs on contiguous (7, N) blocks; the (N, 3) results are views
+with contiguous columns. A query in a cell that is not in the table (a
+point off the graph) falls back to ``FieldMap.lookup``.
 """
 
 from __future__ import annotations
@@ -55,8 +58,9 @@ class MapTable:
     Attributes
     ----------
     row : (ny * nx,) int32, row of each cell in ``coef`` (-1 = not stored)
-    coef : (4, M, 8) float32, per stored cell the coefficients ``A, B, C, D``
-        of 7 channels (mean 3, variance 3, coverage; padded to 8)
+    coef : (28, M) float32, per stored cell (column) the coefficients
+        ``A, B, C, D`` (rows ``7 k .. 7 k + 6`` for coefficient ``k``) of the
+        7 channels (mean 3, variance 3, coverage)
     """
 
     def __init__(self, fmap):
@@ -73,9 +77,9 @@ class MapTable:
         chans = [np.concatenate([fmap.mean_ut[j, i], fmap.var_ut2[j, i], cov[j, i]], axis=-1)
                  for j, i in ((iy, ix), (iy, ix1), (iy1, ix), (iy1, ix1))]
         a, b, c, d = chans  # (M, 7) float64 each
-        self.coef = np.zeros((4, cells.size, 8), dtype=np.float32)
+        self.coef = np.zeros((28, cells.size), dtype=np.float32)
         for k, v in enumerate((a, b - a, c - a, d - c - b + a)):
-            self.coef[k, :, :7] = v
+            self.coef[7 * k : 7 * k + 7] = v.T
         self.row = np.full(ny * nx, -1, dtype=np.int32)
         self.row[cells] = np.arange(cells.size, dtype=np.int32)
 
@@ -87,32 +91,48 @@ class MapTable:
         mean_ut : (N, 3) ; var_ut2 : (N, 3) ; coverage_m : (N,), inf outside
             (float32 where the table has the cell)
         """
+        return self.lookup_xy(xy[:, 0], xy[:, 1])
+
+    def lookup_xy(self, x, y):
+        """:meth:`lookup` at positions given as (N,) ``x`` and ``y``."""
         nx, ny = self.nx, self.ny
-        fx = (xy[:, 0] - self.x0) * (1.0 / self.res)
-        fy = (xy[:, 1] - self.y0) * (1.0 / self.res)
-        inside = (fx >= 0) & (fx <= nx - 1) & (fy >= 0) & (fy <= ny - 1)
-        np.clip(fx, 0, nx - 1, out=fx)
-        np.clip(fy, 0, ny - 1, out=fy)
-        ix = np.minimum(fx.astype(np.int64), max(nx - 2, 0))
-        iy = np.minimum(fy.astype(np.int64), max(ny - 2, 0))
-        wx = (fx - ix).astype(np.float32)[:, None]
-        wy = (fy - iy).astype(np.float32)[:, None]
-        row = self.row[iy * nx + ix]
-        # one gather (np.take is much faster than fancy indexing here); rows
-        # of cells not in the table (-1) are replaced below
-        out, b, c, d = np.take(self.coef, row, axis=1)
+        fx = x - self.x0
+        fx *= 1.0 / self.res
+        fy = y - self.y0
+        fy *= 1.0 / self.res
+        inside = None
+        if not (fx.min(initial=0.0) >= 0 and fx.max(initial=0.0) <= nx - 1
+                and fy.min(initial=0.0) >= 0 and fy.max(initial=0.0) <= ny - 1):
+            inside = (fx >= 0) & (fx <= nx - 1) & (fy >= 0) & (fy <= ny - 1)
+            np.clip(fx, 0, nx - 1, out=fx)
+            np.clip(fy, 0, ny - 1, out=fy)
+        ix = fx.astype(np.int32)  # fx >= 0: truncation is floor
+        np.minimum(ix, max(nx - 2, 0), out=ix)
+        iy = fy.astype(np.int32)
+        np.minimum(iy, max(ny - 2, 0), out=iy)
+        wx = np.subtract(fx, ix, dtype=np.float32)
+        wy = np.subtract(fy, iy, dtype=np.float32)
+        iy *= nx
+        iy += ix
+        row = np.take(self.row, iy)
+        # one gather (np.take is much faster than fancy indexing); rows of
+        # cells not in the table (-1) are replaced below
+        g = np.take(self.coef, row, axis=1)  # (28, N)
+        out, b, c, d = g[0:7], g[7:14], g[14:21], g[21:28]
         b *= wx
         out += b
         d *= wx
         d += c
         d *= wy
-        out += d  # A + B wx + (C + D wx) wy
-        cov = out[:, 6]
-        cov = np.where(inside, cov, np.inf) if not inside.all() else cov
-        mean, var = out[:, 0:3], out[:, 3:6]
-        missing = row < 0
-        if missing.any():
-            m, v, c = self.fmap.lookup(xy[missing])
+        out += d  # A + B wx + (C + D wx) wy, (7, N)
+        cov = out[6]
+        if inside is not None and not inside.all():
+            cov = np.where(inside, cov, np.inf)
+        mean, var = out[0:3].T, out[3:6].T
+        if row.size and row.min() < 0:
+            missing = row < 0
+            xy = np.column_stack([x[missing], y[missing]])
+            m, v, c = self.fmap.lookup(xy)
             mean, var, cov = mean.astype(float), var.astype(float), cov.astype(float)
             mean[missing], var[missing], cov[missing] = m, v, c
         return mean, var, cov

@@ -5,16 +5,18 @@ calling the motion and measurement models."""
 from __future__ import annotations
 
 import dataclasses
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
 from ..errors import ConvergenceError
 from ._lookup import MapTable
+from ._noise import normal32
 from .measurement import field_log_likelihood
-from .motion import edge_point, graph_tables, move
+from .motion import edge_xy, graph_tables, move_arrays
 from .resampling import get_resampler
-from .state import ParticleState, effective_sample_size, normalise_log_weights
+from .state import ParticleState, normalise_log_weights, take_rows
 
 __all__ = ["FilterContext", "RecoveryTracker", "make_context", "initial_state", "reseed", "filter_step"]
 
@@ -58,9 +60,11 @@ def _nuisance_prior(n, settings, rng):
     s = settings
     hoff = s.heading_sigma0_rad * rng.standard_normal(n)
     scale = np.clip(1.0 + s.scale_sigma0 * rng.standard_normal(n), 0.5, 1.5)
-    bias = np.zeros((n, 3))
+    # bias states: float32, column-major (each component contiguous)
+    bias = np.zeros((n, 3), dtype=np.float32, order="F")
     up = s.bias_sigma0_ut if s.bias_up_sigma0_ut is None else s.bias_up_sigma0_ut
-    bias_var = np.tile(np.array([s.bias_sigma0_ut**2, s.bias_sigma0_ut**2, up**2]), (n, 1))
+    bias_var = np.empty((n, 3), dtype=np.float32, order="F")
+    bias_var[...] = np.array([s.bias_sigma0_ut**2, s.bias_sigma0_ut**2, up**2])
     return hoff, scale, bias, bias_var
 
 
@@ -99,14 +103,14 @@ def reseed(state, index, ctx, rng):
     edge, off = ctx.graph.sample_uniform(m, rng)
     direc = np.where(rng.random(m) < 0.5, 1, -1).astype(np.int8)
     hoff, scale, bias, bias_var = _nuisance_prior(m, ctx.settings, rng)
-    arrays = {
+    arrays = {  # copies keep the memory layout (column-major bias states)
         "edge": state.edge.copy(),
         "offset_m": state.offset_m.copy(),
         "direction": state.direction.copy(),
         "heading_offset_rad": state.heading_offset_rad.copy(),
         "scale": state.scale.copy(),
-        "bias_ut": state.bias_ut.copy(),
-        "bias_var_ut2": state.bias_var_ut2.copy(),
+        "bias_ut": state.bias_ut.copy(order="K"),
+        "bias_var_ut2": state.bias_var_ut2.copy(order="K"),
         "log_w": state.log_w.copy(),
     }
     for name, value in (
@@ -119,19 +123,23 @@ def reseed(state, index, ctx, rng):
     return ParticleState(**arrays)
 
 
-def _resample(state, ctx, rng):
+def _resample(arrays, ctx, rng, weights):
+    """Resample the particle ``arrays`` (dict of ParticleState fields but
+    ``log_w``) by ``weights`` (N,) (any positive scale), roughen; returns a
+    ParticleState with uniform weights."""
     s = ctx.settings
-    idx = get_resampler(s.resampler)(np.exp(state.log_w), rng)
-    new = state.take(idx)
-    n = new.n
-    changes = {}
+    idx = get_resampler(s.resampler)(weights, rng)
+    new = {name: take_rows(a, idx) for name, a in arrays.items()}
+    n = idx.shape[0]
     if s.rough_heading_rad > 0 or s.rough_scale > 0:
-        z = rng.standard_normal((2, n), dtype=np.float32)  # one draw for both jitters
+        z = normal32(rng, 2 * n)  # one draw for both jitters
         if s.rough_heading_rad > 0:
-            changes["heading_offset_rad"] = new.heading_offset_rad + s.rough_heading_rad * z[0]
+            new["heading_offset_rad"] += np.float32(s.rough_heading_rad) * z[:n]
         if s.rough_scale > 0:
-            changes["scale"] = np.clip(new.scale + s.rough_scale * z[1], 0.5, 1.5)
-    return new.replace(**changes) if changes else new
+            sc = new["scale"]
+            sc += np.float32(s.rough_scale) * z[n:]
+            np.clip(sc, 0.5, 1.5, out=sc)
+    return ParticleState(**new, log_w=np.full(n, -math.log(n)))
 
 
 def _predict_bias(state, s):
@@ -140,7 +148,9 @@ def _predict_bias(state, s):
     0 whose stationary variance is the bias prior."""
     has = state.bias_var_ut2 > 0
     if s.bias_corr_updates is None:
-        return state.bias_ut, state.bias_var_ut2 + s.bias_rw_ut**2 * has
+        q = has * np.asarray(s.bias_rw_ut**2, dtype=state.bias_var_ut2.dtype)
+        q += state.bias_var_ut2
+        return state.bias_ut, q
     phi = float(np.exp(-1.0 / s.bias_corr_updates))
     up = s.bias_sigma0_ut if s.bias_up_sigma0_ut is None else s.bias_up_sigma0_ut
     prior = np.array([s.bias_sigma0_ut**2, s.bias_sigma0_ut**2, up**2])
@@ -166,24 +176,29 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
         used for the field, earth frame, or None)
     """
     s = ctx.settings
+    tab = ctx.tables
+    n = state.n
     want_field = s.use_field and obs is not None
     # the observation averages the field over the whole increment, so it
     # belongs to the middle of each particle's move, not to its end
-    xy_before = edge_point(ctx.tables, state.edge, state.offset_m) if want_field and s.field_at_midpoint else None
-    state, ll = move(
-        state, length_m, heading_rad, graph=ctx.graph, tables=ctx.tables, settings=s, rng=rng,
-        earth_to_plan_rad=ctx.earth_to_plan_rad,
+    before = edge_xy(tab, state.edge, state.offset_m) if want_field and s.field_at_midpoint else None
+    arrays, ll = move_arrays(
+        state, length_m, heading_rad, tables=tab, settings=s, rng=rng, earth_to_plan_rad=ctx.earth_to_plan_rad,
     )
+    arrays["bias_ut"], arrays["bias_var_ut2"] = state.bias_ut, state.bias_var_ut2
     field_used = False
     if want_field:
-        xy = edge_point(ctx.tables, state.edge, state.offset_m)
-        if xy_before is not None:
-            xy = 0.5 * (xy + xy_before)
-        psi = obs.heading_rad + ctx.earth_to_plan_rad + state.heading_offset_rad
+        xy_t = np.empty((2, n))  # rows x, y: xy_t.T is (N, 2) with contiguous columns
+        x, y = edge_xy(tab, arrays["edge"], arrays["offset_m"], out=xy_t)
+        if before is not None:
+            x += before[0]
+            y += before[1]
+            xy_t *= 0.5
+        psi = np.add(arrays["heading_offset_rad"], obs.heading_rad + ctx.earth_to_plan_rad, dtype=np.float32)
         bias, bias_var = _predict_bias(state, s)
         gate = s.field_gate is not None
         out = field_log_likelihood(
-            obs, xy, psi, bias, bias_var, state.log_w,
+            obs, xy_t.T, psi, bias, bias_var, state.log_w,
             lookup=ctx.table.lookup, settings=s, sensor_noise_ut=ctx.sensor_noise_ut, return_chi2=gate,
         )
         llf, bias, bias_var = out[:3]
@@ -195,29 +210,42 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
             gated = outliers >= s.field_gate_after
         if not gated:
             if s.field_floor_nats is not None:
-                llf = np.maximum(llf, np.max(llf) - s.field_floor_nats)
-            ll = ll + llf
-            state = state.replace(bias_ut=bias, bias_var_ut2=bias_var)
+                llf = np.maximum(llf.astype(np.float64), float(np.max(llf)) - s.field_floor_nats)
+            ll = np.add(ll, llf, dtype=np.float64)  # float32 terms, summed exactly
+            arrays["bias_ut"], arrays["bias_var_ut2"] = bias, bias_var
             field_used = True
-    if np.any(np.isnan(ll)):
+    if math.isnan(float(np.sum(ll))) and np.any(np.isnan(ll)):
         raise ConvergenceError("log-likelihood is NaN")
-    log_w, log_total = normalise_log_weights(state.log_w + ll)
+    # normalise; the linear weights of the same pass give the ESS and the
+    # resampling weights
+    log_w = state.log_w + ll
+    top = float(np.max(log_w))
     lost = False
-    if not np.isfinite(log_total):
+    if math.isfinite(top):
+        e = log_w - top
+        np.exp(e, out=e)
+        total = float(np.sum(e))
+        log_total = top + math.log(total)
+        log_w -= log_total
+        ess = total * total / float(e @ e)
+    else:
         # every particle impossible: keep the prior weights and re-seed
+        log_total = -math.inf
         log_w, _ = normalise_log_weights(state.log_w)
         lost = True
-    state = state.replace(log_w=log_w)
-    if field_used and np.isfinite(log_total):
+        e = np.exp(log_w)
+        ess = 1.0 / float(e @ e)
+    if field_used and math.isfinite(log_total):
         if s.recovery and tracker.count >= s.recovery_warmup and log_total < tracker.level - s.recovery_drop:
             lost = True
         value = max(log_total, tracker.level - s.recovery_drop) if tracker.count else log_total
         level = value if tracker.count == 0 else (1 - s.recovery_rate) * tracker.level + s.recovery_rate * value
         tracker = RecoveryTracker(level=float(level), count=tracker.count + 1, outliers=tracker.outliers)
-    resampled = False
-    if effective_sample_size(state.log_w) < s.ess_threshold * state.n:
-        state = _resample(state, ctx, rng)
-        resampled = True
+    resampled = ess < s.ess_threshold * n
+    if resampled:
+        state = _resample(arrays, ctx, rng, e)
+    else:
+        state = ParticleState(**arrays, log_w=log_w)
     if lost and s.recovery:
         m = int(round(s.recovery_fraction * state.n))
         if m:

@@ -30,10 +30,10 @@ favoured nor penalised) and its bias is left alone.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import gammaln
 
 from ..errors import ConfigError, ConvergenceError
 
@@ -104,20 +104,44 @@ def window_observation(mag_earth_ut, heading_rad):
 
 
 # -- feature sets: (obs, map_mean (N,3), map_var (N,3), psi (N,)) -> y, pred, var, bias_index
+# pred and var are (N, k) views of (k, N) arrays (contiguous columns), so
+# that the per-feature arithmetic below runs on contiguous rows
 def _features_full(obs, mean, var, psi):
+    psi = np.asarray(psi, dtype=np.float32)  # float32 cos/sin: vectorised, ~1e-7 rad is plenty
     c, s = np.cos(psi), np.sin(psi)
     bx, by = mean[:, 0], mean[:, 1]
-    pred = np.column_stack([bx * c + by * s, -bx * s + by * c, mean[:, 2]])
+    pred = np.empty((3, c.shape[0]), dtype=np.result_type(bx, c))
+    np.multiply(bx, c, out=pred[0])
+    pred[0] += by * s
+    np.multiply(by, c, out=pred[1])
+    pred[1] -= bx * s
+    pred[2] = mean[:, 2]
     c2, s2 = c * c, s * s
-    v = np.column_stack([var[:, 0] * c2 + var[:, 1] * s2, var[:, 0] * s2 + var[:, 1] * c2, var[:, 2]])
-    return np.array([obs.fwd_ut, obs.left_ut, obs.up_ut]), pred, v, (0, 1, 2)
+    v = np.empty_like(pred)
+    vx, vy = var[:, 0], var[:, 1]
+    np.multiply(vx, c2, out=v[0])
+    v[0] += vy * s2
+    np.multiply(vx, s2, out=v[1])
+    v[1] += vy * c2
+    v[2] = var[:, 2]
+    return np.array([obs.fwd_ut, obs.left_ut, obs.up_ut]), pred.T, v.T, (0, 1, 2)
 
 
 def _features_vh(obs, mean, var, psi):
-    bh = np.hypot(mean[:, 0], mean[:, 1])
-    vh = (mean[:, 0] ** 2 * var[:, 0] + mean[:, 1] ** 2 * var[:, 1]) / np.maximum(bh * bh, 1e-12)
-    pred = np.column_stack([bh, mean[:, 2]])
-    return np.array([obs.h_ut, obs.up_ut]), pred, np.column_stack([vh, var[:, 2]]), (0, 2)
+    bx, by = mean[:, 0], mean[:, 1]
+    pred = np.empty((2, bx.shape[0]), dtype=np.result_type(bx, var))
+    v = np.empty_like(pred)
+    bx2 = bx * bx
+    by2 = by * by
+    np.add(bx2, by2, out=pred[0])  # |h|^2
+    bx2 *= var[:, 0]
+    by2 *= var[:, 1]
+    np.add(bx2, by2, out=v[0])
+    v[0] /= np.maximum(pred[0], 1e-12)
+    np.sqrt(pred[0], out=pred[0])
+    pred[1] = mean[:, 2]
+    v[1] = var[:, 2]
+    return np.array([obs.h_ut, obs.up_ut]), pred.T, v.T, (0, 2)
 
 
 def _features_total(obs, mean, var, psi):
@@ -141,12 +165,15 @@ def _gaussian(r, s2, settings):
 
 def _student_t(r, s2, settings):
     nu = settings.student_nu
-    return (
-        gammaln(0.5 * (nu + 1.0))
-        - gammaln(0.5 * nu)
-        - 0.5 * np.log(nu * np.pi * s2)
-        - 0.5 * (nu + 1.0) * np.log1p(r * r / (nu * s2))
-    )
+    c0 = math.lgamma(0.5 * (nu + 1.0)) - math.lgamma(0.5 * nu) - 0.5 * math.log(nu * math.pi)
+    out = r * r
+    out /= s2
+    out *= 1.0 / nu
+    np.log1p(out, out=out)
+    out *= -0.5 * (nu + 1.0)
+    out -= 0.5 * np.log(s2)
+    out += c0
+    return out
 
 
 #: name -> log density of a residual given its variance (scale²)
@@ -194,21 +221,40 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, look
     y, pred, mvar, bidx = feats(obs, mean, var, psi_rad)
     bidx = list(bidx)
     tau = s.field_temper
-    v = s.map_var_scale * mvar + (sensor_noise_ut**2 / max(obs.n, 1) + s.mismatch_ut**2)
-    b = bias_ut[:, bidx]
-    p = bias_var_ut2[:, bidx]
-    r = y[None, :] - pred - b
-    s2 = v + tau * p
-    ll = tau * np.sum(dens(r, s2, s), axis=1)
-    if np.any(np.isnan(ll)):
+    k = len(bidx)
+    # per-feature rows (k, N): contiguous when the feature set made them so
+    pred_t, mvar_t = pred.T, mvar.T
+    b_t = np.asarray(bias_ut).T[bidx]
+    p_t = np.asarray(bias_var_ut2).T[bidx]
+    const = sensor_noise_ut**2 / max(obs.n, 1) + s.mismatch_ut**2
+    s2 = mvar_t * s.map_var_scale if s.map_var_scale != 1.0 else mvar_t.copy()
+    s2 += const
+    s2 += tau * p_t  # V + tau P
+    r = np.subtract(y.astype(pred_t.dtype)[:, None], pred_t)
+    r -= b_t  # y - pred - b_hat
+    ll_k = dens(r.T, s2.T, s).T  # (k, N)
+    ll = ll_k[0] * tau if k == 1 else np.sum(ll_k, axis=0)
+    if k > 1:
+        ll *= tau
+    if math.isnan(float(np.sum(ll))) and np.any(np.isnan(ll)):
         raise ConvergenceError("field log-likelihood is NaN (map or observation holds NaN)")
     covered = cov <= s.coverage_max_m
-    gain = np.where(covered[:, None], tau * p / s2, 0.0)
-    new_b = bias_ut.copy()
-    new_p = bias_var_ut2.copy()
-    new_b[:, bidx] = b + gain * r
-    new_p[:, bidx] = (1.0 - gain) * p
-    if not np.all(covered):
+    all_covered = bool(covered.all())
+    gain = p_t * tau
+    gain /= s2
+    if not all_covered:
+        gain *= covered
+    new_b = np.array(bias_ut, order="K")  # copies keep the (column) layout
+    new_p = np.array(bias_var_ut2, order="K")
+    nb_t, np_t = new_b.T, new_p.T
+    for j, c in enumerate(bidx):
+        g = gain[j]
+        upd = g * r[j]
+        upd += b_t[j]
+        nb_t[c] = upd  # b + K r
+        g *= p_t[j]
+        np.subtract(p_t[j], g, out=np_t[c])  # (1 - K) P
+    if not all_covered:
         if np.any(covered):
             lw = log_w[covered]
             a = lw + ll[covered]
@@ -224,7 +270,7 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, look
         chi2 = np.nan
         if np.any(covered):
             wc = np.where(covered, np.exp(log_w - log_w.max()), 0.0)
-            d2 = np.sum(r * r / s2, axis=1) * (1.0 / r.shape[1])
+            d2 = np.sum(r * r / s2, axis=0) * (1.0 / k)
             chi2 = float(wc @ np.where(covered, d2, 0.0) / wc.sum())
         return ll, new_b, new_p, chi2
     return ll, new_b, new_p

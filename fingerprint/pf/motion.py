@@ -28,7 +28,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["GraphTables", "graph_tables", "move", "edge_point"]
+from ._noise import normal32
+
+__all__ = ["GraphTables", "graph_tables", "move", "move_arrays", "edge_point", "edge_xy"]
 
 _EPS_M = 1e-9
 
@@ -52,6 +54,17 @@ class GraphTables:
     cand_t, pad_prior_t : (D, K), ``cand`` and ``pad_prior`` transposed
     edge_tab : (E, 5) float, per edge unit x, unit y, length (m), start x, y (one gather)
     end_node : (E, 2) int64, node reached travelling forward / backward
+    edge_ux, edge_uy, edge_x0, edge_y0, edge_len : (E,) float, the columns of
+        ``edge_tab`` as contiguous arrays (one 1-D gather each)
+    edge_u32 : (2, E) float32, unit x and y (for the float32 heading terms)
+    arrive_node : (2 E,) int64, ``end_node`` flattened: entry ``2 e + (d < 0)``
+    arrive_slot : (2 E,) int64, slot of edge ``e`` itself in the reached
+        node's incidence list (the way back)
+    arrive_dead : (2 E,) bool, the reached node is a dead end
+    out_cs32_t : (2, D, K) float32, ``out_cs_t`` in float32
+    slot_len : (K * D,) float, length of the edge in each slot (0 for padding)
+    valid_t : (D, K) float32, 1 for a real slot, 0 for padding
+    degree : (K,) int64, node degree
     """
 
     cand: np.ndarray
@@ -66,6 +79,19 @@ class GraphTables:
     pad_prior_t: np.ndarray
     edge_tab: np.ndarray
     end_node: np.ndarray
+    edge_ux: np.ndarray = None
+    edge_uy: np.ndarray = None
+    edge_x0: np.ndarray = None
+    edge_y0: np.ndarray = None
+    edge_len: np.ndarray = None
+    edge_u32: np.ndarray = None
+    arrive_node: np.ndarray = None
+    arrive_slot: np.ndarray = None
+    arrive_dead: np.ndarray = None
+    out_cs32_t: np.ndarray = None
+    slot_len: np.ndarray = None
+    valid_t: np.ndarray = None
+    degree: np.ndarray = None
 
 
 def graph_tables(graph):
@@ -92,18 +118,45 @@ def graph_tables(graph):
     end_node = np.ascontiguousarray(graph.edges[:, ::-1], dtype=np.int64)
     dead_end = deg == 1
     out_cs_t = np.ascontiguousarray(np.stack([out_cos.T, out_sin.T]))
+    arrive_node = end_node.reshape(-1)
+    e2 = np.repeat(np.arange(graph.n_edges), 2)
+    arrive_slot = np.argmax(cand[arrive_node] == e2[:, None], axis=1).astype(np.int64)
+    slot_len = np.where(valid, graph.length_m[c], 0.0).reshape(-1)
     return GraphTables(
         cand=cand, out_dir=out_dir, out_cos=out_cos, out_sin=out_sin, start_offset_m=start, pad_prior=pad_prior,
         dead_end=dead_end, out_cs_t=out_cs_t, cand_t=np.ascontiguousarray(cand.T),
         pad_prior_t=np.ascontiguousarray(pad_prior.T), edge_tab=edge_tab, end_node=end_node,
+        edge_ux=np.ascontiguousarray(graph.unit[:, 0], dtype=float),
+        edge_uy=np.ascontiguousarray(graph.unit[:, 1], dtype=float),
+        edge_x0=np.ascontiguousarray(edge_tab[:, 3]), edge_y0=np.ascontiguousarray(edge_tab[:, 4]),
+        edge_len=np.ascontiguousarray(graph.length_m, dtype=float),
+        edge_u32=np.ascontiguousarray(graph.unit.T, dtype=np.float32),
+        arrive_node=arrive_node, arrive_slot=arrive_slot, arrive_dead=dead_end[arrive_node],
+        out_cs32_t=out_cs_t.astype(np.float32), slot_len=slot_len,
+        valid_t=np.ascontiguousarray(valid.T, dtype=np.float32), degree=deg.astype(np.int64),
     )
 
 
 def edge_point(tables, edge, offset_m):
     """Plan positions (N, 2) of graph positions whose offsets are already
-    within their edges (``FloorGraph.point`` without the clip, one gather)."""
-    t = np.take(tables.edge_tab, edge, axis=0)
-    return t[:, 3:5] + t[:, 0:2] * offset_m[:, None]
+    within their edges (``FloorGraph.point`` without the clip)."""
+    x, y = edge_xy(tables, edge, offset_m)
+    return np.column_stack([x, y])
+
+
+def edge_xy(tables, edge, offset_m, *, out=None):
+    """:func:`edge_point` as two (N,) arrays ``x``, ``y`` (1-D gathers);
+    ``out`` : optional (2, N) float array to hold them."""
+    if out is None:
+        out = np.empty((2, np.shape(edge)[0]))
+    x, y = out
+    np.take(tables.edge_ux, edge, out=x)
+    x *= offset_m
+    x += tables.edge_x0.take(edge)
+    np.take(tables.edge_uy, edge, out=y)
+    y *= offset_m
+    y += tables.edge_y0.take(edge)
+    return x, y
 
 
 def _log_prior(p):
@@ -128,107 +181,161 @@ def move(state, length_m, heading_rad, *, graph, tables, settings, rng, earth_to
     state : ParticleState, moved, nuisance random walks applied
     log_lik : (N,) float, heading log-likelihood (0 when switched off)
     """
+    arrays, log_lik = move_arrays(state, length_m, heading_rad, tables=tables, settings=settings, rng=rng,
+                                  earth_to_plan_rad=earth_to_plan_rad, max_hops=max_hops)
+    return state.replace(**arrays), log_lik
+
+
+def move_arrays(state, length_m, heading_rad, *, tables, settings, rng, earth_to_plan_rad=0.0, max_hops=64):
+    """:func:`move` returning the changed arrays (dict: ``edge``,
+    ``offset_m``, ``direction``, ``heading_offset_rad``, ``scale``) instead
+    of a new state, and the (N,) heading log-likelihood."""
     s = settings
     n = state.n
-    # all random numbers of the update in two calls (float32 normals are
-    # plenty for the jitter); the uniforms are reused below
-    z = rng.standard_normal((3, n), dtype=np.float32)
-    u = rng.random(n)
+    # the jitter normals of the update in one call (float32 is plenty)
+    z = normal32(rng, 3 * n)
     # nuisance random walks
     hoff = state.heading_offset_rad
     if s.heading_rw_rad > 0:
-        hoff = hoff + s.heading_rw_rad * z[0]
+        hoff = hoff + np.float32(s.heading_rw_rad) * z[:n]
     scale = state.scale
     if s.scale_rw > 0:
-        scale = np.clip(scale + s.scale_rw * z[1], 0.5, 1.5)
-    hp = hoff + (heading_rad + earth_to_plan_rad)
-    hp32 = hp.astype(np.float32)  # float32 cos/sin: vectorised, ~1e-7 rad is plenty
-    ch, sh = np.cos(hp32), np.sin(hp32)
+        scale = scale + np.float32(s.scale_rw) * z[n : 2 * n]
+        np.clip(scale, 0.5, 1.5, out=scale)
+    hp32 = np.add(hoff, heading_rad + earth_to_plan_rad, dtype=np.float32)
+    ch, sh = np.cos(hp32), np.sin(hp32)  # float32 cos/sin: vectorised, ~1e-7 rad is plenty
     dist = length_m * scale
     # relative and absolute length noise: one Gaussian with both variances,
     # L s (1 + f e1) + m e2  ~  L s + sqrt((L s f)^2 + m^2) e
     f, m = s.length_sigma_frac, s.length_sigma_m
     if f > 0 or m > 0:
-        sd = np.sqrt((dist * f) ** 2 + m * m) if f > 0 else m
-        dist += sd * z[2]
+        if f > 0:
+            sd = dist * f
+            sd *= sd
+            sd += m * m
+            np.sqrt(sd, out=sd)
+            sd *= z[2 * n :]
+        else:
+            sd = m * z[2 * n :]
+        dist += sd
     remaining = np.maximum(dist, 0.0, out=dist)
 
-    kappa = s.heading_kappa
-    lp_rev = _log_prior(s.reverse_prior)
-    edge = state.edge.copy()
+    kappa = float(s.heading_kappa)
+    p_rev = max(float(s.reverse_prior), 0.0)
+    lp_rev = _log_prior(p_rev)
+    edge = state.edge
 
     # decision 1: go on or turn back on the current edge.
     # s_on = kappa (c - 1), s_back = kappa (-c - 1) + log p_rev, so with
     # x = exp(s_back - s_on): P(back) = x / (1 + x), lse = s_on + log1p(x)
-    et = np.take(tables.edge_tab, edge, axis=0)  # (N, 5)
-    direc = state.direction
-    cosf = (ch * et[:, 0] + sh * et[:, 1]) * direc
-    x = np.exp(lp_rev - 2.0 * kappa * cosf)
-    p_back = x / (1.0 + x)
-    back = u < p_back
-    # the uniform, given the branch taken, is uniform again on [0, 1):
-    # reuse it for the first node choice (one uniform draw per update)
-    u = np.where(back, u / np.maximum(p_back, 1e-300), (u - p_back) / np.maximum(1.0 - p_back, 1e-300))
-    np.clip(u, 0.0, np.nextafter(1.0, 0.0), out=u)
-    direc = np.where(back, -direc, direc).astype(np.int8)
-    log_lik = np.minimum(0.0, kappa * (cosf - 1.0) + np.log1p(x))
+    direc0 = state.direction
+    cosf = tables.edge_u32[0].take(edge)
+    cosf *= ch
+    t = tables.edge_u32[1].take(edge)
+    t *= sh
+    cosf += t
+    cosf *= direc0
+    x = cosf * np.float32(-2.0 * kappa)
+    x += np.float32(lp_rev)
+    np.exp(x, out=x)
+    p_back = x + np.float32(1.0)
+    np.divide(x, p_back, out=p_back)
+    back = rng.random(n, dtype=np.float32) < p_back
+    direc = back.view(np.int8) * np.int8(-2)
+    direc += np.int8(1)
+    direc *= direc0  # -direction where turning back
+    log_lik = cosf - np.float32(1.0)
+    log_lik *= np.float32(kappa)
+    log_lik += np.log1p(x)
+    np.minimum(log_lik, 0.0, out=log_lik)
 
     # travel, choosing an edge at each node reached (inverse-CDF draw over
     # the padded incident edges). First leg on the full arrays.
     o = state.offset_m
-    to_end = np.where(direc > 0, et[:, 2] - o, o)
-    stp = np.minimum(remaining, to_end)
-    off = o + direc * stp
+    # distance to the edge's end ahead: len - o forwards, o backwards,
+    # = len / 2 + d (len / 2 - o)
+    half = tables.edge_len.take(edge)
+    half *= 0.5
+    to_end = half - o
+    to_end *= direc
+    to_end += half
+    stp = np.minimum(remaining, to_end, out=to_end)
+    off = stp * direc
+    off += o
     remaining -= stp
     moving = np.flatnonzero(remaining > _EPS_M)
+    if moving.size:
+        edge = edge.copy()
     d_max = tables.cand.shape[1]
-    # scores are <= 0 and the best real option scores >= -2 kappa, so
-    # exp() cannot underflow for every option unless kappa is huge
-    need_top = 2.0 * kappa > 600.0
-    fresh = False
+    # option weights exp(kappa (cos - 1)) are in [exp(-2 kappa), 1]: float32
+    # cannot underflow for every option unless kappa is large; then the best
+    # score is taken out first
+    need_top = 2.0 * kappa > 80.0
+    ch_k = ch * np.float32(kappa)
+    sh_k = sh * np.float32(kappa)
     for _ in range(max_hops):
         if moving.size == 0:
             break
-        e = np.take(edge, moving)
-        dr = np.take(direc, moving)
-        node = np.take(tables.end_node, 2 * e + (dr < 0))
+        mm = moving.size
+        e = edge.take(moving)
+        ae = e * 2
+        ae += direc.take(moving) < 0
+        node = tables.arrive_node.take(ae)
         # (D, m) layout: each option's row is contiguous
-        cand = np.take(tables.cand_t, node, axis=1)  # (D, m)
-        prior = np.where(cand == e, np.where(np.take(tables.dead_end, node), 0.0, lp_rev),
-                         np.take(tables.pad_prior_t, node, axis=1))
-        cs = np.take(tables.out_cs_t, node, axis=2)  # (2, D, m)
-        score = np.take(ch, moving) * cs[0]
-        score += np.take(sh, moving) * cs[1]
-        score -= 1.0
-        score *= kappa
-        score += prior
+        cs = np.take(tables.out_cs32_t, node, axis=2)  # (2, D, m)
+        score = cs[0]
+        score *= ch_k.take(moving)
+        cs[1] *= sh_k.take(moving)
+        score += cs[1]
+        score -= np.float32(kappa)  # kappa (cos(h - angle) - 1)
         if need_top:
+            score += np.take(tables.pad_prior_t, node, axis=1)  # padding: -inf
             top = score.max(axis=0)
             score -= top
+            w = np.exp(score, out=score)
         else:
-            top = 0.0
-        cdf = np.exp(score)
+            w = np.exp(score, out=score)
+            w *= np.take(tables.valid_t, node, axis=1)  # padding: weight 0
+        # the way back has prior p_rev, except at a dead end
+        back_flat = tables.arrive_slot.take(ae)
+        back_flat *= mm
+        back_flat += np.arange(mm)
+        fac = np.where(tables.arrive_dead.take(ae), np.float32(1.0), np.float32(p_rev))
+        wf = w.reshape(-1)
+        wf[back_flat] *= fac
         for j in range(1, d_max):  # running sum over the D options (faster than cumsum here)
-            cdf[j] += cdf[j - 1]
-        total = cdf[-1]
-        uu = rng.random(moving.size) if fresh else np.take(u, moving)
-        fresh = True
-        slot = np.count_nonzero(cdf < uu * total, axis=0)
-        flat = node * d_max + np.minimum(slot, d_max - 1)
-        log_lik[moving] += np.minimum(0.0, top + np.log(total))
-        e = np.take(tables.cand, flat)
-        dr = np.take(tables.out_dir, flat)
-        o = np.take(tables.start_offset_m, flat)
+            w[j] += w[j - 1]
+        total = w[-1]
+        # threshold in (0, total]: the first option whose running sum reaches
+        # it has weight > 0
+        thr = rng.random(mm, dtype=np.float32)
+        thr *= total
+        np.maximum(thr, np.float32(np.finfo(np.float32).smallest_subnormal), out=thr)
+        slot = (w[0] < thr).astype(np.int64)
+        for j in range(1, d_max - 1):
+            slot += w[j] < thr
+        lse = np.log(total)
+        if need_top:
+            lse += top
+        np.minimum(lse, 0.0, out=lse)
+        log_lik[moving] += lse
+        flat = node * d_max
+        flat += slot
+        e = tables.cand.take(flat)
+        dr = tables.out_dir.take(flat)
+        o = tables.start_offset_m.take(flat)
         edge[moving] = e
         direc[moving] = dr
-        rem = np.take(remaining, moving)
-        to_end = np.where(dr > 0, np.take(tables.edge_tab[:, 2], e) - o, o)
-        stp = np.minimum(rem, to_end)
-        off[moving] = o + dr * stp
+        rem = remaining.take(moving)
+        # leaving a node, the whole edge lies ahead
+        stp = np.minimum(rem, tables.slot_len.take(flat))
         rem -= stp
+        stp *= dr
+        stp += o
+        off[moving] = stp
         remaining[moving] = rem
         moving = moving[rem > _EPS_M]
     if not s.use_heading_likelihood:
         log_lik = np.zeros(n)
-    new = state.replace(edge=edge, offset_m=off, direction=direc, heading_offset_rad=hoff, scale=scale)
-    return new, log_lik
+    arrays = {"edge": edge, "offset_m": off, "direction": direc, "heading_offset_rad": hoff, "scale": scale}
+    return arrays, log_lik

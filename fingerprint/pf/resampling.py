@@ -60,7 +60,35 @@ def systematic_resample(weights, rng=None, *, u=None):
     if u is None:
         u = rng.random()
     positions = (u + np.arange(n)) / n
-    return np.searchsorted(_cumulative(w), positions, side="right").astype(np.int64)
+    return _sorted_search(_cumulative(w), positions, u)
+
+
+def _sorted_search(c, positions, u):
+    """``np.searchsorted(c, positions, side="right")`` for the systematic
+    positions ``(u + i) / N``, in O(N) without a binary search per position.
+
+    Index ``j`` receives the positions in ``[c[j-1], c[j])``: with
+    ``K(x) = #{i : positions[i] < x}`` it gets ``K(c[j]) - K(c[j-1])`` of them.
+    ``K`` is about ``ceil(N x - u)``; it is corrected against the positions
+    themselves (the same comparisons as the binary search makes), so the
+    result is exactly searchsorted's.
+    """
+    n = positions.size
+    k = c * n
+    k -= u
+    np.ceil(k, out=k)
+    np.clip(k, 0, n, out=k)
+    k = k.astype(np.int64)
+    ext = np.concatenate([[-np.inf], positions, [np.inf]])  # ext[k] = positions[k - 1]
+    for _ in range(4):  # rounding can put k off by one, rarely
+        low = np.take(ext, k + 1) < c  # positions[k] < c: k too small
+        high = np.take(ext, k) >= c  # positions[k - 1] >= c: k too large
+        if not (low.any() or high.any()):
+            counts = np.diff(k, prepend=0)
+            return np.repeat(np.arange(n, dtype=np.int64), counts)
+        k += low
+        k -= high
+    return np.searchsorted(c, positions, side="right").astype(np.int64)
 
 
 def stratified_resample(weights, rng=None, *, u=None):

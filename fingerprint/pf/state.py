@@ -7,7 +7,7 @@ from dataclasses import dataclass, fields, replace
 
 import numpy as np
 
-__all__ = ["ParticleState", "normalise_log_weights", "effective_sample_size"]
+__all__ = ["ParticleState", "normalise_log_weights", "effective_sample_size", "take_rows"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -22,7 +22,8 @@ class ParticleState:
     heading_offset_rad : (N,) float, added to every earth heading before it is
         rotated into the plan (residual misalignment of the device heading)
     scale : (N,) float, step-length (or odometry) scale factor
-    bias_ut : (N, 3) float, µT, mean of the per-particle field-bias estimate:
+    bias_ut : (N, 3) float, µT, mean of the per-particle field-bias estimate
+        (the filter keeps it and ``bias_var_ut2`` as float32, column-major):
         components (forward, left, up) in the device frame, so the horizontal
         part turns with the device as a residual calibration offset does
     bias_var_ut2 : (N, 3) float, µT², variance of that estimate (the bias is
@@ -51,13 +52,21 @@ class ParticleState:
     def take(self, index) -> "ParticleState":
         """The particles at ``index`` ((M,) int), log-weights reset to uniform."""
         index = np.asarray(index, dtype=np.int64)
-        arrays = {f.name: np.take(getattr(self, f.name), index, axis=0) for f in fields(self)}
-        arrays["log_w"] = np.full(index.shape[0], -np.log(index.shape[0]))
-        return ParticleState(**arrays)
+        arrays = {f.name: take_rows(getattr(self, f.name), index) for f in fields(self) if f.name != "log_w"}
+        return ParticleState(**arrays, log_w=np.full(index.shape[0], -np.log(index.shape[0])))
 
     def weights(self):
         """(N,) float, normalised linear weights."""
         return np.exp(self.log_w - np.logaddexp.reduce(self.log_w))
+
+
+def take_rows(a, index):
+    """``np.take(a, index, axis=0)`` that keeps the memory layout of a 2-D
+    ``a``: a column-major (N, k) array gives a column-major result, gathered
+    one contiguous column at a time."""
+    if a.ndim == 2 and a.flags.f_contiguous and not a.flags.c_contiguous:
+        return np.take(a.T, index, axis=1).T
+    return np.take(a, index, axis=0)
 
 
 def normalise_log_weights(log_w):
