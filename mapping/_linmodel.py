@@ -34,11 +34,10 @@ import numpy as np
 import scipy.linalg
 import scipy.linalg.blas
 import scipy.linalg.lapack
-import scipy.sparse
 
 from fingerprint.errors import ConvergenceError
 
-__all__ = ["SufficientStats", "accumulate", "log_marginal", "log_marginal_and_grad", "posterior", "Posterior"]
+__all__ = ["SufficientStats", "accumulate", "accumulate_separable", "log_marginal", "log_marginal_and_grad", "posterior", "Posterior"]
 
 _LOG2PI = float(np.log(2 * np.pi))
 
@@ -147,36 +146,124 @@ def accumulate(design, idx, xy, b, *, groups=None, rotations=None, n_walks=0, no
     st.blocks = blocks
     n = xy.shape[0]
     local = [np.zeros((len(ix), len(ix)), order="F") for ix in idx]
+    eye3 = np.eye(3)
     for s in range(0, n, chunk):
         sl = slice(s, min(s + chunk, n))
         feats = design(xy[sl])
         m = sl.stop - sl.start
         if w:
-            onehot = scipy.sparse.csr_matrix(
-                (np.ones(m), (groups[sl], np.arange(m))), shape=(w, m)
-            )
+            # Dense one-hot of the walks present in this chunk (usually one
+            # or two: samples come walk by walk), so the offset cross terms
+            # are plain matrix products.
+            present, member = np.unique(groups[sl], return_inverse=True)
+            onehot = np.zeros((m, present.size))
+            onehot[np.arange(m), member] = 1.0
         for c in range(3):
             f = feats[c]
-            ix = idx[c]
+            ix = np.asarray(idx[c])
             g = int(st.noise_group[c])
             y = b[sl, c]
             # upper triangle only (BLAS syrk, half the work of f.T @ f),
             # accumulated per component and embedded once at the end
             local[c] = scipy.linalg.blas.dsyrk(1.0, f.T, trans=0, lower=0, c=local[c], beta=1.0, overwrite_c=1)
-            st.bf[g, ix] += f.T @ y
             st.yy[c] += float(y @ y)
             st.n[c] += m
-            if w:
-                r = np.broadcast_to(np.eye(3)[c], (m, 3)) if rotations is None else rotations[sl, c, :]
-                for k in range(3):
-                    st.gfo[g][ix, :, k] += (onehot.multiply(r[:, k][None, :]).tocsr() @ f).T
-                st.goo[g] += np.asarray(onehot @ (r[:, :, None] * r[:, None, :]).reshape(m, 9)).reshape(w, 3, 3)
-                st.bo[g] += np.asarray(onehot @ (r * y[:, None]))
+            if not w:
+                st.bf[g, ix] += f.T @ y
+                continue
+            r = np.broadcast_to(eye3[c], (m, 3)) if rotations is None else rotations[sl, c, :]
+            # columns: y, then r[:, k] on the rows of walk a at 1 + 3 a + k
+            rhs = np.empty((m, 1 + 3 * present.size))
+            rhs[:, 0] = y
+            rhs[:, 1:] = (onehot[:, :, None] * r[:, None, :]).reshape(m, -1)
+            fr = f.T @ rhs
+            st.bf[g, ix] += fr[:, 0]
+            st.gfo[g][ix[:, None], present[None, :], :] += fr[:, 1:].reshape(ix.size, present.size, 3)
+            st.goo[g][present] += (onehot.T @ (r[:, :, None] * r[:, None, :]).reshape(m, 9)).reshape(-1, 3, 3)
+            st.bo[g][present] += onehot.T @ (r * y[:, None])
     for c in range(3):
         # ``idx[c]`` is increasing, so the local upper triangle is global upper
         st.gff[int(st.noise_group[c])][np.ix_(idx[c], idx[c])] += np.triu(local[c])
     for g in range(st.n_groups):
         st.gff[g] = np.triu(st.gff[g]) + np.triu(st.gff[g], 1).T
+    return st
+
+
+def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=None, n_walks=0, noise_group=(0, 0, 1),
+                         chunk=8192, blocks=None):
+    """:func:`accumulate` for designs whose component ``c`` is
+    ``[sign_c * f_kind_c(x), 1]``, ``f`` a kind of basis function of
+    ``basis`` (:class:`mapping.gp_hilbert.BoxBasis`): the same statistics
+    from the separable algebra of the basis (module docstring of
+    :mod:`mapping.gp_hilbert`), ``O(N J_x J_y)`` instead of ``O(N m^2)``,
+    without forming the design.
+
+    Parameters
+    ----------
+    basis : BoxBasis
+    kinds : three (kind, sign) pairs, one per component
+    idx : three (m + 1,) int arrays: the field parameters of each
+        component's basis functions, then of its constant
+    other parameters : as :func:`accumulate`
+
+    Returns
+    -------
+    SufficientStats
+    """
+    m = basis.n
+    idx = [np.asarray(ix, dtype=np.int64) for ix in idx]
+    if any(ix.shape != (m + 1,) for ix in idx):
+        raise ValueError(f"each component needs {m} basis and one constant parameter")
+    n_field = int(max(int(ix.max()) for ix in idx) + 1)
+    w = int(n_walks) if groups is not None else 0
+    st = SufficientStats.zeros(n_field, w, noise_group)
+    st.blocks = blocks
+    n = xy.shape[0]
+    jx, jy = basis.n_modes
+    cos_tab = np.zeros((2 * jx + 1, 2 * jy + 1))
+    ones_tab = [np.zeros((jx + 1, jy + 1)) for _ in kinds]
+    eye3 = np.eye(3)
+    for s in range(0, n, chunk):
+        sl = slice(s, min(s + chunk, n))
+        q = basis.harmonics_at(xy[sl])  # sines and cosines shared by all tables
+        k_n = sl.stop - sl.start
+        cos_tab += basis.cos_table(q)
+        if w:
+            present, member = np.unique(groups[sl], return_inverse=True)
+            onehot = np.zeros((k_n, present.size))
+            onehot[np.arange(k_n), member] = 1.0
+        for c, (kind, sign) in enumerate(kinds):
+            g = int(st.noise_group[c])
+            y = b[sl, c]
+            ixb, ic = idx[c][:m], idx[c][m]
+            # weights: 1, y, then r[:, k] on the rows of each present walk
+            cols = [np.ones(k_n), y]
+            if w:
+                r = np.broadcast_to(eye3[c], (k_n, 3)) if rotations is None else rotations[sl, c, :]
+                wr = (onehot[:, :, None] * r[:, None, :]).reshape(k_n, -1)
+                cols.append(wr)
+            wts = np.column_stack(cols)
+            tab = basis.trig_tables(q, wts, [kind])[kind]
+            ones_tab[c] += tab[0]
+            proj = basis.project(tab[1:], kind, sign)
+            st.bf[g, ixb] += proj[0]
+            st.bf[g, ic] += float(y.sum())
+            st.yy[c] += float(y @ y)
+            st.n[c] += k_n
+            if w:
+                st.gfo[g][ixb[:, None], present[None, :], :] += proj[1:].T.reshape(m, present.size, 3)
+                st.gfo[g][ic, present, :] += (onehot.T @ r)
+                st.goo[g][present] += (onehot.T @ (r[:, :, None] * r[:, None, :]).reshape(k_n, 9)).reshape(-1, 3, 3)
+                st.bo[g][present] += onehot.T @ (r * y[:, None])
+    for c, (kind, sign) in enumerate(kinds):
+        g = int(st.noise_group[c])
+        ixb, ic = idx[c][:m], idx[c][m]
+        cnt = float(st.n[c])
+        st.gff[g][np.ix_(ixb, ixb)] += basis.gram(cos_tab, kind, sign)
+        lin = basis.project(ones_tab[c][None], kind, sign)[0]
+        st.gff[g][ixb, ic] += lin
+        st.gff[g][ic, ixb] += lin
+        st.gff[g][ic, ic] += cnt
     return st
 
 

@@ -325,11 +325,13 @@ class _ReducedRankGP(_Fitted):
         local_all = None if codes is None else np.searchsorted(self.walk_codes_, np.where(sel, codes, codes[sel][0]))
 
         def stats_of(mask):
-            return _linmodel.accumulate(
-                lambda q: self._design(basis, q), self.idx_, xy[mask], b[mask],
+            # the separable algebra of the basis: the same statistics as
+            # _linmodel.accumulate over self._design, without the O(N m^2)
+            return _linmodel.accumulate_separable(
+                basis, self._kinds, self.idx_, xy[mask], b[mask],
                 groups=None if codes is None else local_all[mask],
                 rotations=None if rotations is None else rotations[mask],
-                n_walks=0 if codes is None else self.walk_codes_.size, chunk=int(self.chunk),
+                n_walks=0 if codes is None else self.walk_codes_.size, chunk=4 * int(self.chunk),
                 blocks=self._blocks(basis.n),
             )
 
@@ -533,17 +535,34 @@ class _ReducedRankGP(_Fitted):
         }
 
     # -- prediction ------------------------------------------------------------
-    def _predict_with(self, mean_f, cov_f, xy, chunk=4096):
+    def _predict_with(self, mean_f, cov_f, xy, chunk=8192, return_var=True):
+        """Latent mean and variance (None if not ``return_var``) at points
+        from the weights ``mean_f`` and their covariance ``cov_f``. Both
+        are trigonometric polynomials in the position (separable algebra of
+        :mod:`mapping.gp_hilbert`): ``O(m^2)`` once to collapse the
+        covariance, then ``O(J_x J_y)`` per point instead of ``O(m^2)``."""
+        basis = self.basis_
+        m = basis.n
         out_m = np.empty((xy.shape[0], 3))
-        out_v = np.empty((xy.shape[0], 3))
-        blocks = [cov_f[np.ix_(ix, ix)] for ix in self.idx_]
+        out_v = np.empty((xy.shape[0], 3)) if return_var else None
+        terms = []
+        for c, (kind, sign) in enumerate(self._kinds):
+            ixb, ic = self.idx_[c][:m], self.idx_[c][m]
+            t = {"lin": basis.collapse_linear(mean_f[ixb], kind, sign), "const": mean_f[ic]}
+            if return_var:
+                t["quad"] = basis.collapse_quadratic(cov_f[np.ix_(ixb, ixb)], kind, sign)
+                t["cross"] = basis.collapse_linear(cov_f[ixb, ic], kind, sign)
+                t["var_const"] = cov_f[ic, ic]
+            terms.append(t)
         for s in range(0, xy.shape[0], chunk):
-            feats = self._design(self.basis_, xy[s : s + chunk])
-            for c in range(3):
-                f = feats[c]
-                out_m[s : s + chunk, c] = f @ mean_f[self.idx_[c]]
-                out_v[s : s + chunk, c] = np.einsum("ij,ij->i", f @ blocks[c], f)
-        return out_m, np.maximum(out_v, 0.0)
+            q = basis.harmonics_at(xy[s : s + chunk])  # shared by the components
+            for c, (kind, _) in enumerate(self._kinds):
+                t = terms[c]
+                out_m[s : s + chunk, c] = basis.eval_trig(t["lin"], kind, q) + t["const"]
+                if return_var:
+                    out_v[s : s + chunk, c] = (basis.eval_cos(t["quad"], q) + 2.0 * basis.eval_trig(t["cross"], kind, q)
+                                               + t["var_const"])
+        return out_m, (np.maximum(out_v, 0.0) if return_var else None)
 
     def _weight(self, xy):
         """(N,) blending weight of this tile at points (smooth ramp over the
@@ -557,14 +576,14 @@ class _ReducedRankGP(_Fitted):
         ramp = u * u * (3 - 2 * u)  # smoothstep
         return np.where(np.all(d >= 0, axis=1), ramp.prod(axis=1), 0.0)
 
-    def _blend_points(self, xy, posts=None):
+    def _blend_points(self, xy, posts=None, return_var=True):
         """Blend the parts' latent predictions: (mean (N, 3), var (N, 3));
-        var is the mixture variance. Points no tile covers get the data mean
-        and the prior variance."""
+        var is the mixture variance (None if not ``return_var``). Points no
+        tile covers get the data mean and the prior variance."""
         posts = posts or [(p.mean_f_, p.cov_f_) for p in self.parts_]
         if len(self.parts_) == 1 and self.parts_[0].box_ is None:
             p = self.parts_[0]
-            return p._predict_with(posts[0][0], posts[0][1], xy)
+            return p._predict_with(posts[0][0], posts[0][1], xy, return_var=return_var)
         w_sum = np.zeros(xy.shape[0])
         m_sum = np.zeros((xy.shape[0], 3))
         s_sum = np.zeros((xy.shape[0], 3))
@@ -573,20 +592,23 @@ class _ReducedRankGP(_Fitted):
             inside = w > 0
             if not inside.any():
                 continue
-            m, v = p._predict_with(mf, cf, xy[inside])
+            m, v = p._predict_with(mf, cf, xy[inside], return_var=return_var)
             wi = w[inside][:, None]
             w_sum[inside] += w[inside]
             m_sum[inside] += wi * m
-            s_sum[inside] += wi * (v + m**2)
-        return self._finish_blend(w_sum, m_sum, s_sum)
+            if return_var:
+                s_sum[inside] += wi * (v + m**2)
+        return self._finish_blend(w_sum, m_sum, s_sum, return_var)
 
-    def _finish_blend(self, w_sum, m_sum, s_sum):
+    def _finish_blend(self, w_sum, m_sum, s_sum, return_var=True):
         ok = w_sum > 0
         mean = np.empty_like(m_sum)
-        var = np.empty_like(s_sum)
         mean[ok] = m_sum[ok] / w_sum[ok][:, None]
-        var[ok] = np.maximum(s_sum[ok] / w_sum[ok][:, None] - mean[ok] ** 2, 0.0)
         mean[~ok] = self.fallback_mean_
+        if not return_var:
+            return mean, None
+        var = np.empty_like(s_sum)
+        var[ok] = np.maximum(s_sum[ok] / w_sum[ok][:, None] - mean[ok] ** 2, 0.0)
         var[~ok] = self.hyper_["magnitude_ut"] ** 2
         return mean, var
 
@@ -607,7 +629,7 @@ class _ReducedRankGP(_Fitted):
         """
         self._check_fitted()
         xy = _check_query(xy)
-        mean, var = self._blend_points(xy)
+        mean, var = self._blend_points(xy, return_var=return_var)
         if not return_var:
             return mean
         return mean, var + self.between_walk_var_[None, :]
@@ -615,8 +637,8 @@ class _ReducedRankGP(_Fitted):
     def predict_grid(self, xs, ys, return_var=True):
         """Mapped field on the raster ``xs`` (nx,) x ``ys`` (ny,) using the
         separable basis: ``mean (ny, nx, 3)``, ``var (ny, nx, 3)`` (as
-        :meth:`predict`). Cost ``O(ny m^2 + nx ny J^2)`` per box instead of
-        ``O(nx ny m^2)`` for point-wise evaluation."""
+        :meth:`predict`). Cost ``O(m^2 + nx ny J)`` per box (``J`` modes
+        per axis) instead of ``O(nx ny m^2)`` for point-wise evaluation."""
         self._check_fitted()
         xs = np.asarray(xs, float)
         ys = np.asarray(ys, float)
@@ -649,42 +671,22 @@ class _ReducedRankGP(_Fitted):
         return mean, var.reshape(ny, nx, 3) + self.between_walk_var_[None, None, :]
 
     def _grid_single(self, xs, ys, return_var=True):
-        fx, dfx, fy, dfy = self.basis_.factors(xs, ys)
-        nb = self.basis_.n
-        order = np.argsort(self.basis_.jx, kind="stable")
-        jx = self.basis_.jx[order] - 1
-        jy = self.basis_.jy[order] - 1
-        used, starts = np.unique(jx, return_index=True)
+        # mean and variance are trigonometric polynomials in x and y (see
+        # _predict_with); on a raster each is two small matrix products
+        basis = self.basis_
+        m = basis.n
         mean = np.empty((ys.size, xs.size, 3))
         var = np.empty((ys.size, xs.size, 3))
-        for c, (gx, gy) in enumerate(self._grid_factors(fx, dfx, fy, dfy)):
-            ix = self.idx_[c]
-            w = self.mean_f_[ix]
-            cov = self.cov_f_[np.ix_(ix, ix)]
-            # Mean: sum_j w_j gx[a, jx_j] gy[b, jy_j] = (gy @ W @ gx^T)[b, a].
-            wm = np.zeros((fy.shape[1], fx.shape[1]))
-            np.add.at(wm, (jy, jx), w[:nb][order])
-            mean[..., c] = gy @ wm @ gx.T + w[nb]
+        for c, (kind, sign) in enumerate(self._kinds):
+            ixb, ic = self.idx_[c][:m], self.idx_[c][m]
+            lin = basis.collapse_linear(self.mean_f_[ixb], kind, sign)
+            mean[..., c] = basis.eval_trig_grid(lin, kind, xs, ys) + self.mean_f_[ic]
             if not return_var:
                 continue
-            # Variance of basis part + constant: per raster row b, scale the
-            # covariance by gy[b, jy_j] gy[b, jy_k], sum it over basis
-            # functions sharing a jx mode (-> J x J), then a quadratic form
-            # in gx[a, :].
-            cbb = cov[:nb, :nb][np.ix_(order, order)]
-            cbc = cov[:nb, nb][order]
-            ccc = cov[nb, nb]
-            gxu = gx[:, used]
-            cm = np.zeros((fy.shape[1], fx.shape[1]))
-            np.add.at(cm, (jy, jx), cbc)
-            cross = gy @ cm @ gx.T  # (ny, nx): sum_j g_j C_jc
-            gyb_all = gy[:, jy]  # (ny, nb)
-            for r in range(ys.size):
-                gyb = gyb_all[r]
-                ct = cbb * gyb[:, None] * gyb[None, :]
-                mm = np.add.reduceat(np.add.reduceat(ct, starts, axis=0), starts, axis=1)
-                var[r, :, c] = np.einsum("ap,pq,aq->a", gxu, mm, gxu, optimize=True)
-            var[..., c] += 2.0 * cross + ccc
+            quad = basis.collapse_quadratic(self.cov_f_[np.ix_(ixb, ixb)], kind, sign)
+            cross = basis.collapse_linear(self.cov_f_[ixb, ic], kind, sign)
+            var[..., c] = (basis.eval_cos_grid(quad, xs, ys) + 2.0 * basis.eval_trig_grid(cross, kind, xs, ys)
+                           + self.cov_f_[ic, ic])
         if not return_var:
             return mean
         var = np.maximum(var, 0.0) + self.between_walk_var_[None, None, :]
@@ -734,6 +736,9 @@ class CurlFreeGP(_ReducedRankGP):
 
     name = "curl-free"
 
+    #: basis-function kind and sign of each component's design (b = -grad phi)
+    _kinds = (("dx", -1.0), ("dy", -1.0), ("phi", 1.0))
+
     def _layout(self, m):
         pot = np.arange(m)
         up = np.arange(m, 2 * m)
@@ -746,11 +751,9 @@ class CurlFreeGP(_ReducedRankGP):
         return [np.concatenate([np.arange(m), [2 * m, 2 * m + 1]]), np.append(np.arange(m, 2 * m), 2 * m + 2)]
 
     def _design(self, basis, xy):
-        dx, dy = basis.gradients(xy)
-        phi = basis.values(xy)
-        one = np.ones((xy.shape[0], 1))
         # B = -grad(phi): the potential weights enter with a minus sign.
-        return [np.hstack([-dx, one]), np.hstack([-dy, one]), np.hstack([phi, one])]
+        phi, dx, dy = basis.evaluate(xy, values=True, gradients=True, gradient_sign=-1.0, ones=1)
+        return [dx, dy, phi]
 
     def _prior_var(self, h):
         w = self.basis_.omega
@@ -772,9 +775,6 @@ class CurlFreeGP(_ReducedRankGP):
             "constant_ut": np.concatenate([np.zeros(2 * m), np.full(3, 2.0)]),
         }
 
-    def _grid_factors(self, fx, dfx, fy, dfy):
-        # b_x = -d phi/dx, b_y = -d phi/dy, b_up uses phi itself
-        return [(-dfx, fy), (fx, -dfy), (fx, fy)]
 
 
 class PerComponentGP(_ReducedRankGP):
@@ -783,6 +783,8 @@ class PerComponentGP(_ReducedRankGP):
     :class:`CurlFreeGP` (``n_basis`` per component)."""
 
     name = "per-component"
+
+    _kinds = (("phi", 1.0),) * 3
 
     def _layout(self, m):
         c = 3 * m
@@ -793,8 +795,7 @@ class PerComponentGP(_ReducedRankGP):
         return [np.concatenate([np.arange(2 * m), [3 * m, 3 * m + 1]]), np.append(np.arange(2 * m, 3 * m), 3 * m + 2)]
 
     def _design(self, basis, xy):
-        phi = basis.values(xy)
-        f = np.hstack([phi, np.ones((xy.shape[0], 1))])
+        f = basis.evaluate(xy, ones=1)[0]
         return [f, f, f]
 
     def _prior_var(self, h):
@@ -814,8 +815,6 @@ class PerComponentGP(_ReducedRankGP):
             "constant_ut": np.concatenate([np.zeros(3 * m), np.full(3, 2.0)]),
         }
 
-    def _grid_factors(self, fx, dfx, fy, dfy):
-        return [(fx, fy)] * 3
 
 
 class NearestMap(_Fitted):
