@@ -54,7 +54,7 @@ def test_systematic_search_equals_numpy_searchsorted():
             c = _cumulative(w / w.sum())
             for u in (0.0, float(rng.random()), 0.999999):
                 pos = (u + np.arange(n)) / n
-                np.testing.assert_array_equal(_sorted_search(c, pos, u), np.searchsorted(c, pos, side="right"))
+                np.testing.assert_array_equal(_sorted_search(c, u), np.searchsorted(c, pos, side="right"))
 
 
 def test_stratified_equals_filterpy_for_same_uniforms(monkeypatch):

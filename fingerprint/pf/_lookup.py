@@ -4,13 +4,17 @@ precision.
 
 Particles live on the floor graph, so only the raster cells that the graph
 passes through are ever looked up. :class:`MapTable` keeps, for those cells
-only, the four bilinear coefficients of the seven channels (mean 3, variance
-3, coverage 1) in float32: one lookup is one gather of 28 numbers per
-particle and ``A + B wx + (C + D wx) wy``. The table is channel-major
-(28, M), so the gather gives one contiguous row per coefficient and the
-arithmetic runs on contiguous (7, N) blocks; the (N, 3) results are views
-with contiguous columns. A query in a cell that is not in the table (a
-point off the graph) falls back to ``FieldMap.lookup``.
+only, the four bilinear coefficients ``A, B, C, D`` of the eight channels
+(mean 3, coverage 1, variance 3, padding 1) in float32: one lookup is one
+gather of 32 numbers per particle and ``A + B wx + (C + D wx) wy``.
+
+Layout: four channels of one coefficient (16 bytes) form one complex128
+item, so the table is (8, M) complex128. ``np.take`` along the cell axis
+then copies 16-byte items (much faster than 4-byte ones); viewed as float32
+the result is (8, 4 N): two rows per coefficient, particle-major inside a
+row, and the arithmetic runs on contiguous rows with the weights repeated
+four times. The (N, 3) results are strided views. A query in a cell that
+is not in the table (a point off the graph) falls back to ``FieldMap.lookup``.
 """
 
 from __future__ import annotations
@@ -58,9 +62,10 @@ class MapTable:
     Attributes
     ----------
     row : (ny * nx,) int32, row of each cell in ``coef`` (-1 = not stored)
-    coef : (28, M) float32, per stored cell (column) the coefficients
-        ``A, B, C, D`` (rows ``7 k .. 7 k + 6`` for coefficient ``k``) of the
-        7 channels (mean 3, variance 3, coverage)
+    coef : (8, M) complex128 holding float32 quadruples: item ``(2 k + h, m)``
+        is channels ``4 h .. 4 h + 3`` of coefficient ``k`` (``A, B, C, D``) of
+        stored cell ``m``; channels: mean east, north, up, coverage, variance
+        east, north, up, 0
     """
 
     def __init__(self, fmap):
@@ -74,12 +79,15 @@ class MapTable:
         ix1 = np.minimum(ix + 1, nx - 1)
         iy1 = np.minimum(iy + 1, ny - 1)
         cov = np.minimum(fmap.coverage_m, _COVERAGE_CAP_M)[..., None]
-        chans = [np.concatenate([fmap.mean_ut[j, i], fmap.var_ut2[j, i], cov[j, i]], axis=-1)
+        pad = np.zeros(cov.shape)
+        chans = [np.concatenate([fmap.mean_ut[j, i], cov[j, i], fmap.var_ut2[j, i], pad[j, i]], axis=-1)
                  for j, i in ((iy, ix), (iy, ix1), (iy1, ix), (iy1, ix1))]
-        a, b, c, d = chans  # (M, 7) float64 each
-        self.coef = np.zeros((28, cells.size), dtype=np.float32)
+        a, b, c, d = chans  # (M, 8) float64 each
+        quads = np.zeros((8, cells.size, 4), dtype=np.float32)
         for k, v in enumerate((a, b - a, c - a, d - c - b + a)):
-            self.coef[7 * k : 7 * k + 7] = v.T
+            quads[2 * k] = v[:, 0:4]
+            quads[2 * k + 1] = v[:, 4:8]
+        self.coef = quads.view(np.complex128).reshape(8, cells.size)
         self.row = np.full(ny * nx, -1, dtype=np.int32)
         self.row[cells] = np.arange(cells.size, dtype=np.int32)
 
@@ -96,6 +104,7 @@ class MapTable:
     def lookup_xy(self, x, y):
         """:meth:`lookup` at positions given as (N,) ``x`` and ``y``."""
         nx, ny = self.nx, self.ny
+        n = x.shape[0]
         fx = x - self.x0
         fx *= 1.0 / self.res
         fy = y - self.y0
@@ -110,25 +119,24 @@ class MapTable:
         np.minimum(ix, max(nx - 2, 0), out=ix)
         iy = fy.astype(np.int32)
         np.minimum(iy, max(ny - 2, 0), out=iy)
-        wx = np.subtract(fx, ix, dtype=np.float32)
-        wy = np.subtract(fy, iy, dtype=np.float32)
+        wx = np.subtract(fx, ix, dtype=np.float32).repeat(4)  # one weight per channel of a quadruple
+        wy = np.subtract(fy, iy, dtype=np.float32).repeat(4)
         iy *= nx
         iy += ix
-        row = np.take(self.row, iy)
-        # one gather (np.take is much faster than fancy indexing); rows of
-        # cells not in the table (-1) are replaced below
-        g = np.take(self.coef, row, axis=1)  # (28, N)
-        out, b, c, d = g[0:7], g[7:14], g[14:21], g[21:28]
+        row = self.row.take(iy)
+        # one gather; rows of cells not in the table (-1) are replaced below
+        g = self.coef.take(row, axis=1).view(np.float32)  # (8, 4 N)
+        out, b, c, d = g[0:2], g[2:4], g[4:6], g[6:8]
         b *= wx
         out += b
         d *= wx
         d += c
         d *= wy
-        out += d  # A + B wx + (C + D wx) wy, (7, N)
-        cov = out[6]
+        out += d  # A + B wx + (C + D wx) wy
+        q0, q1 = out[0].reshape(n, 4), out[1].reshape(n, 4)
+        mean, cov, var = q0[:, 0:3], q0[:, 3], q1[:, 0:3]
         if inside is not None and not inside.all():
             cov = np.where(inside, cov, np.inf)
-        mean, var = out[0:3].T, out[3:6].T
         if row.size and row.min() < 0:
             missing = row < 0
             xy = np.column_stack([x[missing], y[missing]])

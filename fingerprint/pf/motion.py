@@ -24,7 +24,7 @@ a penalty when none does (a particle that cannot follow the walker).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -57,14 +57,16 @@ class GraphTables:
     edge_ux, edge_uy, edge_x0, edge_y0, edge_len : (E,) float, the columns of
         ``edge_tab`` as contiguous arrays (one 1-D gather each)
     edge_u32 : (2, E) float32, unit x and y (for the float32 heading terms)
-    arrive_node : (2 E,) int64, ``end_node`` flattened: entry ``2 e + (d < 0)``
-    arrive_slot : (2 E,) int64, slot of edge ``e`` itself in the reached
-        node's incidence list (the way back)
-    arrive_dead : (2 E,) bool, the reached node is a dead end
-    out_cs32_t : (2, D, K) float32, ``out_cs_t`` in float32
-    slot_len : (K * D,) float, length of the edge in each slot (0 for padding)
-    valid_t : (D, K) float32, 1 for a real slot, 0 for padding
-    degree : (K,) int64, node degree
+    arr_cs : (2, D, 2 E) float32, ``out_cs_t`` of the node reached along
+        edge ``e`` travelling forward (column ``2 e``) or backward (``2 e + 1``)
+    arr_valid : (D, 2 E) float32, 1 for a real slot of that node, 0 for padding
+    arr_back : (D, 2 E) bool, the slot is the way back (edge ``e`` itself) and
+        the node is not a dead end
+    arr_cand, arr_dir, arr_start, arr_len : (2 E * D,), for arrival ``a``
+        and slot ``j`` (entry ``a * D + j``): edge, direction, start offset and
+        length of leaving along that slot (length 0 for padding)
+    _prior_cache : dict, option prior weights per ``reverse_prior`` (see
+        :meth:`arrival_prior`)
     """
 
     cand: np.ndarray
@@ -85,13 +87,25 @@ class GraphTables:
     edge_y0: np.ndarray = None
     edge_len: np.ndarray = None
     edge_u32: np.ndarray = None
-    arrive_node: np.ndarray = None
-    arrive_slot: np.ndarray = None
-    arrive_dead: np.ndarray = None
-    out_cs32_t: np.ndarray = None
-    slot_len: np.ndarray = None
-    valid_t: np.ndarray = None
-    degree: np.ndarray = None
+    arr_cs: np.ndarray = None
+    arr_valid: np.ndarray = None
+    arr_back: np.ndarray = None
+    arr_cand: np.ndarray = None
+    arr_dir: np.ndarray = None
+    arr_start: np.ndarray = None
+    arr_len: np.ndarray = None
+    _prior_cache: dict = field(default_factory=dict, repr=False)
+
+    def arrival_prior(self, reverse_prior):
+        """(D, 2 E) float32 prior weight of each option on arrival: 1, or
+        ``reverse_prior`` for the way back (not at a dead end), 0 for padding;
+        and its log (-inf for padding). Cached per ``reverse_prior``."""
+        key = float(reverse_prior)
+        if key not in self._prior_cache:
+            w = np.where(self.arr_back, np.float32(max(key, 0.0)), np.float32(1.0)) * self.arr_valid
+            with np.errstate(divide="ignore"):
+                self._prior_cache[key] = (w.astype(np.float32), np.log(w).astype(np.float32))
+        return self._prior_cache[key]
 
 
 def graph_tables(graph):
@@ -118,10 +132,10 @@ def graph_tables(graph):
     end_node = np.ascontiguousarray(graph.edges[:, ::-1], dtype=np.int64)
     dead_end = deg == 1
     out_cs_t = np.ascontiguousarray(np.stack([out_cos.T, out_sin.T]))
-    arrive_node = end_node.reshape(-1)
-    e2 = np.repeat(np.arange(graph.n_edges), 2)
-    arrive_slot = np.argmax(cand[arrive_node] == e2[:, None], axis=1).astype(np.int64)
-    slot_len = np.where(valid, graph.length_m[c], 0.0).reshape(-1)
+    arrive = end_node.reshape(-1)  # node reached by arrival 2 e + (d < 0)
+    came = np.repeat(np.arange(graph.n_edges), 2)
+    arr_back = (cand[arrive] == came[:, None]) & ~dead_end[arrive][:, None]
+    slot_len = np.where(valid, graph.length_m[c], 0.0)
     return GraphTables(
         cand=cand, out_dir=out_dir, out_cos=out_cos, out_sin=out_sin, start_offset_m=start, pad_prior=pad_prior,
         dead_end=dead_end, out_cs_t=out_cs_t, cand_t=np.ascontiguousarray(cand.T),
@@ -131,9 +145,11 @@ def graph_tables(graph):
         edge_x0=np.ascontiguousarray(edge_tab[:, 3]), edge_y0=np.ascontiguousarray(edge_tab[:, 4]),
         edge_len=np.ascontiguousarray(graph.length_m, dtype=float),
         edge_u32=np.ascontiguousarray(graph.unit.T, dtype=np.float32),
-        arrive_node=arrive_node, arrive_slot=arrive_slot, arrive_dead=dead_end[arrive_node],
-        out_cs32_t=out_cs_t.astype(np.float32), slot_len=slot_len,
-        valid_t=np.ascontiguousarray(valid.T, dtype=np.float32), degree=deg.astype(np.int64),
+        arr_cs=np.ascontiguousarray(out_cs_t[:, :, arrive], dtype=np.float32),
+        arr_valid=np.ascontiguousarray(valid[arrive].T, dtype=np.float32),
+        arr_back=np.ascontiguousarray(arr_back.T),
+        arr_cand=cand[arrive].reshape(-1), arr_dir=out_dir[arrive].reshape(-1),
+        arr_start=start[arrive].reshape(-1), arr_len=slot_len[arrive].reshape(-1),
     )
 
 
@@ -271,38 +287,31 @@ def move_arrays(state, length_m, heading_rad, *, tables, settings, rng, earth_to
     # cannot underflow for every option unless kappa is large; then the best
     # score is taken out first
     need_top = 2.0 * kappa > 80.0
+    prior_w, prior_log = tables.arrival_prior(p_rev)
     ch_k = ch * np.float32(kappa)
     sh_k = sh * np.float32(kappa)
     for _ in range(max_hops):
         if moving.size == 0:
             break
         mm = moving.size
-        e = edge.take(moving)
-        ae = e * 2
-        ae += direc.take(moving) < 0
-        node = tables.arrive_node.take(ae)
+        ae = edge.take(moving)
+        ae *= 2
+        ae += direc.take(moving) < 0  # arrival index 2 e + (d < 0)
         # (D, m) layout: each option's row is contiguous
-        cs = np.take(tables.out_cs32_t, node, axis=2)  # (2, D, m)
+        cs = tables.arr_cs.take(ae, axis=2)  # (2, D, m)
         score = cs[0]
         score *= ch_k.take(moving)
         cs[1] *= sh_k.take(moving)
         score += cs[1]
         score -= np.float32(kappa)  # kappa (cos(h - angle) - 1)
         if need_top:
-            score += np.take(tables.pad_prior_t, node, axis=1)  # padding: -inf
+            score += prior_log.take(ae, axis=1)
             top = score.max(axis=0)
             score -= top
             w = np.exp(score, out=score)
         else:
             w = np.exp(score, out=score)
-            w *= np.take(tables.valid_t, node, axis=1)  # padding: weight 0
-        # the way back has prior p_rev, except at a dead end
-        back_flat = tables.arrive_slot.take(ae)
-        back_flat *= mm
-        back_flat += np.arange(mm)
-        fac = np.where(tables.arrive_dead.take(ae), np.float32(1.0), np.float32(p_rev))
-        wf = w.reshape(-1)
-        wf[back_flat] *= fac
+            w *= prior_w.take(ae, axis=1)  # way back p_rev, padding 0
         for j in range(1, d_max):  # running sum over the D options (faster than cumsum here)
             w[j] += w[j - 1]
         total = w[-1]
@@ -311,27 +320,24 @@ def move_arrays(state, length_m, heading_rad, *, tables, settings, rng, earth_to
         thr = rng.random(mm, dtype=np.float32)
         thr *= total
         np.maximum(thr, np.float32(np.finfo(np.float32).smallest_subnormal), out=thr)
-        slot = (w[0] < thr).astype(np.int64)
+        flat = ae * d_max
+        flat += w[0] < thr
         for j in range(1, d_max - 1):
-            slot += w[j] < thr
+            flat += w[j] < thr
         lse = np.log(total)
         if need_top:
             lse += top
         np.minimum(lse, 0.0, out=lse)
         log_lik[moving] += lse
-        flat = node * d_max
-        flat += slot
-        e = tables.cand.take(flat)
-        dr = tables.out_dir.take(flat)
-        o = tables.start_offset_m.take(flat)
-        edge[moving] = e
+        edge[moving] = tables.arr_cand.take(flat)
+        dr = tables.arr_dir.take(flat)
         direc[moving] = dr
         rem = remaining.take(moving)
         # leaving a node, the whole edge lies ahead
-        stp = np.minimum(rem, tables.slot_len.take(flat))
+        stp = np.minimum(rem, tables.arr_len.take(flat))
         rem -= stp
         stp *= dr
-        stp += o
+        stp += tables.arr_start.take(flat)
         off[moving] = stp
         remaining[moving] = rem
         moving = moving[rem > _EPS_M]

@@ -59,36 +59,44 @@ def systematic_resample(weights, rng=None, *, u=None):
     n = w.size
     if u is None:
         u = rng.random()
-    positions = (u + np.arange(n)) / n
-    return _sorted_search(_cumulative(w), positions, u)
+    return _sorted_search(_cumulative(w), u)
 
 
-def _sorted_search(c, positions, u):
+def _sorted_search(c, u):
     """``np.searchsorted(c, positions, side="right")`` for the systematic
-    positions ``(u + i) / N``, in O(N) without a binary search per position.
+    positions ``(u + i) / N`` (``N = c.size``), in O(N) without a binary search per position.
 
     Index ``j`` receives the positions in ``[c[j-1], c[j])``: with
     ``K(x) = #{i : positions[i] < x}`` it gets ``K(c[j]) - K(c[j-1])`` of them.
-    ``K`` is about ``ceil(N x - u)``; it is corrected against the positions
-    themselves (the same comparisons as the binary search makes), so the
-    result is exactly searchsorted's.
+    ``K`` is about ``ceil(N x - u)``; it is corrected with the positions
+    ``(u + K) / N`` and ``(u + K - 1) / N`` computed as the positions array
+    computes them (the same comparisons a binary search makes), so the result
+    is exactly searchsorted's.
     """
-    n = positions.size
+    n = c.size
+    # entries above 1 (round-off before the last) act as 1: every position is < 1
+    c = np.minimum(c, 1.0)
     k = c * n
     k -= u
     np.ceil(k, out=k)
-    np.clip(k, 0, n, out=k)
-    k = k.astype(np.int64)
-    ext = np.concatenate([[-np.inf], positions, [np.inf]])  # ext[k] = positions[k - 1]
+    np.clip(k, 0, n, out=k)  # float array of integers
     for _ in range(4):  # rounding can put k off by one, rarely
-        low = np.take(ext, k + 1) < c  # positions[k] < c: k too small
-        high = np.take(ext, k) >= c  # positions[k - 1] >= c: k too large
+        p = k + u
+        p /= n
+        low = p < c  # positions[k] < c: k too small (never for k = n: p >= 1 >= c)
+        p = k - 1.0
+        p += u
+        p /= n
+        high = p >= c  # positions[k - 1] >= c: k too large (never for k = 0: p < 0 <= c)
         if not (low.any() or high.any()):
-            counts = np.diff(k, prepend=0)
+            k = k.astype(np.int64)
+            counts = np.empty_like(k)
+            counts[0] = k[0]
+            np.subtract(k[1:], k[:-1], out=counts[1:])
             return np.repeat(np.arange(n, dtype=np.int64), counts)
         k += low
         k -= high
-    return np.searchsorted(c, positions, side="right").astype(np.int64)
+    return np.searchsorted(c, (u + np.arange(n)) / n, side="right").astype(np.int64)
 
 
 def stratified_resample(weights, rng=None, *, u=None):
