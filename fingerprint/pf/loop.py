@@ -146,11 +146,13 @@ def _predict_bias(state, s):
     """Bias prediction over one update: a random walk (constant per-walk
     bias) or, with ``bias_corr_updates``, a first-order autoregression towards
     0 whose stationary variance is the bias prior."""
-    has = state.bias_var_ut2 > 0
+    var = state.bias_var_ut2
     if s.bias_corr_updates is None:
-        q = has * np.asarray(s.bias_rw_ut**2, dtype=state.bias_var_ut2.dtype)
-        q += state.bias_var_ut2
-        return state.bias_ut, q
+        q = np.asarray(s.bias_rw_ut**2, dtype=var.dtype)
+        if var.size and var.min() > 0:  # every component has a bias state
+            return state.bias_ut, var + q
+        return state.bias_ut, (var > 0) * q + var
+    has = var > 0
     phi = float(np.exp(-1.0 / s.bias_corr_updates))
     up = s.bias_sigma0_ut if s.bias_up_sigma0_ut is None else s.bias_up_sigma0_ut
     prior = np.array([s.bias_sigma0_ut**2, s.bias_sigma0_ut**2, up**2])

@@ -244,9 +244,14 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, look
     gain /= s2
     if not all_covered:
         gain *= covered
-    new_b = np.array(bias_ut, order="K")  # copies keep the (column) layout
-    new_p = np.array(bias_var_ut2, order="K")
+    # new arrays of the same layout; the components without a feature are copied
+    new_b = np.empty_like(bias_ut, order="K")
+    new_p = np.empty_like(bias_var_ut2, order="K")
     nb_t, np_t = new_b.T, new_p.T
+    for c in range(nb_t.shape[0]):
+        if c not in bidx:
+            nb_t[c] = np.asarray(bias_ut).T[c]
+            np_t[c] = np.asarray(bias_var_ut2).T[c]
     for j, c in enumerate(bidx):
         g = gain[j]
         upd = g * r[j]

@@ -226,9 +226,9 @@ def move_arrays(state, length_m, heading_rad, *, tables, settings, rng, earth_to
     f, m = s.length_sigma_frac, s.length_sigma_m
     if f > 0 or m > 0:
         if f > 0:
-            sd = dist * f
+            sd = np.multiply(dist, f, dtype=np.float32)  # the noise is float32 anyway
             sd *= sd
-            sd += m * m
+            sd += np.float32(m * m)
             np.sqrt(sd, out=sd)
             sd *= z[2 * n :]
         else:
