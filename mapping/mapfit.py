@@ -450,6 +450,14 @@ class _ReducedRankGP(_Fitted):
                 h[k] = float(np.exp(v))
             return h
 
+        # The objective is per observation: L-BFGS-B's first step is the
+        # raw gradient (all variables are bounded), which for the total over
+        # 100,000 samples jumps to a corner of the box where the normal
+        # equations are not positive definite, and the search then stops at
+        # the start. Scaling leaves the optimum and the stopping rules as
+        # they were (gtol scaled alike; ftol is relative).
+        n_obs = float(sum(int(p.stats_.n.sum()) for p in parts)) or 1.0
+
         def objective(theta):
             # tiles: the sum of the tiles' log marginal likelihoods (a
             # composite likelihood; one box: the exact one)
@@ -473,7 +481,7 @@ class _ReducedRankGP(_Fitted):
                         grad[i] += 2.0 * d_noise[1]
                     else:  # offset_ut
                         grad[i] += 2.0 * d_off
-            return -total, -grad
+            return -total / n_obs, -grad / n_obs
 
         theta0 = np.clip(np.log([hyper[k] for k in free]), bounds[:, 0], bounds[:, 1])
         # A coarse scan of the length scale first: the likelihood can be
@@ -489,7 +497,8 @@ class _ReducedRankGP(_Fitted):
                     best = (v, t)
             theta0 = best[1]
         res = scipy.optimize.minimize(
-            objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": 80, "ftol": 1e-8}
+            objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds,
+            options={"maxiter": 80, "ftol": 1e-8, "gtol": 1e-5 / n_obs},
         )
         h = unpack(res.x)
         at_bound = [k for k, v, (a, c) in zip(free, res.x, bounds) if v <= a + 1e-6 or v >= c - 1e-6]
@@ -497,7 +506,7 @@ class _ReducedRankGP(_Fitted):
             "optimised": True,
             "success": bool(res.success),
             "n_evaluations": int(res.nfev),
-            "neg_log_ml": float(res.fun),
+            "neg_log_ml": float(res.fun) * n_obs,
             "at_bound": at_bound,
             "length_scale_bounds_m": [float(lo_l), float(hi_l)],
         }
