@@ -34,6 +34,7 @@ from .errors import DataError
 from .pf.estimate import Estimate, cluster_estimate
 from .pf.loop import RecoveryTracker, filter_step, initial_state, make_context
 from .pf.measurement import window_observation
+from .pf.motion import edge_xy
 from .pf.settings import PRESETS, FilterSettings, preset
 from .records import Track
 
@@ -168,14 +169,17 @@ class Localiser:
         s = self.settings
         st = self.state
         graph = self._ctx.graph
-        xy = graph.point(st.edge, st.offset_m)
+        # the filter keeps offsets within their edges: positions without the clip
+        xy = np.empty((2, st.n))
+        edge_xy(self._ctx.tables, st.edge, st.offset_m, out=xy)
         w = st.weights()
-        mean, cov, conf = cluster_estimate(xy, w, radius_m=s.cluster_radius_m)
+        mean, cov, conf = cluster_estimate(xy.T, w, radius_m=s.cluster_radius_m)
         if s.project_estimate:
             e, o, _ = graph.project(mean[None, :])
             mean = graph.point(e, o)[0]
         sigma = float(np.sqrt(max(np.trace(cov), 0.0)))
-        hoff = float(np.arctan2(w @ np.sin(st.heading_offset_rad), w @ np.cos(st.heading_offset_rad)))
+        h32 = np.asarray(st.heading_offset_rad, dtype=np.float32)  # float32 sin/cos: vectorised, ~1e-7 rad
+        hoff = float(np.arctan2(w @ np.sin(h32).astype(float), w @ np.cos(h32).astype(float)))
         heading = (self._last_heading + self._ctx.earth_to_plan_rad + hoff + np.pi) % (2 * np.pi) - np.pi
         return Estimate(
             t=float(t),

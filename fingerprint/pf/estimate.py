@@ -55,32 +55,46 @@ def cluster_estimate(xy, w, *, radius_m):
     """
     xy = np.asarray(xy, dtype=float)
     w = np.asarray(w, dtype=float)
+    # per-coordinate 1-D arrays (views; contiguous when xy has contiguous columns)
+    x, y = xy[:, 0], xy[:, 1]
     if np.isfinite(radius_m):
-        cell = np.floor(xy / radius_m).astype(np.int64)
-        lo = cell.min(axis=0)
-        cell -= lo
-        span = cell.max(axis=0) + 1
-        if span[0] * span[1] <= 4_000_000:
-            mass = np.bincount(cell[:, 0] * span[1] + cell[:, 1], weights=w, minlength=span[0] * span[1])
-            pad = np.pad(mass.reshape(span[0], span[1]), 1)
-            box = sum(pad[i : i + span[0], j : j + span[1]] for i in range(3) for j in range(3))
+        cx = np.floor(x / radius_m).astype(np.int64)
+        cy = np.floor(y / radius_m).astype(np.int64)
+        cx -= cx.min()
+        cy -= cy.min()
+        sx, sy = int(cx.max()) + 1, int(cy.max()) + 1
+        if sx * sy <= 4_000_000:
+            key = cx * sy
+            key += cy
+            mass = np.bincount(key, weights=w, minlength=sx * sy)
+            pad = np.pad(mass.reshape(sx, sy), 1)
+            box = sum(pad[i : i + sx, j : j + sy] for i in range(3) for j in range(3))
             k = int(np.argmax(box))
-            best = np.array([k // span[1], k % span[1]])
+            bx, by = k // sy, k % sy
         else:  # a huge, sparse spread: the heaviest occupied cell
-            keys, inv = np.unique(cell, axis=0, return_inverse=True)
+            keys, inv = np.unique(np.column_stack([cx, cy]), axis=0, return_inverse=True)
             mass = np.bincount(inv.reshape(-1), weights=w, minlength=keys.shape[0])
-            best = keys[np.argmax(mass)]
-        near = (np.abs(cell[:, 0] - best[0]) <= 1) & (np.abs(cell[:, 1] - best[1]) <= 1)
+            bx, by = keys[np.argmax(mass)]
+        cx -= bx
+        cy -= by
+        near = (np.abs(cx) <= 1) & (np.abs(cy) <= 1)
         wn = w[near]
-        centre = (wn @ xy[near]) / max(wn.sum(), 1e-300)
-        d2 = np.sum((xy - centre) ** 2, axis=1)
-        member = d2 <= radius_m * radius_m
+        sw = max(wn.sum(), 1e-300)
+        dx = x - (wn @ x[near]) / sw
+        dy = y - (wn @ y[near]) / sw
+        dx *= dx
+        dy *= dy
+        dx += dy
+        member = dx <= radius_m * radius_m
+        wc, px, py = w[member], x[member], y[member]
     else:
-        member = np.ones(xy.shape[0], dtype=bool)
-    wc = w[member]
+        wc, px, py = w, x, y
     conf = float(wc.sum())
-    pc = xy[member]
-    mean = (wc @ pc) / max(conf, 1e-300)
-    dev = pc - mean
-    cov = (dev * wc[:, None]).T @ dev / max(conf, 1e-300)
+    c = max(conf, 1e-300)
+    mean = np.array([wc @ px, wc @ py]) / c
+    dx = px - mean[0]
+    dy = py - mean[1]
+    wdx = wc * dx
+    cxy = (wdx @ dy) / c
+    cov = np.array([[(wdx @ dx) / c, cxy], [cxy, (wc * dy) @ dy / c]])
     return mean, cov, min(conf, 1.0)

@@ -57,7 +57,13 @@ class ParticleState:
 
     def weights(self):
         """(N,) float, normalised linear weights."""
-        return np.exp(self.log_w - np.logaddexp.reduce(self.log_w))
+        top = np.max(self.log_w) if self.log_w.size else -np.inf
+        if not np.isfinite(top):
+            return np.exp(self.log_w - np.logaddexp.reduce(self.log_w))
+        w = self.log_w - top
+        np.exp(w, out=w)
+        w *= 1.0 / np.sum(w)
+        return w
 
 
 def take_rows(a, index):
