@@ -297,22 +297,14 @@ def _chol_inverse(chol):
 
 
 class _Factor:
-    """Cholesky factorisation of S, block by block when S is block-diagonal
-    for the given partition (exactly zero cross blocks), else whole."""
+    """Cholesky factorisation of a symmetric positive-definite S given as
+    its diagonal blocks ``blocks`` (list of square arrays, overwritten) on
+    the index sets ``parts`` (S is zero outside them)."""
 
-    def __init__(self, s, blocks=None):
-        n = s.shape[0]
-        parts = None
-        if blocks is not None and len(blocks) > 1:
-            bl = [np.asarray(b, dtype=np.int64) for b in blocks]
-            covered = sum(b.size for b in bl) == n
-            if covered and not any(
-                np.any(s[np.ix_(bl[i], bl[j])]) for i in range(len(bl)) for j in range(i + 1, len(bl))
-            ):
-                parts = bl
+    def __init__(self, n, parts, blocks):
         self.n = n
-        self.parts = parts if parts is not None else [np.arange(n)]
-        self.chols = [scipy.linalg.cho_factor(s[np.ix_(b, b)], lower=True, check_finite=False) for b in self.parts]
+        self.parts = parts
+        self.chols = [scipy.linalg.cho_factor(sb, lower=True, overwrite_a=True, check_finite=False) for sb in blocks]
 
     def solve(self, rhs):
         out = np.empty_like(rhs, dtype=float)
@@ -323,6 +315,10 @@ class _Factor:
     def logdet(self):
         return float(sum(2.0 * np.sum(np.log(np.diag(c[0]))) for c in self.chols))
 
+    def inverse_blocks(self):
+        """The diagonal blocks of S^-1 (S^-1 is zero outside them)."""
+        return [_chol_inverse(c) for c in self.chols]
+
     def inverse(self):
         if len(self.parts) == 1:
             return _chol_inverse(self.chols[0])
@@ -330,6 +326,38 @@ class _Factor:
         for b, c in zip(self.parts, self.chols):
             out[np.ix_(b, b)] = _chol_inverse(c)
         return out
+
+
+def _structure(st):
+    """The partition the normal equations are block-diagonal for at every
+    hyperparameter value: ``st.blocks`` when no sample (``F^T F``) and no
+    walk offset (``F^T R``, through the offset's 3 x 3 block) couples two
+    of its blocks, else the whole. A property of the zero pattern only, so
+    it is found once per statistics; the blocks of ``F^T F`` are cached
+    with it. Returns (parts, gff blocks (G, k, k) per part)."""
+    cache = st.__dict__.get("_structure_cache")
+    if cache is not None:
+        return cache
+    n = st.n_field
+    parts = [np.arange(n)]
+    if st.blocks is not None and len(st.blocks) > 1:
+        bl = [np.asarray(b, dtype=np.int64) for b in st.blocks]
+        ok = sum(b.size for b in bl) == n and np.unique(np.concatenate(bl)).size == n
+        if ok:
+            gabs = np.abs(st.gff).sum(axis=0)
+            ok = not any(np.any(gabs[np.ix_(bl[i], bl[j])]) for i in range(len(bl)) for j in range(i + 1, len(bl)))
+        if ok and st.n_walks:
+            used = np.abs(st.gfo).sum(axis=0) > 0  # (n, W, 3): parameter touches offset axis
+            link = (np.abs(st.goo).sum(axis=0) > 0) | np.eye(3, dtype=bool)[None]
+            for _ in range(2):  # closure: the pattern of the 3 x 3 inverse
+                link = np.einsum("wij,wjk->wik", link.astype(float), link.astype(float)) > 0
+            axes = [np.einsum("iwk,wkl->wl", used[b].astype(float), link.astype(float)) > 0 for b in bl]
+            ok = not any(np.any(axes[i] & used[bl[j]].any(axis=0)) for i in range(len(bl)) for j in range(len(bl)) if i != j)
+        if ok:
+            parts = bl
+    gffb = [st.gff[:, b[:, None], b[None, :]] for b in parts]
+    st._structure_cache = (parts, gffb)
+    return st._structure_cache
 
 
 def _floor_prior(prior_var_f):
@@ -340,14 +368,21 @@ def _floor_prior(prior_var_f):
 
 
 def _assemble(st, prior_var_f, noise_var, offset_var):
+    """The normal equations with the walk offsets eliminated: the factor
+    of S (block by block, see :func:`_structure`), the right-hand side and
+    the scalar terms of the marginal likelihood."""
     inv_nv = 1.0 / np.asarray(noise_var, float)  # per noise group
-    s = np.tensordot(inv_nv, st.gff, axes=1)
     bf = inv_nv @ st.bf
-    s[np.diag_indices_from(s)] += 1.0 / prior_var_f
     yy = float(np.sum(st.yy * inv_nv[st.noise_group]))
     ndet = float(np.sum(st.n * np.log(np.asarray(noise_var, float)[st.noise_group])))
     extra = {"quad": 0.0, "logdet": 0.0, "prior": 0.0}
     parts = None
+    blocks, gffb = _structure(st)
+    sb = []
+    for b, g in zip(blocks, gffb):
+        sub = np.tensordot(inv_nv, g, axes=1)
+        sub[np.diag_indices_from(sub)] += 1.0 / prior_var_f[b]
+        sb.append(sub)
     if st.n_walks:
         w = st.n_walks
         gfo = np.tensordot(inv_nv, st.gfo, axes=1).reshape(st.n_field, 3 * w)
@@ -356,14 +391,16 @@ def _assemble(st, prior_var_f, noise_var, offset_var):
         dc = np.linalg.cholesky(d)
         dinv = np.linalg.inv(d)
         gd = np.einsum("mwi,wij->mwj", gfo.reshape(st.n_field, w, 3), dinv).reshape(st.n_field, 3 * w)
-        s -= gd @ gfo.T
+        for b, sub in zip(blocks, sb):
+            sub -= gd[b] @ gfo[b].T
         bf = bf - gd @ bo.ravel()
         dib = np.einsum("wij,wj->wi", dinv, bo)
         extra["quad"] = float(np.sum(bo * dib))
         extra["logdet"] = 2.0 * float(np.sum(np.log(np.diagonal(dc, axis1=1, axis2=2))))
         extra["prior"] = 3 * w * float(np.log(offset_var))
-        parts = (gfo, dinv, dib)
-    return s, bf, yy, ndet, extra, parts
+        parts = (gfo, dinv, dib, gd)
+    fac = _Factor(st.n_field, blocks, sb)
+    return fac, bf, yy, ndet, extra, parts
 
 
 def _log_ml(st, fac, bf, solved, yy, ndet, extra, prior_var_f):
@@ -396,8 +433,7 @@ def log_marginal(st, prior_var_f, noise_var, offset_var=1.0):
     """
     prior_var_f = _floor_prior(prior_var_f)
     try:
-        s, bf, yy, ndet, extra, _ = _assemble(st, prior_var_f, noise_var, offset_var)
-        fac = _Factor(s, st.blocks)
+        fac, bf, yy, ndet, extra, _ = _assemble(st, prior_var_f, noise_var, offset_var)
     except (np.linalg.LinAlgError, scipy.linalg.LinAlgError):
         return -np.inf
     return _log_ml(st, fac, bf, fac.solve(bf), yy, ndet, extra, prior_var_f)
@@ -412,15 +448,14 @@ def posterior(st, prior_var_f, noise_var, offset_var=1.0):
     Posterior
     """
     prior_var_f = _floor_prior(prior_var_f)
-    s, bf, yy, ndet, extra, parts = _assemble(st, prior_var_f, noise_var, offset_var)
     try:
-        fac = _Factor(s, st.blocks)
+        fac, bf, yy, ndet, extra, parts = _assemble(st, prior_var_f, noise_var, offset_var)
     except (np.linalg.LinAlgError, scipy.linalg.LinAlgError) as err:
         raise ConvergenceError(f"field-map normal equations are not positive definite: {err}") from err
     mean_f = fac.solve(bf)
     cov_f = fac.inverse()
     if parts is not None:
-        gfo, dinv, dib = parts
+        gfo, dinv, dib, _ = parts
         w = st.n_walks
         mean_o = dib - np.einsum("wij,wj->wi", dinv, (gfo.T @ mean_f).reshape(w, 3))
     else:
@@ -452,14 +487,17 @@ def log_marginal_and_grad(st, prior_var_f, noise_var, offset_var=1.0):
     prior = _floor_prior(raw)
     noise_var = np.asarray(noise_var, float)
     try:
-        s, bf, yy, ndet, extra, parts = _assemble(st, prior, noise_var, offset_var)
-        fac = _Factor(s, st.blocks)
+        fac, bf, yy, ndet, extra, parts = _assemble(st, prior, noise_var, offset_var)
     except (np.linalg.LinAlgError, scipy.linalg.LinAlgError):
         return -np.inf, None, None, None
     mu_f = fac.solve(bf)
-    sinv = fac.inverse()
     value = _log_ml(st, fac, bf, mu_f, yy, ndet, extra, prior)
-    diag_f = np.diag(sinv)
+    # S^-1 is block-diagonal (see _structure): work block by block
+    blocks, gffb = _structure(st)
+    sinv = fac.inverse_blocks()
+    diag_f = np.empty(st.n_field)
+    for b, si in zip(blocks, sinv):
+        diag_f[b] = np.diag(si)
     d_prior = 0.5 * ((mu_f**2 + diag_f) / prior - 1.0)
     d_prior = np.where(raw >= prior, d_prior, 0.0)
     w = st.n_walks
@@ -467,18 +505,22 @@ def log_marginal_and_grad(st, prior_var_f, noise_var, offset_var=1.0):
     d_noise = np.empty(ng)
     d_off = 0.0
     if w:
-        gfo, dinv, dib = parts
+        gfo, dinv, dib, bd = parts  # bd = B D^-1
         mu_o = dib - np.einsum("wij,wj->wi", dinv, (gfo.T @ mu_f).reshape(w, 3))
-        bd = np.einsum("mwi,wij->mwj", gfo.reshape(st.n_field, w, 3), dinv)  # B D^-1
-        e = (sinv @ bd.reshape(st.n_field, 3 * w)).reshape(st.n_field, w, 3)  # S^-1 B D^-1
+        e = np.empty((st.n_field, 3 * w))  # S^-1 B D^-1
+        for b, si in zip(blocks, sinv):
+            e[b] = si @ bd[b]
+        bd = bd.reshape(st.n_field, w, 3)
+        e = e.reshape(st.n_field, w, 3)
         coo = dinv + np.einsum("mwi,mwj->wij", bd, e)  # diagonal blocks of C_oo
         d_off = float(0.5 * (np.sum(mu_o**2 + np.diagonal(coo, axis1=1, axis2=2)) / offset_var - 3 * w))
     for g in range(ng):
         rows = st.noise_group == g
         n_g = int(st.n[rows].sum())
         yy_g = float(st.yy[rows].sum())
-        resid = yy_g - 2 * float(mu_f @ st.bf[g]) + float(mu_f @ st.gff[g] @ mu_f)
-        tr = float(np.sum(sinv * st.gff[g]))
+        quad = sum(float(mu_f[b] @ gb[g] @ mu_f[b]) for b, gb in zip(blocks, gffb))
+        resid = yy_g - 2 * float(mu_f @ st.bf[g]) + quad
+        tr = sum(float(np.sum(si * gb[g])) for si, gb in zip(sinv, gffb))
         if w:
             gfo_g = st.gfo[g]  # (m_f, W, 3)
             resid += -2 * float(np.sum(mu_o * st.bo[g])) + 2 * float(mu_f @ np.einsum("mwj,wj->m", gfo_g, mu_o))
