@@ -35,7 +35,7 @@ from scipy import linalg
 from ._atomic import write_json_atomic
 from .errors import ConvergenceError, DataError, FormatError
 
-__all__ = ["Calibration", "fit_calibration", "ellipsoid_fit", "circle_fit", "rotation_coverage"]
+__all__ = ["Calibration", "fit_calibration", "turning_stretch", "ellipsoid_fit", "circle_fit", "rotation_coverage"]
 
 FORMAT = "lodemap-calibration"
 VERSION = 1
@@ -270,8 +270,52 @@ def _offset_from_total(h2, z, total_ut, up_sign):
     return zc - up_sign * v
 
 
+def turning_stretch(up_device, *, tilt_deg=20.0, min_samples=50, max_gap=150, pad=50, max_share=0.6):
+    """The stretch of a log where the device turned through many
+    orientations (a calibration motion such as a figure-of-eight), when the
+    rest of the log is carried level.
+
+    Samples whose up direction departs from the log's median up direction
+    by more than ``tilt_deg`` are "turning"; runs of them less than
+    ``max_gap`` samples apart are joined, and the run holding the most of
+    them, padded by ``pad`` samples on each side, is the stretch. A field
+    measured at one spot while the device turns lies on one ellipsoid; the
+    same fit over a whole walk mixes the field of every place walked.
+
+    Parameters
+    ----------
+    up_device : (N, 3) float, up direction in the device frame per sample
+
+    Returns
+    -------
+    (start, stop) sample indices, or None when there is no such stretch
+    (too few turning samples, or turning over more than ``max_share`` of
+    the log: then the whole log is one tumbling data set)
+    """
+    u = np.asarray(up_device, dtype=float).reshape(-1, 3)
+    n = u.shape[0]
+    u = u / np.linalg.norm(u, axis=1, keepdims=True)
+    med = np.median(u, axis=0)
+    if not np.linalg.norm(med) > 0:
+        return None
+    med /= np.linalg.norm(med)
+    turning = np.degrees(np.arccos(np.clip(u @ med, -1, 1))) > tilt_deg
+    idx = np.flatnonzero(turning)
+    if idx.size < min_samples:
+        return None
+    runs = np.split(idx, np.flatnonzero(np.diff(idx) > max_gap) + 1)
+    best = max(runs, key=len)
+    if best.size < min_samples:
+        return None
+    start, stop = max(0, int(best[0]) - pad), min(n, int(best[-1]) + 1 + pad)
+    if stop - start > max_share * n:
+        return None
+    return start, stop
+
+
 def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, min_samples=50, up_device=None,
-                    field_up_ut=None, planar_tilt_deg=20.0, field_total_ut=None, field_up_sign=-1.0):
+                    field_up_ut=None, planar_tilt_deg=20.0, field_total_ut=None, field_up_sign=-1.0,
+                    use_turning_stretch=True):
     """Fit hard- and soft-iron calibration to magnetometer readings.
 
     Parameters
@@ -309,6 +353,11 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         Sign of the true vertical field used with ``field_total_ut``: -1
         (default) where the field dips downwards (northern magnetic
         hemisphere), +1 south of the magnetic equator.
+    use_turning_stretch : bool
+        With ``up_device``: when the device turned through many
+        orientations in one stretch of an otherwise level log (a
+        calibration motion at the start of a survey walk), fit on that
+        stretch only (:func:`turning_stretch`; reported as ``stretch``).
 
     Returns
     -------
@@ -322,9 +371,15 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
     keep = np.isfinite(m).all(axis=1)
     m = m[keep]
     up_n = None
+    stretch = None
     if up_device is not None:
         u = np.asarray(up_device, dtype=float).reshape(-1, 3)[keep]
         u = u / np.linalg.norm(u, axis=1, keepdims=True)
+        if use_turning_stretch:
+            stretch = turning_stretch(u, tilt_deg=planar_tilt_deg, min_samples=min_samples)
+            if stretch is not None:
+                n_all = m.shape[0]
+                m, u = m[stretch[0] : stretch[1]], u[stretch[0] : stretch[1]]
         mean_u = u.mean(axis=0)
         mean_u /= np.linalg.norm(mean_u)
         tilt = np.degrees(np.arccos(np.clip(u @ mean_u, -1, 1)))
@@ -341,9 +396,13 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
     report = {"n_samples": int(m.shape[0]), "principal_sd_ut": sd[::-1].tolist(), "planarity": ratio}
     method = "ellipsoid"
     message = ""
+    if stretch is not None:
+        report["stretch"] = {"start": int(stretch[0]), "stop": int(stretch[1]), "of": int(n_all)}
+        message = (f"fitted on samples {stretch[0]}-{stretch[1]} of {n_all}, where the device turned through "
+                   "many orientations (a calibration motion); ")
     if up_n is not None:
         method = "circle-fallback"
-        message = (
+        message += (
             f"the device turned about the vertical only (95 % of up directions within {planar_tilt_deg:g}° "
             "of their mean); "
         )
@@ -358,13 +417,13 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
             else:
                 W = Wsym / np.cbrt(np.linalg.det(Wsym))
             offset = ctr
-            message = "ellipsoid fit (Li & Griffiths 2004): hard- and soft-iron identified"
+            message += "ellipsoid fit (Li & Griffiths 2004): hard- and soft-iron identified"
         except ConvergenceError as err:
             method = "circle-fallback"
-            message = f"ellipsoid fit failed ({err}); "
+            message += f"ellipsoid fit failed ({err}); "
     else:
         method = "circle-fallback"
-        message = (
+        message += (
             f"readings span rotations about one axis only (planarity {ratio:.3f} < {planar_ratio}); "
         )
     if method == "circle-fallback":

@@ -201,3 +201,42 @@ def test_expected_total_below_horizontal_is_reported():
 
     with pytest.raises(DataError):
         fit_calibration(m, up_device=up, field_total_ut=-3.0)
+
+
+def test_turning_stretch_is_fitted_alone():
+    # A survey walk: a calibration motion at one spot (full rotations, the
+    # field there fixed), then the device carried level while the field
+    # changes from place to place (indoor anomalies of ~10 µT, from memory).
+    # The fit on the turning stretch alone recovers the offset (truth: the
+    # synthetic O); over the whole walk the field's spatial changes pull the
+    # ellipsoid away from it.
+    from fingerprint.calibration import turning_stretch
+
+    rng = np.random.default_rng(21)
+    n_cal, n_walk = 1000, 6000
+    rot_cal = Rotation.random(n_cal, random_state=21)
+    yaw = np.cumsum(rng.normal(0, 0.02, n_walk))
+    rot_walk = Rotation.from_euler("z", yaw[:, None])
+    b_walk = B_EARTH + 10.0 * np.column_stack([np.sin(np.arange(n_walk) / 97.0 + k) for k in range(3)])
+    b_dev = np.vstack([rot_cal.inv().apply(B_EARTH), rot_walk.inv().apply(b_walk)])
+    m = b_dev @ S.T + O + rng.normal(0, 0.4, (n_cal + n_walk, 3))
+    up = np.vstack([rot_cal.inv().apply([0, 0, 1.0]), rot_walk.inv().apply([0, 0, 1.0])])
+    assert turning_stretch(up) is not None
+    start, stop = turning_stretch(up)
+    assert start == 0 and n_cal - 60 <= stop <= n_cal + 60
+    cal, rep = fit_calibration(m, up_device=up)
+    assert rep["method"] == "ellipsoid" and rep["stretch"]["stop"] == stop
+    assert np.abs(cal.offset_ut - O).max() < 0.5  # acceptance as for a clean sphere above
+    whole, _ = fit_calibration(m, up_device=up, use_turning_stretch=False)
+    assert np.abs(whole.offset_ut - O).max() > np.abs(cal.offset_ut - O).max()
+
+
+def test_turning_everywhere_or_nowhere_keeps_the_whole_log():
+    # a tumbling data set (the synthetic sphere above) and a level walk have
+    # no separate calibration stretch (common practice, no source)
+    from fingerprint.calibration import turning_stretch
+
+    up_tumble = Rotation.random(3000, random_state=3).inv().apply([0, 0, 1.0])
+    assert turning_stretch(up_tumble) is None
+    up_level = np.tile([0.05, 0.2, 0.98], (3000, 1))
+    assert turning_stretch(up_level) is None
