@@ -22,6 +22,8 @@ from .mapbuild import collect_samples, earth_to_plan_for, fit_samples, load_walk
 __all__ = ["features_of", "walk_offsets", "residual_scores", "heldout_scores", "truth_scores"]
 
 COMPONENTS = ("b_x", "b_y", "b_up")
+#: distance bands (m) from visible steel for :func:`truth_scores`
+STEEL_BANDS_M = ((0.0, 0.8), (0.8, 1.5), (1.5, 2.5), (2.5, float("inf")))
 FEATURES = ("b_up", "b_h", "b_total")
 
 
@@ -230,7 +232,10 @@ def truth_scores(fmap, field_model, *, height_m=1.0, coverage_limit_m=None):
     -------
     dict: residual scores, plus the RMSE after removing the mean residual
     (the survey devices' average offset, which no survey can separate from
-    the field)
+    the field); with a field model that knows its dipoles (``positions_m``,
+    ``kinds``), also ``by_steel_clearance``: the RMSE per component in bands
+    of distance from the edge mid-point to the nearest dipole of visible
+    steel (slab meshes left out), where the field is roughest
     """
     g = fmap.graph
     mid = 0.5 * (g.nodes_xy[g.edges[:, 0]] + g.nodes_xy[g.edges[:, 1]])
@@ -245,4 +250,19 @@ def truth_scores(fmap, field_model, *, height_m=1.0, coverage_limit_m=None):
     sc["mean_residual_ut"] = {c: float(v) for c, v in zip(COMPONENTS, bias)}
     rr = truth - mean - bias
     sc["rmse_bias_removed_ut"] = {c: float(np.sqrt(np.mean(rr[:, i] ** 2))) for i, c in enumerate(COMPONENTS)}
+    pos, kinds = getattr(field_model, "positions_m", None), getattr(field_model, "kinds", None)
+    if pos is not None and kinds is not None and len(pos):
+        steel = np.char.find(np.asarray(kinds).astype(str), "mesh") < 0
+        if steel.any():
+            d, _ = cKDTree(np.asarray(pos, float)[steel]).query(
+                np.column_stack([mid, np.full(mid.shape[0], float(height_m))]))
+            r = truth - mean
+            bands = {}
+            for lo, hi in STEEL_BANDS_M:
+                m = (d >= lo) & (d < hi)
+                if m.any():
+                    bands[f"{lo:g}-{hi:g} m"] = {
+                        "n": int(m.sum()),
+                        "rmse_ut": {c: float(np.sqrt(np.mean(r[m, i] ** 2))) for i, c in enumerate(COMPONENTS)}}
+            sc["by_steel_clearance"] = bands
     return sc
