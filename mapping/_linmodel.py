@@ -133,7 +133,8 @@ def accumulate(design, idx, xy, b, *, groups=None, rotations=None, n_walks=0, no
     chunk : int, samples per chunk
     blocks : list of index arrays or None, a partition of the field
         parameters; when the normal equations turn out block-diagonal for
-        it (no sample or walk offset couples two blocks) each block is
+        it (no sample or walk offset couples two blocks; coupled ones are
+        merged) each block is
         factorised on its own, which is exact and much cheaper
 
     Returns
@@ -330,31 +331,43 @@ class _Factor:
 
 def _structure(st):
     """The partition the normal equations are block-diagonal for at every
-    hyperparameter value: ``st.blocks`` when no sample (``F^T F``) and no
-    walk offset (``F^T R``, through the offset's 3 x 3 block) couples two
-    of its blocks, else the whole. A property of the zero pattern only, so
-    it is found once per statistics; the blocks of ``F^T F`` are cached
+    hyperparameter value: the blocks of ``st.blocks``, merged where a
+    sample (``F^T F``) or a walk offset (``F^T R``, through the offset's
+    3 x 3 block) couples two of them. A property of the zero pattern only,
+    so it is found once per statistics; the blocks of ``F^T F`` are cached
     with it. Returns (parts, gff blocks (G, k, k) per part)."""
     cache = st.__dict__.get("_structure_cache")
     if cache is not None:
         return cache
     n = st.n_field
     parts = [np.arange(n)]
-    if st.blocks is not None and len(st.blocks) > 1:
-        bl = [np.asarray(b, dtype=np.int64) for b in st.blocks]
-        ok = sum(b.size for b in bl) == n and np.unique(np.concatenate(bl)).size == n
-        if ok:
-            gabs = np.abs(st.gff).sum(axis=0)
-            ok = not any(np.any(gabs[np.ix_(bl[i], bl[j])]) for i in range(len(bl)) for j in range(i + 1, len(bl)))
-        if ok and st.n_walks:
+    bl = [np.asarray(b, dtype=np.int64) for b in (st.blocks or [])]
+    if len(bl) > 1 and sum(b.size for b in bl) == n and np.unique(np.concatenate(bl)).size == n:
+        gabs = np.abs(st.gff).sum(axis=0)
+        pairs = [(i, j) for i in range(len(bl)) for j in range(i + 1, len(bl))]
+        coupled = {(i, j) for i, j in pairs if np.any(gabs[np.ix_(bl[i], bl[j])])}
+        if st.n_walks:
             used = np.abs(st.gfo).sum(axis=0) > 0  # (n, W, 3): parameter touches offset axis
             link = (np.abs(st.goo).sum(axis=0) > 0) | np.eye(3, dtype=bool)[None]
             for _ in range(2):  # closure: the pattern of the 3 x 3 inverse
                 link = np.einsum("wij,wjk->wik", link.astype(float), link.astype(float)) > 0
-            axes = [np.einsum("iwk,wkl->wl", used[b].astype(float), link.astype(float)) > 0 for b in bl]
-            ok = not any(np.any(axes[i] & used[bl[j]].any(axis=0)) for i in range(len(bl)) for j in range(len(bl)) if i != j)
-        if ok:
-            parts = bl
+            reach = [np.einsum("iwk,wkl->wl", used[b].astype(float), link.astype(float)) > 0 for b in bl]
+            touch = [used[b].any(axis=0) for b in bl]
+            coupled |= {(i, j) for i, j in pairs if np.any(reach[i] & touch[j])}
+        root = list(range(len(bl)))  # union-find over the coupled pairs
+
+        def find(i):
+            while root[i] != i:
+                root[i] = root[root[i]]
+                i = root[i]
+            return i
+
+        for i, j in coupled:
+            root[find(i)] = find(j)
+        groups = {}
+        for i in range(len(bl)):
+            groups.setdefault(find(i), []).append(bl[i])
+        parts = [np.sort(np.concatenate(g)) for g in groups.values()]
     gffb = [st.gff[:, b[:, None], b[None, :]] for b in parts]
     st._structure_cache = (parts, gffb)
     return st._structure_cache

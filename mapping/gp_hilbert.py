@@ -258,9 +258,19 @@ class BoxBasis:
 
     @staticmethod
     def harmonics(t, kmax):
-        """``cos(k t), sin(k t)`` for ``k = 0 .. kmax``: two (N, kmax + 1)."""
-        ph = np.asarray(t, float)[:, None] * np.arange(kmax + 1)[None, :]
-        return np.cos(ph), np.sin(ph)
+        """``cos(k t), sin(k t)`` for ``k = 0 .. kmax``: two (N, kmax + 1).
+
+        ``exp(i k t)`` as the product of ``exp(i q b t)`` and ``exp(i r t)``
+        (``k = q b + r``, ``b ~ sqrt(kmax)``): about ``2 sqrt(kmax)``
+        complex exponentials per point instead of ``2 kmax`` sines and
+        cosines, each result within a few ulp."""
+        t = np.asarray(t, float)
+        k = int(kmax) + 1
+        nb = int(np.ceil(np.sqrt(k)))
+        e_lo = np.exp(1j * (t[:, None] * np.arange(nb)))
+        e_hi = np.exp(1j * (t[:, None] * np.arange(0, k, nb)))
+        e = (e_hi[:, :, None] * e_lo[:, None, :]).reshape(t.size, -1)[:, :k]
+        return np.ascontiguousarray(e.real), np.ascontiguousarray(e.imag)
 
     def coef(self, kind, sign=1.0):
         """(m,) constant of each basis function of ``kind`` (see

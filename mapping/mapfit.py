@@ -236,6 +236,13 @@ class _ReducedRankGP(_Fitted):
         -------
         self
         """
+        # Only small matrix products and factorisations (the statistics come
+        # from the separable algebra): one BLAS thread is much faster than
+        # two on a shared, busy machine (thread spin-waits).
+        with threadpool_limits(limits=1, user_api="blas"):
+            return self._fit(xy, b, groups, rotations)
+
+    def _fit(self, xy, b, groups, rotations):
         xy, b = _check_xy_b(xy, b)
         n = xy.shape[0]
         codes, names = _encode_groups(groups, n)
@@ -281,8 +288,6 @@ class _ReducedRankGP(_Fitted):
                 raise DataError("no map tile holds enough survey samples (need 20 in at least one)")
         self.parts_ = parts
         hyper = self._initial_hyper(b, parts, use_offsets=use_offsets)
-        # Many small factorisations: one BLAS thread is much faster than
-        # two on a shared, busy machine (thread spin-waits).
         with threadpool_limits(limits=1, user_api="blas"):
             if self.optimize:
                 hyper, info = self._optimise(parts, hyper)
@@ -638,7 +643,8 @@ class _ReducedRankGP(_Fitted):
         """
         self._check_fitted()
         xy = _check_query(xy)
-        mean, var = self._blend_points(xy, return_var=return_var)
+        with threadpool_limits(limits=1, user_api="blas"):  # small products only
+            mean, var = self._blend_points(xy, return_var=return_var)
         if not return_var:
             return mean
         return mean, var + self.between_walk_var_[None, :]
@@ -649,8 +655,10 @@ class _ReducedRankGP(_Fitted):
         :meth:`predict`). Cost ``O(m^2 + nx ny J)`` per box (``J`` modes
         per axis) instead of ``O(nx ny m^2)`` for point-wise evaluation."""
         self._check_fitted()
-        xs = np.asarray(xs, float)
-        ys = np.asarray(ys, float)
+        with threadpool_limits(limits=1, user_api="blas"):  # small products only
+            return self._predict_grid(np.asarray(xs, float), np.asarray(ys, float), return_var)
+
+    def _predict_grid(self, xs, ys, return_var):
         if len(self.parts_) == 1 and self.parts_[0] is self:
             return self._grid_single(xs, ys, return_var)
         ny, nx = ys.size, xs.size
@@ -800,8 +808,9 @@ class PerComponentGP(_ReducedRankGP):
         return 3 * m + 3, [np.append(np.arange(k * m, (k + 1) * m), c + k) for k in range(3)]
 
     def _blocks(self, m):
-        # b_x and b_y share heading-frame offsets; b_up is separate
-        return [np.concatenate([np.arange(2 * m), [3 * m, 3 * m + 1]]), np.append(np.arange(2 * m, 3 * m), 3 * m + 2)]
+        # one per component; b_x and b_y are merged when heading-frame walk
+        # offsets couple them (_linmodel._structure)
+        return [np.append(np.arange(k * m, (k + 1) * m), 3 * m + k) for k in range(3)]
 
     def _design(self, basis, xy):
         f = basis.evaluate(xy, ones=1)[0]
