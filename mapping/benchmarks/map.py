@@ -7,7 +7,9 @@ the reduced-rank curl-free map (fit with marginal-likelihood
 hyperparameters and walk offsets, plus the raster) from ``--samples``
 (100,000) samples, then, in the same run, the reduced-rank models against
 exact scikit-learn ``GaussianProcessRegressor`` at ``--exact-samples``
-(5,000): time and held-out RMSE of each.
+(5,000): time and held-out RMSE of each, (a) like for like at the same
+fixed hyperparameters (fit + predict) and (b) ours including our
+hyperparameter optimisation (see :func:`_vs_exact`).
 
 Accuracy (``--site``): fit every kernel on the survey walks and score it on
 the test walks (``mapping.mapscore``); with ``--truth`` also the built map
@@ -35,6 +37,8 @@ def add_arguments(parser):
                              "is timed")
     parser.add_argument("--sklearn-fixed", dest="sklearn_fixed", action="store_true", default=True,
                         help="the default: give sklearn our hyperparameters")
+    parser.add_argument("--repeat", type=int, default=3, metavar="N",
+                        help="comparison: each time is the shortest of N runs, for every model alike (default 3)")
     parser.add_argument("--exact-n-basis", type=int, default=512, metavar="N",
                         help="basis functions per block of our models in the comparison (default 512)")
     parser.add_argument("--n-basis", type=int, default=1024, metavar="N", help="basis functions per block (default 1024)")
@@ -147,47 +151,134 @@ def _speed(args, log=print):
     return res
 
 
-def _vs_exact(ne, rng, field, test_xy, test_b, args, log):
+def _best_time(fn, repeat):
+    """(result of the last call, shortest wall time of ``repeat`` calls)."""
+    best = np.inf
+    out = None
+    for _ in range(max(int(repeat), 1)):
+        t0 = time.perf_counter()
+        out = fn()
+        best = min(best, time.perf_counter() - t0)
+    return out, best
+
+
+def _sklearn_fit_predict(xy, b, test_xy, h, fixed):
+    """Exact GP per component with sklearn: ``ConstantKernel * RBF +
+    ConstantKernel`` and white noise; b_x and b_y share kernel and noise, so
+    they are one multi-output fit (exactly two separate fits, at half the
+    cost), b_up a second. ``fixed``: hyperparameters ``h`` held (fit =
+    one Cholesky); else sklearn maximises its own marginal likelihood from
+    ``h``. Returns the predicted mean (M, 3)."""
     from sklearn.gaussian_process import GaussianProcessRegressor
     from sklearn.gaussian_process.kernels import RBF, ConstantKernel, WhiteKernel
+
+    pred = np.empty((test_xy.shape[0], 3))
+    for cols, noise in (([0, 1], h["noise_h_ut"]), ([2], h["noise_up_ut"])):
+        if fixed:
+            k = ConstantKernel(h["magnitude_ut"] ** 2, "fixed") * RBF(h["length_scale_m"], "fixed") + ConstantKernel(
+                h["constant_ut"] ** 2, "fixed")
+            gpr = GaussianProcessRegressor(k, alpha=noise**2, optimizer=None)
+        else:
+            k = ConstantKernel(h["magnitude_ut"] ** 2) * RBF(h["length_scale_m"]) + ConstantKernel(100.0**2) + WhiteKernel(
+                noise**2)
+            gpr = GaussianProcessRegressor(k, normalize_y=False)
+        y = b[:, cols] if len(cols) > 1 else b[:, cols[0]]
+        gpr.fit(xy, y)
+        pred[:, cols] = gpr.predict(test_xy).reshape(test_xy.shape[0], -1)
+    return pred
+
+
+def _vs_exact(ne, rng, field, test_xy, test_b, args, log):
+    """Reduced-rank models against exact sklearn GPR at ``ne`` samples.
+
+    (a) like for like: our per-component model and sklearn get the same
+        fixed hyperparameters (the per-component model's marginal-likelihood
+        values, from (b)) and the same kernel, and each is timed for fit +
+        predicting the mean at the held-out points: the line the speed aim
+        is judged on (the curl-free model, a different kernel, at its own
+        fitted values, is shown beside it);
+    (b) ours including our hyperparameter optimisation (marginal
+        likelihood) + fit + predict against sklearn as in (a), or with
+        ``--sklearn-fit`` against sklearn maximising its own likelihood.
+    Each time is the shortest of ``--repeat`` runs, the same for all."""
+    import sklearn.gaussian_process  # noqa: F401  (imported before any timing)
+    from threadpoolctl import threadpool_limits
 
     from ..mapfit import CurlFreeGP, PerComponentGP
 
     xy, b, _, _ = synthetic_survey(ne, rng, field, offset_sd_ut=0.0)
-    out = {"samples": ne}
-    log(f"vs exact sklearn GaussianProcessRegressor at {ne} samples (no walk offsets; ours with "
-        f"{args.exact_n_basis} basis functions per block, sklearn with our hyperparameters unless --sklearn-fit):")
-    rows = {}
-    for name, cls in (("curl-free", CurlFreeGP), ("per-component", PerComponentGP)):
-        t0 = time.perf_counter()
-        m = cls(n_basis=args.exact_n_basis, domain=((0, 0), (60, 40))).fit(xy, b)
-        mean = m.predict(test_xy, return_var=False)
-        dt = time.perf_counter() - t0
-        rows[name] = (dt, float(np.sqrt(np.mean((mean - test_b) ** 2))), m.hyper_)
-        log(f"  reduced-rank {name:<14s} {dt:8.2f} s   held-out RMSE {rows[name][1]:.3f} µT")
-    h = rows["per-component"][2]
-    t0 = time.perf_counter()
-    pred = np.empty_like(test_b)
-    for c in range(3):
-        noise = h["noise_h_ut"] if c < 2 else h["noise_up_ut"]
-        if not args.sklearn_fixed:
-            k = ConstantKernel(h["magnitude_ut"] ** 2) * RBF(h["length_scale_m"]) + ConstantKernel(100.0**2) + WhiteKernel(noise**2)
-            gpr = GaussianProcessRegressor(k, normalize_y=False)
-        else:
-            k = ConstantKernel(h["magnitude_ut"] ** 2, "fixed") * RBF(h["length_scale_m"], "fixed") + ConstantKernel(
-                h["constant_ut"] ** 2, "fixed")
-            gpr = GaussianProcessRegressor(k, alpha=noise**2, optimizer=None)
-        gpr.fit(xy, b[:, c])
-        pred[:, c] = gpr.predict(test_xy)
-    dt_exact = time.perf_counter() - t0
-    rmse_exact = float(np.sqrt(np.mean((pred - test_b) ** 2)))
-    how = "hyperparameters fixed at ours (fit + predict only)" if args.sklearn_fixed else "own hyperparameters by marginal likelihood"
-    log(f"  exact sklearn RBF per component ({how}) {dt_exact:8.2f} s   held-out RMSE {rmse_exact:.3f} µT")
-    for name, (dt, rmse, _) in rows.items():
-        log(f"  speed ratio exact / reduced-rank {name}: {dt_exact / dt:.1f}x at RMSE {rmse:.3f} vs {rmse_exact:.3f} µT")
-        out[name] = {"time_s": dt, "rmse_ut": rmse, "ratio": dt_exact / dt}
-    out["sklearn"] = {"time_s": dt_exact, "rmse_ut": rmse_exact, "optimised": not args.sklearn_fixed}
+    rep = int(getattr(args, "repeat", 3))
+    dom = ((0, 0), (60, 40))
+    nb = args.exact_n_basis
+    out = {"samples": ne, "repeat": rep, "n_basis": nb}
+
+    def rmse(pred):
+        return float(np.sqrt(np.mean((pred - test_b) ** 2)))
+
+    log(f"vs exact sklearn GaussianProcessRegressor at {ne} samples (no walk offsets; held-out RMSE against the "
+        f"true field at {test_xy.shape[0]} points; each time the shortest of {rep} runs; ours with one BLAS thread, "
+        "sklearn with one or all, whichever is faster)")
+    # (b) first: it yields the hyperparameters used in (a)
+    opt = {}
+    layout = ""
+    for name, cls in (("per-component", PerComponentGP), ("curl-free", CurlFreeGP)):
+        m, dt = _best_time(lambda cls=cls: _fit_predict(cls(n_basis=nb, domain=dom), xy, b, test_xy), rep)
+        opt[name] = {"time_s": dt, "rmse_ut": rmse(m[1]), "hyperparameters": m[0].hyper_,
+                     "n_evaluations": int(m[0].optim_info_.get("n_evaluations", 0)), "parts": len(m[0].parts_)}
+        layout = (f"{len(m[0].parts_)} tiles of {m[0].tile_basis}" if len(m[0].parts_) > 1 else f"one box of {nb}") + (
+            f" basis functions per block (--exact-n-basis {nb}; tiled when one box of that many cannot resolve "
+            "the length scales tiles can)")
+    h = opt["per-component"]["hyperparameters"]
+    fixed = {}
+    for name, cls, hh in (("per-component", PerComponentGP, h),
+                          ("curl-free", CurlFreeGP, opt["curl-free"]["hyperparameters"])):
+        given = {k: hh[k] for k in cls._hyper_names}
+        m, dt = _best_time(lambda cls=cls, given=given: _fit_predict(
+            cls(n_basis=nb, domain=dom, optimize=False, **given), xy, b, test_xy), rep)
+        fixed[name] = {"time_s": dt, "rmse_ut": rmse(m[1])}
+    # sklearn at its best: one BLAS thread (as ours) or all of them,
+    # whichever is faster here (one wins on a busy machine, all on a quiet one)
+    sk_times = {}
+    for label, limit in (("1 BLAS thread", 1), ("all BLAS threads", None)):
+        with threadpool_limits(limits=limit, user_api="blas"):
+            pred, sk_times[label] = _best_time(lambda: _sklearn_fit_predict(xy, b, test_xy, h, fixed=True), rep)
+    sk_threads = min(sk_times, key=sk_times.get)
+    dt_sk = sk_times[sk_threads]
+    sk = {"time_s": dt_sk, "rmse_ut": rmse(pred), "optimised": False, "times_s": sk_times}
+
+    def row(label, r, ref=None, note=""):
+        v = ref / r["time_s"] if ref is not None else None
+        ratio = " " * 8 if v is None else (f"  {v:5.0f}x" if v >= 10 else f"  {v:5.1f}x")
+        log(f"      {label:<52s}{r['time_s']:9.3f} s   RMSE {r['rmse_ut']:.3f} µT{ratio}{note}")
+
+    log(f"  ours: {layout}")
+    log("  (a) like for like: sklearn's kernel, the same fixed hyperparameters (the per-component model's "
+        "marginal-likelihood values), timed: fit + predict the mean")
+    row(f"exact sklearn, RBF per component ({sk_threads})", sk)
+    row("reduced-rank per-component", fixed["per-component"], dt_sk, "   <- the speed aim is judged here")
+    row("reduced-rank curl-free (own fitted values)", fixed["curl-free"], dt_sk, "   (a different kernel)")
+    sk_b = sk
+    if not args.sklearn_fixed:
+        pred, dt = _best_time(lambda: _sklearn_fit_predict(xy, b, test_xy, h, fixed=False), 1)
+        sk_b = {"time_s": dt, "rmse_ut": rmse(pred), "optimised": True}
+        out["sklearn_optimised"] = sk_b
+    how = ("sklearn maximising its own marginal likelihood (one run)" if not args.sklearn_fixed
+           else "sklearn as in (a), fixed (its own optimiser: --sklearn-fit, tens of minutes)")
+    log(f"  (b) ours timed with our hyperparameter optimisation + fit + predict, against {how}")
+    row("exact sklearn" + (" (own optimisation)" if not args.sklearn_fixed else f", fixed ({sk_threads})"), sk_b)
+    for name, r in opt.items():
+        row(f"reduced-rank {name} (optimised)", r, sk_b["time_s"], f"   ({r['n_evaluations']} likelihood evaluations)")
+    for name in opt:
+        fixed[name]["ratio"] = dt_sk / fixed[name]["time_s"]
+        opt[name]["ratio"] = sk_b["time_s"] / opt[name]["time_s"]
+    out["like_for_like"] = {"hyperparameters": h, "sklearn": sk, **fixed}
+    out["with_optimisation"] = {"sklearn": sk_b, **opt}
     return out
+
+
+def _fit_predict(model, xy, b, test_xy):
+    model.fit(xy, b)
+    return model, model.predict(test_xy, return_var=False)
 
 
 def _accuracy(args, log=print):
