@@ -34,6 +34,9 @@ DEMO_MODES = ("tracking", "global", "dead-reckoning")
 DEMO_PRESET = "simulated"
 #: basis functions of the reduced-rank map in a quick run (the full run uses the map's default)
 QUICK_BASIS = 256
+#: version of the simulated data set; a finished simulation of another
+#: version is made anew
+SIM_VERSION = 2
 
 
 @dataclass
@@ -59,22 +62,25 @@ def find_demo_site(site_dir=None):
     raise ConfigError("cannot find demo_building/site.json; pass --site DIR (the demo building folder)")
 
 
-def _simulate(site_dir, sim_dir, *, seed, quick):
+def _simulate(site_dir, sim_dir, *, seed, quick, progress=True):
     """Run ``lodemap simulate`` into ``sim_dir`` unless a finished run with
     the same seed and size is there already."""
     from .cli import main as cli_main
 
     marker = sim_dir / "demo-simulation.json"
-    want = {"seed": int(seed), "quick": bool(quick), "site": str(site_dir)}
+    want = {"seed": int(seed), "quick": bool(quick), "site": str(site_dir), "version": SIM_VERSION}
     if marker.exists():
         try:
             if json.loads(marker.read_text(encoding="utf-8")) == want:
                 return False
         except (OSError, ValueError):
             pass
-    argv = ["simulate", str(site_dir), "--out", str(sim_dir), "--seed", str(seed)]
+    # the demo maps from the handheld survey only: no robot survey
+    argv = ["simulate", str(site_dir), "--out", str(sim_dir), "--seed", str(seed), "--no-robot-survey"]
     if quick:
         argv += ["--walks", "2"]
+    if not progress:
+        argv += ["--no-progress"]
     rc = cli_main(argv)
     if rc != 0:
         raise LodemapError(f"lodemap {' '.join(argv)} failed with status {rc}")
@@ -121,7 +127,7 @@ def run_demo(out, *, quick=False, seed=0, site_dir=None, progress=True, jobs=1, 
     timings = {}
     t0 = time.perf_counter()
     log(f"[1/3] simulating walks in {site.name} ...")
-    _simulate(site_dir, out / "sim", seed=seed, quick=quick)
+    _simulate(site_dir, out / "sim", seed=seed, quick=quick, progress=progress)
     timings["simulate_s"] = time.perf_counter() - t0
 
     # the simulator's walks: its own preset of the filter (an exactly known

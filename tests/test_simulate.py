@@ -83,6 +83,7 @@ def small_walks(floors, models):
         jobs = plan_floor(f, graph, seed=7, settings=settings)
         pick = [j for j in jobs if j.session == "survey"][:2] + [j for j in jobs if j.session != "survey"][:3]
         pick += [j for j in jobs if j.session == "test" and j.platform == "robot"][:1]
+        pick += [j for j in jobs if j.session == "test" and j.platform == "handheld"][:2]  # calibrated phones
         for j in pick:
             walks.append((f, j, simulate_job(j, f, models[f], graph, free=free, seed=7, settings=settings)))
     return walks
@@ -378,7 +379,7 @@ def test_accelerometer_and_gyro_are_consistent_with_truth(handheld_case):
 
 def test_magnetometer_model(handheld_case):
     traj, fm = handheld_case
-    dev = Device.random_phone(np.random.default_rng(3))
+    dev = dataclasses.replace(Device.random_phone(np.random.default_rng(3)), mag_drift=0.0)  # drift: below
     log, truth = synthesize_log(traj, fm, dev, rng=np.random.default_rng(4))
     soft = np.asarray(dev.mag_soft)
     resid = log.mag - truth.mag_device_ut @ soft.T - np.asarray(dev.mag_residual)
@@ -571,8 +572,10 @@ def test_calibrated_phone_residual_is_new_every_session(small_walks):
         by_phone.setdefault(dev["name"], []).append(np.asarray(dev["mag_residual"]))
         # the log is the distorted true field plus that session's offset
         # (noise 0.4 µT and quantisation 0.15 µT as set)
+        # over the first 5 s, before the offset's slow drift (0.03 µT/sqrt(s)) adds up
         resid = w.log.mag - w.truth.mag_device_ut @ np.asarray(dev["mag_soft"]).T
-        np.testing.assert_allclose(resid.mean(axis=0), dev["mag_residual"], atol=0.1)
+        first = w.log.t < w.log.t[0] + 5.0
+        np.testing.assert_allclose(resid[first].mean(axis=0), dev["mag_residual"], atol=0.25)
     pairs = [v for v in by_phone.values() if len(v) >= 2]
     assert pairs, "no phone used twice"
     for v in pairs:
@@ -588,3 +591,124 @@ def test_session_residual_spread():
     assert res.std(axis=0) == pytest.approx(np.full(3, 1.5), rel=0.12)
     robot = Device.random_robot(np.random.default_rng(5))
     assert robot.for_session(rng) is robot  # a bare sensor has no device calibration
+
+
+# ---------------------------------------------------------------- survey with calibration and full cover
+def _lattice_graph(nx_=6, ny=4, spacing=1.0):
+    """A square lattice (nx_ x ny nodes) with a corridor spur off one corner."""
+    xy = [(i * spacing, j * spacing) for j in range(ny) for i in range(nx_)]
+    edges = [(j * nx_ + i, j * nx_ + i + 1) for j in range(ny) for i in range(nx_ - 1)]
+    edges += [(j * nx_ + i, (j + 1) * nx_ + i) for j in range(ny - 1) for i in range(nx_)]
+    xy += [(-4.0, 0.0), (-8.0, 0.0)]
+    edges += [(0, len(xy) - 2), (len(xy) - 2, len(xy) - 1)]
+    return FloorGraph.from_arrays(xy, edges)
+
+
+def test_edge_cover_routes_walk_every_edge_in_lanes():
+    import networkx as nx
+
+    from fingerprint.simulate.routes import plan_edge_cover_routes
+
+    g = _lattice_graph()
+    routes = plan_edge_cover_routes(g, rng=np.random.default_rng(2), target_length_m=1e6)
+    assert len(routes) == 1
+    walked = {frozenset((int(a), int(b))) for r in routes for a, b in zip(r[:-1], r[1:])}
+    edges = {frozenset(e) for e in g.edges.tolist()}
+    assert walked <= edges and walked == edges  # consecutive nodes share an edge; every edge walked
+    # reference: the shortest closed walk over every edge (Chinese postman,
+    # networkx eulerize); an open walk needs no more than that
+    euler = nx.eulerize(g.to_networkx())
+    postman = sum(math.dist(g.nodes_xy[u], g.nodes_xy[v]) for u, v in euler.edges())
+    length = float(np.hypot(*np.diff(g.nodes_xy[routes[0]], axis=0).T).sum())
+    assert g.total_length_m <= length <= 1.25 * postman
+    # straight lanes: most steps go on in the direction of the previous one
+    d = np.diff(g.nodes_xy[routes[0]], axis=0)
+    d /= np.linalg.norm(d, axis=1, keepdims=True)
+    assert np.mean(np.einsum("ij,ij->i", d[1:], d[:-1]) > 0.99) > 0.5
+    # only the needed edges must be walked
+    need = g.nodes_xy[g.edges].mean(axis=1)[:, 0] >= 0  # the lattice, not the spur
+    part = plan_edge_cover_routes(g, rng=np.random.default_rng(3), target_length_m=1e6, need=need)
+    walked = {frozenset((int(a), int(b))) for r in part for a, b in zip(r[:-1], r[1:])}
+    assert {frozenset(e) for e in g.edges[need].tolist()} <= walked
+    assert frozenset((len(g.nodes_xy) - 2, len(g.nodes_xy) - 1)) not in walked
+
+
+def test_start_from_best_nearby():
+    from fingerprint.simulate.routes import start_from_best_nearby
+
+    g = _corridor_graph()  # nodes (0,0) (20,0) (20,10) (0,10) (32,0)
+    route = np.array([1, 2, 3])
+    # best place: as far east as possible, within 15 m of node 1 -> node 4 (12 m away)
+    r = start_from_best_nearby(g, route, lambda xy: xy[:, 0], radius_m=15.0)
+    assert r.tolist() == [4, 1, 2, 3]
+    assert start_from_best_nearby(g, route, lambda xy: xy[:, 0], radius_m=5.0).tolist() == [1, 2, 3]
+    assert start_from_best_nearby(g, route, lambda xy: -xy[:, 1], radius_m=50.0).tolist() == [1, 2, 3]
+
+
+def test_survey_walk_calibrates_from_its_figure_of_eight(floors, models):
+    # A handheld survey walk logs the raw field (magnetometer_calibrated:
+    # no) and begins with a calibration motion; the chain's self-calibration
+    # (Li & Griffiths ellipsoid fit on the turning stretch) then leaves a
+    # hard-iron residual well below the 1.5 µT sd of a phone's own session
+    # residual (truth: the simulated device's hard iron), and the motion's
+    # gyro rates match the attitude change (consistency of the truth).
+    from fingerprint.pipeline import process_walk
+
+    plan, free, graph = floors["G"]
+    settings = DatasetSettings(n_test_handheld=0, n_test_robot=0, platforms=("handheld",))
+    jobs = [j for j in plan_floor("G", graph, seed=3, settings=settings) if j.session == "survey"][:2]
+    for j in jobs:
+        w = simulate_job(j, "G", models["G"], graph, free=free, seed=3, settings=settings)
+        assert w.log.meta["magnetometer_calibrated"] == "no"
+        assert w.params["walker"]["calibration_motion_s"] == pytest.approx(settings.survey_calibration_s, abs=0.01)
+        pw = process_walk(w.log)
+        cal = pw.meta["calibration"]
+        assert cal["method"] == "self:ellipsoid"
+        err = np.asarray(cal["offset_ut"]) - np.asarray(w.params["device"]["mag_hard"])
+        assert np.linalg.norm(err) < 0.5, err
+        # the motion turned the phone through most of the sphere
+        n_cal = int(settings.survey_calibration_s * settings.rate_hz)
+        up = Rotation.from_quat(w.truth.quat[:n_cal]).inv().apply([0.0, 0.0, 1.0])
+        from fingerprint.calibration import rotation_coverage
+
+        assert rotation_coverage(up)["sphere_fraction"] > 0.4
+
+
+def test_magnetometer_offset_drifts_as_a_random_walk(models):
+    # the hard iron wanders as a random walk: increments over 10 s have
+    # variance drift² x 10 s (Wiener process, common practice, no source),
+    # checked on 1 s means (white noise 0.4 µT averages down to 0.06 µT)
+    dev = dataclasses.replace(Device.random_phone(np.random.default_rng(9)), mag_drift=0.05)
+    traj = turn_in_hand((30.0, 20.0), rng=np.random.default_rng(10), duration_s=600.0)
+    log, truth = synthesize_log(traj, models["L1"], dev, rng=np.random.default_rng(11))
+    resid = log.mag_raw - truth.mag_device_ut @ np.asarray(dev.mag_soft).T - np.asarray(dev.mag_hard)
+    sec = np.floor(log.t - log.t[0]).astype(int)
+    means = np.stack([np.bincount(sec, weights=resid[:, i]) / np.bincount(sec) for i in range(3)], axis=1)[:-1]
+    inc = means[10:] - means[:-10]
+    var = np.mean(inc[::10] ** 2)
+    assert var == pytest.approx(0.05**2 * 10.0, rel=0.35)
+
+
+def test_truth_scores_by_steel_clearance(models):
+    # map-vs-truth scores in bands of distance from steel: a map off by a
+    # constant c has RMSE c in every band (definition of the RMSE), and the
+    # bands share out every scored edge mid-point
+    from mapping.mapscore import truth_scores
+
+    fm = models["L1"]
+    g = _lattice_graph(nx_=20, ny=10, spacing=1.5)
+    g = FloorGraph.from_arrays(g.nodes_xy + np.array([10.0, 12.0]), g.edges)
+    c = np.array([0.3, -0.4, 0.5])
+
+    class _Map:
+        graph = g
+
+        def lookup(self, xy):
+            b = fm.field(np.column_stack([xy, np.full(len(xy), 1.1)]))
+            return b - c, np.ones_like(b), np.zeros(len(xy))
+
+    sc = truth_scores(_Map(), fm, height_m=1.1)
+    bands = sc["by_steel_clearance"]
+    assert sum(b["n"] for b in bands.values()) == sc["n"] == g.n_edges
+    for b in bands.values():
+        np.testing.assert_allclose(list(b["rmse_ut"].values()), np.abs(c), atol=1e-9)

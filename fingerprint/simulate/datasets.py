@@ -1,7 +1,8 @@
 """Data sets of simulated walks, deterministic by seed.
 
 Per floor: survey walks (handheld) that pass every corridor and aisle at
-least twice, near the centre lines; test walks on other, random routes with
+least twice, near the centre lines (or every edge of a survey graph), each
+begun with a calibration motion and logged with the raw magnetometer; test walks on other, random routes with
 other walkers and devices, wandering more; robot walks likewise. Each walk
 is a :class:`SimulatedWalk` with its log, checkpoints (when the walker
 passes a marked point) and the true track at every log sample.
@@ -22,9 +23,10 @@ import numpy as np
 
 from ..errors import ConfigError
 from ..records import Checkpoints, Track, WalkLog
-from .routes import plan_survey_routes, plan_test_route, route_markers, route_polyline
+from .routes import (plan_edge_cover_routes, plan_survey_routes, plan_test_route, route_markers, route_polyline,
+                     start_from_best_nearby)
 from .sensors import Device, SensorTruth, synthesize_log
-from .walkers import HandheldWalker, RobotWalker
+from .walkers import HandheldWalker, RobotWalker, with_calibration_motion
 
 __all__ = [
     "WalkJob",
@@ -34,6 +36,7 @@ __all__ = [
     "simulate_job",
     "checkpoints_from_truth",
     "write_walk",
+    "steel_clearance_of_edges",
 ]
 
 
@@ -56,24 +59,46 @@ class DatasetSettings:
     session_residual_sd_ut : float, µT, 1-sigma per axis of a calibrated
         phone's residual offset, drawn anew for every walk
         (:meth:`~fingerprint.simulate.sensors.Device.for_session`)
+    survey_calibration_s : float, s, handheld survey walks begin with a
+        calibration motion this long (the phone turned slowly through all
+        orientations in the hand,
+        :func:`~fingerprint.simulate.walkers.with_calibration_motion`);
+        0 = none
+    survey_raw_magnetometer : bool, handheld survey walks log the
+        uncalibrated field (``magnetometer_calibrated: no``: a survey app
+        records the raw magnetometer and lodemap calibrates it from the
+        calibration motion) instead of the phone's own calibrated field
+    calibration_search_m : float, m, the calibration motion is made at the
+        graph node within this distance of the walk's start that is
+        farthest from visible steel (0 = at the start)
+    survey_cover_edges : bool, with a survey graph (``plan_floor``'s
+        ``survey_graph``) the handheld survey walks cover every one of its
+        edges, the lattice over open areas included
+        (:func:`~fingerprint.simulate.routes.plan_edge_cover_routes`),
+        in walks of about ``survey_edge_length_m``
     """
 
     platforms: tuple = ("handheld", "robot")
-    n_test_handheld: int = 6
-    n_test_robot: int = 4
+    n_test_handheld: int = 3
+    n_test_robot: int = 2
     survey_cover: int = 2
     survey_length_m: float = 130.0
     robot_survey: bool = True
     robot_survey_length_m: float = 90.0
     robot_survey_cover: int = 1
-    test_length_m: float = 75.0
-    robot_test_length_m: float = 45.0
+    test_length_m: float = 200.0
+    robot_test_length_m: float = 120.0
     rate_hz: float = 50.0
     survey_lateral_sd_m: float = 0.08
     test_lateral_sd_m: float = 0.2
     checkpoint_radius_m: float = 0.9
     checkpoint_spacing_m: float = 12.0
     session_residual_sd_ut: float = 1.5
+    survey_calibration_s: float = 30.0
+    survey_raw_magnetometer: bool = True
+    survey_cover_edges: bool = True
+    survey_edge_length_m: float = 250.0
+    calibration_search_m: float = 15.0
 
     def __post_init__(self):
         bad = set(self.platforms) - {"handheld", "robot"}
@@ -97,6 +122,8 @@ class WalkJob:
     seed : numpy.random.SeedSequence, the walk's own generator
     lateral_sd_m : float, sideways wander of this walk
     cast_seed : numpy.random.SeedSequence, the floor's people and devices
+    graph : FloorGraph or None, the graph ``route`` indexes when it is not
+        the floor's route graph (a survey planned on the plan's graph)
     """
 
     name: str
@@ -108,6 +135,7 @@ class WalkJob:
     seed: np.random.SeedSequence
     lateral_sd_m: float = 0.1
     cast_seed: np.random.SeedSequence | None = None
+    graph: object = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -133,7 +161,7 @@ def _people_and_devices(ss):
     return people, phones, robots, bots
 
 
-def plan_floor(floor, route_graph, *, seed, settings=DatasetSettings()):
+def plan_floor(floor, route_graph, *, seed, settings=DatasetSettings(), survey_graph=None, survey_need=None):
     """Plan a floor's walks.
 
     Parameters
@@ -142,6 +170,12 @@ def plan_floor(floor, route_graph, *, seed, settings=DatasetSettings()):
     route_graph : FloorGraph the walkers follow
     seed : int, the data set's seed (``--seed``)
     settings : DatasetSettings
+    survey_graph : FloorGraph or None, the graph the handheld survey must
+        cover edge by edge (e.g. the one a map of the floor is built on);
+        None = the survey passes the route graph's corridors and aisles
+    survey_need : (E,) bool or None, the edges of ``survey_graph`` the survey
+        must walk (default all; e.g. those clear of steel,
+        :func:`steel_clearance_of_edges`)
 
     Returns
     -------
@@ -168,10 +202,16 @@ def plan_floor(floor, route_graph, *, seed, settings=DatasetSettings()):
         else:  # the robot is the surveyor
             survey_platforms.append(("robot", "survey", settings.robot_survey_length_m, settings.survey_cover))
     for platform, session, length, cover in survey_platforms:
-        routes = plan_survey_routes(route_graph, rng=rng, target_length_m=length, min_cover=cover)
+        g = None
+        if platform == "handheld" and survey_graph is not None and settings.survey_cover_edges:
+            g = survey_graph
+            routes = plan_edge_cover_routes(g, rng=rng, target_length_m=settings.survey_edge_length_m,
+                                            need=survey_need)
+        else:
+            routes = plan_survey_routes(route_graph, rng=rng, target_length_m=length, min_cover=cover)
         for i, r in enumerate(routes):
             jobs.append(WalkJob(name(platform), session, platform, r, i % 3, i % 2 if platform == "handheld" else 0,
-                                None, settings.survey_lateral_sd_m if platform == "handheld" else 0.04))
+                                None, settings.survey_lateral_sd_m if platform == "handheld" else 0.04, graph=g))
     starts = []
     for platform, n, length in (("handheld", settings.n_test_handheld, settings.test_length_m),
                                 ("robot", settings.n_test_robot, settings.robot_test_length_m)):
@@ -188,7 +228,7 @@ def plan_floor(floor, route_graph, *, seed, settings=DatasetSettings()):
     out = []
     for j, s in zip(jobs, seeds):
         out.append(WalkJob(j.name, j.session, j.platform, j.route, j.walker_id, j.device_id, s, j.lateral_sd_m,
-                           cast_ss))
+                           cast_ss, j.graph))
     return out
 
 
@@ -234,6 +274,33 @@ def checkpoints_from_truth(t, xy, markers_xy, *, radius_m=0.6, floor=None, min_g
     return Checkpoints(t=t[idx], xy=xy[idx], floor=fl, label=labels)
 
 
+def steel_clearance_of_edges(graph, field_model, *, height_m=1.1):
+    """(E,) m, the smallest distance from an edge of ``graph`` (its ends and
+    mid-point, at ``height_m``) to a dipole of the visible steel."""
+    f = _steel_clearance(field_model, height_m)
+    a, b = graph.nodes_xy[graph.edges[:, 0]], graph.nodes_xy[graph.edges[:, 1]]
+    return np.minimum(np.minimum(f(a), f(b)), f(0.5 * (a + b)))
+
+
+def _steel_clearance(field_model, height_m=1.1):
+    """``f(xy (K, 2)) -> (K,)`` distance (m) from a point at hand height to
+    the nearest dipole of the visible steel: everything but slab meshes."""
+    from scipy.spatial import cKDTree
+
+    kinds = np.asarray(field_model.kinds).astype(str)
+    keep = np.char.find(kinds, "mesh") < 0
+    pos = np.asarray(field_model.positions_m, float)[keep]
+    if pos.shape[0] == 0:
+        return lambda xy: np.zeros(len(xy))
+    tree = cKDTree(pos)
+
+    def clearance(xy):
+        xy = np.asarray(xy, float).reshape(-1, 2)
+        return tree.query(np.column_stack([xy, np.full(len(xy), float(height_m))]))[0]
+
+    return clearance
+
+
 def simulate_job(job, floor, field_model, route_graph, *, free=None, seed=0, settings=DatasetSettings(),
                  markers_xy=None):
     """Simulate one planned walk.
@@ -254,7 +321,16 @@ def simulate_job(job, floor, field_model, route_graph, *, free=None, seed=0, set
     """
     people, phones, robots, bots = _people_and_devices(job.cast_seed)
     rng = np.random.default_rng(job.seed)
-    poly = route_polyline(route_graph, job.route)
+    graph = route_graph if job.graph is None else job.graph
+    survey_hh = job.platform == "handheld" and job.session.startswith("survey")
+    route = job.route
+    if survey_hh and settings.survey_calibration_s > 0 and settings.calibration_search_m > 0:
+        # the surveyor turns the phone for its calibration away from the
+        # steel they can see (columns, racking, plant: common practice, no
+        # source), at the clearest spot near the start, and walks on from there
+        route = start_from_best_nearby(graph, route, _steel_clearance(field_model),
+                                       radius_m=settings.calibration_search_m)
+    poly = route_polyline(graph, route)
     if job.platform == "handheld":
         base = people[job.walker_id]
         walker = HandheldWalker(**{**base.__dict__, "lateral_sd_m": job.lateral_sd_m,
@@ -272,7 +348,11 @@ def simulate_job(job, floor, field_model, route_graph, *, free=None, seed=0, set
     session_rng = np.random.default_rng(
         np.random.SeedSequence(job.seed.entropy, spawn_key=tuple(job.seed.spawn_key) + (7919,)))
     device = device.for_session(session_rng, residual_sd_ut=settings.session_residual_sd_ut)
+    if survey_hh and settings.survey_raw_magnetometer:
+        device = Device(**{**device.__dict__, "calibrated": False})
     traj = walker.walk(poly, rng=rng, free=free)
+    if survey_hh and settings.survey_calibration_s > 0:
+        traj = with_calibration_motion(traj, rng=session_rng, duration_s=settings.survey_calibration_s)
     meta = {
         "floor": floor,
         "seed": seed,

@@ -16,7 +16,8 @@ import numpy as np
 from ..errors import ConfigError, DataError
 from ..floorgraph import FloorGraph
 
-__all__ = ["Segments", "graph_segments", "plan_survey_routes", "plan_test_route", "route_polyline", "route_markers"]
+__all__ = ["Segments", "graph_segments", "plan_survey_routes", "plan_edge_cover_routes", "plan_test_route",
+           "route_polyline", "route_markers", "start_from_best_nearby"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -169,6 +170,123 @@ def plan_survey_routes(graph, *, rng, target_length_m=120.0, min_cover=2, min_se
     return routes
 
 
+def plan_edge_cover_routes(graph, *, rng, target_length_m=300.0, max_routes=500, need=None):
+    """Routes that together walk every edge of ``graph`` at least once, in
+    straight lanes where the graph allows.
+
+    Unlike :func:`plan_survey_routes` this covers each edge, the short
+    lattice edges over open areas included: a surveyor walks an open hall
+    in straight lanes along the lattice rows and then across them (a
+    lawnmower pattern in both directions, common practice, no source).
+    Greedy: at each node take the uncovered incident edge that turns least
+    from the direction walked (ties at random, no turning back while
+    another edge is uncovered); with none at hand, walk the shortest path
+    to the nearest node that has one. A route ends at the first node past
+    ``target_length_m``; the next one starts at an uncovered edge, a dead
+    end or a graph boundary first.
+
+    Parameters
+    ----------
+    graph : FloorGraph, connected
+    rng : numpy.random.Generator
+    target_length_m : float, length of one route
+    need : (E,) bool or None, the edges to cover (default all); the others
+        are walked only on the way between needed ones
+
+    Returns
+    -------
+    list of (L,) int arrays of graph node indices
+    """
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components, dijkstra
+
+    if target_length_m <= 0:
+        raise ConfigError(f"target_length_m must be > 0, got {target_length_m}")
+    if graph.n_edges == 0:
+        raise DataError("the route graph has no edges")
+    k = graph.n_nodes
+    a, b = graph.edges[:, 0], graph.edges[:, 1]
+    adj = coo_matrix((np.concatenate([graph.length_m, graph.length_m]), (np.concatenate([a, b]),
+                                                                      np.concatenate([b, a]))), shape=(k, k)).tocsr()
+    used = np.unique(graph.edges)
+    n_comp, lab = connected_components(adj, directed=False)
+    if np.unique(lab[used]).size > 1:
+        raise DataError("the route graph is not connected; every part must be reachable for a survey")
+    ptr, inc = graph.incident_ptr, graph.incident_edges
+    covered = np.zeros(graph.n_edges, dtype=bool) if need is None else ~np.asarray(need, dtype=bool).reshape(-1)
+    if covered.shape != (graph.n_edges,):
+        raise ConfigError(f"need must have one entry per edge ({graph.n_edges}), got {covered.shape}")
+    # uncovered edges at each node
+    open_count = (np.bincount(a[~covered], minlength=k) + np.bincount(b[~covered], minlength=k)).astype(np.int64)
+    deg = graph.degree()
+
+    def other(e, n):
+        return int(b[e]) if a[e] == n else int(a[e])
+
+    def step_dir(e, n):
+        u = graph.unit[e]
+        return u if a[e] == n else -u
+
+    def take(e, n):
+        if not covered[e]:
+            covered[e] = True
+            open_count[a[e]] -= 1
+            open_count[b[e]] -= 1
+        return other(e, n)
+
+    routes = []
+    while not covered.all() and len(routes) < max_routes:
+        # start at an uncovered edge, preferring dead ends, then nodes of
+        # low degree (the edge of a hall or a corridor end)
+        cand = np.flatnonzero(open_count > 0)
+        score = deg[cand] + 4 * (open_count[cand] != deg[cand]) + rng.uniform(0, 0.5, cand.size)
+        node = int(cand[np.argmin(score)])
+        path = [node]
+        length = 0.0
+        heading = None
+        while not covered.all():
+            es = inc[ptr[node] : ptr[node + 1]]
+            free_es = es[~covered[es]]
+            if free_es.size:
+                if heading is None:
+                    e = int(free_es[rng.integers(free_es.size)])
+                else:
+                    dirs = np.array([step_dir(e, node) for e in free_es])
+                    turn = np.arccos(np.clip(dirs @ heading, -1.0, 1.0))
+                    turn = turn + rng.uniform(0, 1e-3, turn.size)  # ties at random
+                    if free_es.size > 1:  # not straight back while another edge waits
+                        turn = np.where(turn > np.radians(170), turn + 10.0, turn)
+                    e = int(free_es[np.argmin(turn)])
+                heading = step_dir(e, node)
+                length += float(graph.length_m[e])
+                node = take(e, node)
+                path.append(node)
+            else:
+                if length >= target_length_m:
+                    break
+                # the nearest node with an uncovered edge
+                dist, pred = dijkstra(adj, indices=node, return_predecessors=True)
+                targets = np.flatnonzero(open_count > 0)
+                goal = int(targets[np.argmin(dist[targets])])
+                hops = [goal]
+                while hops[-1] != node:
+                    hops.append(int(pred[hops[-1]]))
+                hops = hops[::-1]
+                for u, v in zip(hops[:-1], hops[1:]):
+                    es_u = inc[ptr[u] : ptr[u + 1]]
+                    cand_e = es_u[(a[es_u] == v) | (b[es_u] == v)]
+                    e = int(cand_e[np.argmin(graph.length_m[cand_e])])
+                    heading = step_dir(e, u)
+                    length += float(graph.length_m[e])
+                    take(e, u)
+                    path.append(v)
+                node = goal
+            if length >= target_length_m and open_count[node] == 0:
+                break
+        routes.append(np.array(path, dtype=np.int64))
+    return routes
+
+
 def plan_test_route(graph, *, rng, length_m=80.0, avoid=None):
     """A route through random places: shortest paths between random graph
     nodes until the route is longer than ``length_m``.
@@ -250,3 +368,42 @@ def route_markers(graph, *, max_spacing_m=12.0):
         if all(np.hypot(*(p - xy[j])) >= 2.0 for j in keep):
             keep.append(i)
     return xy[keep]
+
+
+def start_from_best_nearby(graph, route, score_xy, *, radius_m=15.0):
+    """The route begun at the best place near its start: the graph node
+    within ``radius_m`` (along the graph) of ``route[0]`` with the highest
+    ``score_xy`` (e.g. the clearance from steel, where a surveyor turns the
+    phone for its calibration), then the shortest path to ``route[0]`` and
+    the route itself.
+
+    Parameters
+    ----------
+    graph : FloorGraph
+    route : (L,) int
+    score_xy : callable, (K, 2) plan positions -> (K,) float, higher is better
+    radius_m : float
+
+    Returns
+    -------
+    (L',) int, the route with the lead-in prepended (unchanged when its
+    start scores best)
+    """
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import dijkstra
+
+    route = np.asarray(route, dtype=np.int64)
+    k = graph.n_nodes
+    a, b = graph.edges[:, 0], graph.edges[:, 1]
+    adj = coo_matrix((np.concatenate([graph.length_m, graph.length_m]), (np.concatenate([a, b]),
+                                                                      np.concatenate([b, a]))), shape=(k, k)).tocsr()
+    dist, pred = dijkstra(adj, indices=int(route[0]), return_predecessors=True, limit=float(radius_m))
+    near = np.flatnonzero(np.isfinite(dist))
+    sc = np.asarray(score_xy(graph.nodes_xy[near]), dtype=float)
+    best = int(near[np.argmax(sc)])
+    if best == int(route[0]) or not sc.max() > sc[near == route[0]].max():
+        return route
+    lead = [best]
+    while lead[-1] != int(route[0]):
+        lead.append(int(pred[lead[-1]]))
+    return np.concatenate([np.array(lead[:-1], dtype=np.int64), route])

@@ -20,7 +20,9 @@ accelerometer noise 0.02 m/s², gyro noise 0.0015 rad/s, bias up to a few
 mrad/s; magnetometer noise 0.4 µT; resolutions 0.0024 m/s², 0.0011 rad/s,
 0.15 µT (close to those of the phone in the vendored real walks, see
 ``/shared/real_data/README.md``); phone hard iron tens of µT; robot hard
-iron from motors and frame up to ~100 µT; odometry scale errors of 1-2 %.
+iron from motors and frame up to ~100 µT; odometry scale errors of 1-2 %;
+a phone's hard iron wanders by about 0.03 µT/sqrt(s) within a walk (from
+memory, see :class:`Device`).
 """
 
 from __future__ import annotations
@@ -57,6 +59,10 @@ class Device:
     calibrated : bool, whether ``mx,my,mz`` has the hard iron removed
     odom_scale, odom_yaw_scale : float, odometry scale factors (robot)
     odom_slip : float, relative 1-sigma noise per odometry increment
+    mag_drift : float, µT per sqrt(s), random walk of the hard-iron offset
+        within a walk (a phone's own offset moves with temperature and with
+        the currents of its screen, radio and processor; from memory: up to
+        about 1 µT over some minutes), raw and calibrated field alike
     """
 
     name: str
@@ -79,6 +85,7 @@ class Device:
     odom_scale: float = 1.0
     odom_yaw_scale: float = 1.0
     odom_slip: float = 0.0
+    mag_drift: float = 0.0
 
     @classmethod
     def random_phone(cls, rng, name="phone", *, rate_hz=50.0):
@@ -89,6 +96,7 @@ class Device:
             gyro_bias=tuple(rng.normal(0, 0.003, 3)), gyro_noise=0.0015, gyro_drift=2e-5, gyro_quant=0.0011,
             mag_soft=tuple(map(tuple, soft)), mag_hard=tuple(rng.normal(0, 30, 3)),
             mag_residual=tuple(rng.normal(0, 1.5, 3)), mag_noise=0.4, mag_quant=0.15, calibrated=True,
+            mag_drift=0.03,
         )
 
     @classmethod
@@ -219,6 +227,8 @@ def synthesize_log(traj: Trajectory, field_model, device: Device, *, rng, t0=0.0
     b_dev = rot.inv().apply(b_plan)
     soft = np.asarray(device.mag_soft)
     distorted = b_dev @ soft.T + rng.normal(0, device.mag_noise, (n, 3))
+    if device.mag_drift > 0:
+        distorted += np.cumsum(rng.normal(0, 1, (n, 3)) * np.sqrt(dt)[:, None], axis=0) * device.mag_drift
     raw = distorted + np.asarray(device.mag_hard)
     raw = _quantise(raw, device.mag_quant)
     if device.calibrated:

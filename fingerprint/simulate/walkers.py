@@ -32,7 +32,8 @@ from scipy.spatial.transform import Rotation
 
 from ..errors import ConfigError
 
-__all__ = ["Trajectory", "HandheldWalker", "RobotWalker", "turn_in_hand", "smooth_path", "lateral_offset"]
+__all__ = ["Trajectory", "HandheldWalker", "RobotWalker", "turn_in_hand", "with_calibration_motion", "smooth_path",
+           "lateral_offset"]
 
 G = 9.80665
 
@@ -199,6 +200,14 @@ class HandheldWalker:
     sway_deg : float, amplitude of hand sway (roll/yaw, per stride)
     lateral_sd_m : float, sideways wander about the route centre line
     pauses : int, number of stops along the walk (1.5-4 s each)
+    yaw_wander_deg : float, sd of a slow change of the phone's yaw against
+        the walking direction (the hand turns the phone by a few degrees
+        and back over tens of seconds; from memory)
+    bounce_wander : float, relative sd of a slow change of the walker's
+        step constant K along the walk (the bounce of the phone for a given
+        step length changes with grip, pace and floor; Weinberg-type step
+        length estimates are good to a few per cent of the distance walked,
+        from memory)
     """
 
     weinberg_k: float = 0.41
@@ -210,6 +219,8 @@ class HandheldWalker:
     sway_deg: float = 2.0
     lateral_sd_m: float = 0.1
     pauses: int = 1
+    yaw_wander_deg: float = 0.0
+    bounce_wander: float = 0.0
 
     @classmethod
     def random(cls, rng, *, lateral_sd_m=0.1, pauses=1):
@@ -224,6 +235,8 @@ class HandheldWalker:
             sway_deg=float(rng.uniform(1.0, 3.0)),
             lateral_sd_m=float(lateral_sd_m),
             pauses=int(pauses),
+            yaw_wander_deg=float(rng.uniform(2.0, 4.0)),
+            bounce_wander=float(rng.uniform(0.02, 0.04)),
         )
 
     def walk(self, poly, *, rng, free=None, dt=0.005, stand_s=(2.5, 2.0)):
@@ -285,8 +298,11 @@ class HandheldWalker:
         in_step = (k >= 0) & (tt < starts[kk] + durs[kk])
         phase = np.where(in_step, (tt - starts[kk]) / durs[kk], np.nan)
         speed = np.where(in_step, lens_all[kk] / durs[kk], 0.0)
-        # Weinberg: a_max - a_min = (L / K)^4 within a step; bounce = half
-        amp = np.where(in_step, 0.5 * (lens_all[kk] / self.weinberg_k) ** 4, 0.0)
+        # Weinberg: a_max - a_min = (L / K)^4 within a step; bounce = half;
+        # K itself wanders slowly along the walk (periods of 20-90 s)
+        k_eff = self.weinberg_k * (1.0 + lateral_offset(starts, rng=rng, sd_m=self.bounce_wander,
+                                                        wavelength_m=(20.0, 90.0)))
+        amp = np.where(in_step, 0.5 * (lens_all[kk] / k_eff[kk]) ** 4, 0.0)
         # smooth the speed so that starting and stopping take about a step
         # (the total length is kept; single steps change by a few mm)
         v = gaussian_filter1d(speed, sigma=0.22 / dt, mode="nearest")
@@ -344,7 +360,11 @@ class HandheldWalker:
         lat_sway = 0.02 * gate * np.sin(np.pi * stride)  # body sways 2 cm per stride
         nrm = np.column_stack([-np.sin(head), np.cos(head)])
         xy_dev = xy + lat_sway[:, None] * nrm
-        yaw = head + np.radians(self.yaw_offset_deg) + 0.5 * sway
+        # the phone's yaw against the walking direction wanders slowly, while
+        # walking only (every 13-80 m walked, about 10-60 s; held still when
+        # the walker stands, where the chain takes the gyro's bias)
+        wander = lateral_offset(s_body, rng=rng, sd_m=np.radians(self.yaw_wander_deg), wavelength_m=(13.0, 80.0))
+        yaw = head + np.radians(self.yaw_offset_deg) + 0.5 * sway + wander
         pitch = np.radians(self.pitch_deg) + 0.3 * np.radians(self.sway_deg) * gate * np.sin(2 * np.pi * stride)
         roll = sway
         rot = Rotation.from_euler("ZXY", np.column_stack([yaw - np.pi / 2, pitch, roll]))
@@ -367,6 +387,8 @@ class HandheldWalker:
             "pitch_deg": self.pitch_deg,
             "yaw_offset_deg": self.yaw_offset_deg,
             "sway_deg": self.sway_deg,
+            "yaw_wander_deg": self.yaw_wander_deg,
+            "bounce_wander": self.bounce_wander,
             "lateral_sd_m": self.lateral_sd_m,
             "n_steps": int(len(step_times)),
         }
@@ -536,3 +558,81 @@ def turn_in_hand(xy, *, rng, duration_s=30.0, height_m=1.1, dt=0.005):
     xy_arr = np.tile(np.asarray(xy, float), (n, 1))
     return Trajectory(t, xy_arr, np.full(n, height_m), rot.as_quat(), head, np.zeros((n, 3)), _body_rates(rot, dt),
                       np.zeros(0), xy_arr[:1].repeat(2, 0), "handheld", {"platform": "handheld", "motion": "turn_in_hand"})
+
+
+def _smoothstep(u):
+    """0 -> 1 with zero slope at both ends (u in [0, 1])."""
+    u = np.clip(u, 0.0, 1.0)
+    return u * u * (3 - 2 * u)
+
+
+def with_calibration_motion(traj, *, rng, duration_s=30.0, hand_m=0.1, sweeps=(1, 2, 3)):
+    """The same walk begun with a magnetometer calibration motion: the
+    surveyor stands at the start and turns the phone through many
+    orientations (a figure-of-eight in the hand, common practice, no
+    source) before walking off.
+
+    From the walk's first attitude the phone spins about its screen normal
+    (``sweeps[0]`` turns) while it pitches by up to 70° and rolls by up to
+    160°, screen down and back (``sweeps[1]`` and ``sweeps[2]`` sweeps, at
+    random phases): by default a slow, deliberate turn through all
+    orientations over 30 s. (A quick figure-of-eight, 20 s with sweeps
+    (2, 3, 5), calibrates as well, but the sensor chain's attitude keeps the
+    accelerometer's plain tilt where the phone is turned that fast, and the
+    earth-frame field of those samples is then off by 7-11 µT RMS; slowly,
+    by about 0.5 µT.) The hand traces a small figure-of-eight
+    (``hand_m``, metres); the motion starts and ends at rest in the walk's
+    first attitude, so the gyro sees one smooth rotation. The rest of the
+    walk is the given one, ``duration_s`` later.
+
+    Parameters
+    ----------
+    traj : Trajectory of a handheld walk (starting at rest)
+    rng : numpy.random.Generator
+    duration_s : float, length of the calibration motion
+    hand_m : float, amplitude of the hand's movement
+    sweeps : (3,) int, turns about the screen normal, pitch and roll sweeps
+
+    Returns
+    -------
+    Trajectory (``params["calibration_motion_s"]`` records the duration)
+    """
+    if not duration_s > 0:
+        raise ConfigError(f"calibration motion duration must be > 0, got {duration_s}")
+    dt = traj.dt
+    n = int(round(duration_s / dt))
+    t = dt * np.arange(n)
+    u = t / (n * dt)
+    env = _smoothstep(u / 0.12) * _smoothstep((1 - u) / 0.12)
+    ph = rng.uniform(0, 2 * np.pi, 4)
+    n_spin, n_pitch, n_roll = sweeps
+    spin = 2 * np.pi * n_spin * (u - np.sin(2 * np.pi * u) / (2 * np.pi)) * rng.choice([-1.0, 1.0])
+    pitch = np.radians(70) * env * np.sin(2 * np.pi * n_pitch * u + ph[0])
+    roll = np.radians(160) * env * np.sin(2 * np.pi * n_roll * u + ph[1])
+    q0 = Rotation.from_quat(traj.quat[0])
+    rel = Rotation.from_euler("ZXY", np.column_stack([spin, pitch, roll]))
+    rot = Rotation.from_quat(np.vstack([(q0 * rel).as_quat(), traj.quat]))
+    # the hand: a small figure-of-eight about the start
+    hx = hand_m * env * np.sin(2 * np.pi * 2.0 * u + ph[2])
+    hy = 0.5 * hand_m * env * np.sin(2 * np.pi * 4.0 * u + 2 * ph[2])
+    hz = 0.5 * hand_m * env * np.sin(2 * np.pi * 3.0 * u + ph[3])
+    xy_c = traj.xy[0] + np.column_stack([hx, hy])
+    z_c = traj.z[0] + hz
+    acc_c = np.column_stack([np.gradient(np.gradient(v, dt), dt) for v in (xy_c[:, 0], xy_c[:, 1], z_c)])
+    fwd = (q0 * rel).apply([0.0, 1.0, 0.0])
+    head_c = np.arctan2(fwd[:, 1], fwd[:, 0])
+    shift = n * dt
+    params = {**traj.params, "calibration_motion_s": float(shift)}
+    return Trajectory(
+        np.concatenate([t, traj.t + shift]),
+        np.vstack([xy_c, traj.xy]),
+        np.concatenate([z_c, traj.z]),
+        rot.as_quat(),
+        np.concatenate([head_c, traj.heading_rad]),
+        np.vstack([acc_c, traj.acc_plan]),
+        _body_rates(rot, dt),
+        traj.step_t + shift,
+        traj.step_xy,
+        traj.platform,
+        params,
+    )

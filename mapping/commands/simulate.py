@@ -4,7 +4,7 @@ truth in a site that describes its steel (e.g. ``demo_building/``).
 Output layout (per floor)::
 
     DIR/<floor>/survey/hh_NNN.log.csv + .checkpoints.csv + .track.csv
-    DIR/<floor>/survey_robot/rb_NNN.*      (robot survey, with --platform both)
+    DIR/<floor>/survey_robot/rb_NNN.*      (robot survey, with --platform both, unless --no-robot-survey)
     DIR/<floor>/test/hh_NNN.* and rb_NNN.*
     DIR/<floor>/field_model.npz            (the true field, FieldModel.load)
     DIR/<floor>/truth.json                 (walkers, devices, true lengths)
@@ -27,12 +27,23 @@ def add_arguments(parser):
     parser.add_argument("--out", required=True, metavar="DIR", help="output folder")
     parser.add_argument("--seed", type=int, default=0, help="seed of the walks (default 0); recorded in every log")
     parser.add_argument("--walks", type=int, default=None, metavar="N",
-                        help="test walks per floor and platform (default: 6 handheld, 4 robot)")
+                        help="test walks per floor and platform (default: 3 handheld, 2 robot, of about 2.5 min each)")
     parser.add_argument("--platform", choices=("handheld", "robot", "both"), default="both")
     parser.add_argument("--floors", nargs="+", default=None, metavar="FLOOR", help="only these floors")
     parser.add_argument("--routes", choices=("auto", "file", "plan"), default="auto",
                         help="route graph: the site's <floor>/routes.geojson ('file'), the graph built from the "
                              "plan ('plan'), or the file when there is one ('auto', default)")
+    parser.add_argument("--survey-routes", choices=("routes", "plan"), default="routes",
+                        help="handheld survey walks pass every corridor and aisle of the route graph twice "
+                             "('routes', default), or cover every edge of the graph built from the plan, the one "
+                             "a map is built on, lattice over open areas included, in straight lanes ('plan'; "
+                             "near steel the field is rougher than the map model can follow, see "
+                             "demo_building/README.md)")
+    parser.add_argument("--survey-clearance", type=float, default=0.0, metavar="M",
+                        help="with --survey-routes plan, the survey must walk only the edges at least M metres "
+                             "from the nearest steel dipole (default 0: every edge)")
+    parser.add_argument("--no-robot-survey", action="store_true",
+                        help="with --platform both, no robot survey (survey_robot/); the robot still makes test walks")
     parser.add_argument("--rate", type=float, default=50.0, metavar="HZ", help="sample rate of the logs (default 50)")
     parser.add_argument("--plot", action="store_true", help="write DIR/<floor>/simulation.png")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
@@ -89,9 +100,11 @@ def run(args):
     if args.walks is not None and args.walks < 0:
         raise ConfigError(f"--walks must be >= 0, got {args.walks}")
     platforms = ("handheld", "robot") if args.platform == "both" else (args.platform,)
-    n_hh = 6 if args.walks is None else args.walks
-    n_rb = 4 if args.walks is None else args.walks
-    settings = DatasetSettings(platforms=platforms, n_test_handheld=n_hh, n_test_robot=n_rb, rate_hz=args.rate)
+    defaults = DatasetSettings()
+    n_hh = defaults.n_test_handheld if args.walks is None else args.walks
+    n_rb = defaults.n_test_robot if args.walks is None else args.walks
+    settings = DatasetSettings(platforms=platforms, n_test_handheld=n_hh, n_test_robot=n_rb, rate_hz=args.rate,
+                               robot_survey=not args.no_robot_survey)
     floors = list(site.floors) if not args.floors else args.floors
     for f in floors:
         site.plan_path(f)  # ConfigError listing the floors
@@ -106,7 +119,16 @@ def run(args):
         fm = field_model_for_floor(steel, floor, geo, plan_rotation_deg=rho)
         fm.meta.update({"site": site.name, "date": site.date.isoformat(), "seed": args.seed})
         fm.save(out / floor / "field_model.npz")
-        jobs = plan_floor(floor, graph, seed=args.seed, settings=settings)
+        survey_graph = None
+        if args.survey_routes == "plan" and "handheld" in platforms:
+            survey_graph = graph if graph_source.startswith("graph built") else _route_graph(plan_path, plan, "plan")[0]
+        need = None
+        if survey_graph is not None and args.survey_clearance > 0:
+            from fingerprint.simulate.datasets import steel_clearance_of_edges
+
+            need = steel_clearance_of_edges(survey_graph, fm) >= args.survey_clearance
+        jobs = plan_floor(floor, graph, seed=args.seed, settings=settings, survey_graph=survey_graph,
+                          survey_need=need)
         prepared.append((floor, plan, graph, graph_source, free, fm, jobs))
     total = sum(len(p[-1]) for p in prepared)
     bar = tqdm(total=total, desc="simulate", unit="walk", disable=args.no_progress)
