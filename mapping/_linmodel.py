@@ -71,6 +71,9 @@ class SufficientStats:
     yy: np.ndarray
     n: np.ndarray
     blocks: list = None
+    #: index sets of the components' designs (F^T F is zero outside their
+    #: squares); None: unknown
+    support: list = None
 
     @classmethod
     def zeros(cls, n_field, n_walks, noise_group):
@@ -93,7 +96,7 @@ class SufficientStats:
         return SufficientStats(
             self.n_field, self.n_walks, self.noise_group, self.gff + other.gff, self.bf + other.bf,
             self.gfo + other.gfo, self.goo + other.goo, self.bo + other.bo, self.yy + other.yy, self.n + other.n,
-            self.blocks,
+            self.blocks, self.support,
         )
 
     def __sub__(self, other):
@@ -109,6 +112,7 @@ class SufficientStats:
             self.yy - other.yy,
             self.n - other.n,
             self.blocks,
+            self.support,
         )
 
     @property
@@ -145,6 +149,7 @@ def accumulate(design, idx, xy, b, *, groups=None, rotations=None, n_walks=0, no
     w = int(n_walks) if groups is not None else 0
     st = SufficientStats.zeros(n_field, w, noise_group)
     st.blocks = blocks
+    st.support = [np.asarray(ix, dtype=np.int64) for ix in idx]
     n = xy.shape[0]
     local = [np.zeros((len(ix), len(ix)), order="F") for ix in idx]
     eye3 = np.eye(3)
@@ -219,6 +224,7 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
     w = int(n_walks) if groups is not None else 0
     st = SufficientStats.zeros(n_field, w, noise_group)
     st.blocks = blocks
+    st.support = idx
     n = xy.shape[0]
     jx, jy = basis.n_modes
     cos_tab = np.zeros((2 * jx + 1, 2 * jy + 1))
@@ -284,6 +290,7 @@ class Posterior:
     cov_f: np.ndarray
     mean_o: np.ndarray
     log_ml: float
+    factor: "_Factor" = None
 
 
 def _chol_inverse(chol):
@@ -343,9 +350,16 @@ def _structure(st):
     parts = [np.arange(n)]
     bl = [np.asarray(b, dtype=np.int64) for b in (st.blocks or [])]
     if len(bl) > 1 and sum(b.size for b in bl) == n and np.unique(np.concatenate(bl)).size == n:
-        gabs = np.abs(st.gff).sum(axis=0)
         pairs = [(i, j) for i in range(len(bl)) for j in range(i + 1, len(bl))]
-        coupled = {(i, j) for i, j in pairs if np.any(gabs[np.ix_(bl[i], bl[j])])}
+        if st.support is not None:  # a component's design spanning two blocks couples them
+            member = np.empty(n, dtype=np.int64)
+            for i, b in enumerate(bl):
+                member[b] = i
+            spans = [set(np.unique(member[ix]).tolist()) for ix in st.support]
+            coupled = {(i, j) for i, j in pairs if any(i in sp and j in sp for sp in spans)}
+        else:
+            gabs = np.abs(st.gff).sum(axis=0)
+            coupled = {(i, j) for i, j in pairs if np.any(gabs[np.ix_(bl[i], bl[j])])}
         if st.n_walks:
             used = np.abs(st.gfo).sum(axis=0) > 0  # (n, W, 3): parameter touches offset axis
             link = (np.abs(st.goo).sum(axis=0) > 0) | np.eye(3, dtype=bool)[None]
@@ -452,9 +466,12 @@ def log_marginal(st, prior_var_f, noise_var, offset_var=1.0):
     return _log_ml(st, fac, bf, fac.solve(bf), yy, ndet, extra, prior_var_f)
 
 
-def posterior(st, prior_var_f, noise_var, offset_var=1.0):
+def posterior(st, prior_var_f, noise_var, offset_var=1.0, *, cov=True):
     """Posterior mean and covariance of the field parameters, and the
-    posterior mean walk offsets. See :func:`log_marginal` for arguments.
+    posterior mean walk offsets. See :func:`log_marginal` for arguments;
+    ``cov=False``: ``cov_f`` is None and ``factor`` (the Cholesky factor of
+    the posterior precision, ``factor.inverse()`` is ``cov_f``) is kept,
+    for callers that may never need the covariance.
 
     Returns
     -------
@@ -466,7 +483,7 @@ def posterior(st, prior_var_f, noise_var, offset_var=1.0):
     except (np.linalg.LinAlgError, scipy.linalg.LinAlgError) as err:
         raise ConvergenceError(f"field-map normal equations are not positive definite: {err}") from err
     mean_f = fac.solve(bf)
-    cov_f = fac.inverse()
+    cov_f = fac.inverse() if cov else None
     if parts is not None:
         gfo, dinv, dib, _ = parts
         w = st.n_walks
@@ -474,7 +491,7 @@ def posterior(st, prior_var_f, noise_var, offset_var=1.0):
     else:
         mean_o = np.zeros((0, 3))
     log_ml = _log_ml(st, fac, bf, mean_f, yy, ndet, extra, prior_var_f)
-    return Posterior(mean_f, cov_f, mean_o, log_ml)
+    return Posterior(mean_f, cov_f, mean_o, log_ml, fac)
 
 
 def log_marginal_and_grad(st, prior_var_f, noise_var, offset_var=1.0):

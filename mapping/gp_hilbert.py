@@ -121,20 +121,23 @@ class BoxBasis:
             raise ConfigError(f"n_basis must be >= 1, got {n_basis}")
         centre = 0.5 * (lo + hi)
         half = 0.5 * (hi - lo)
-        # Enough candidates along each axis for the n lowest eigenvalues.
-        jmax = n_basis + 1
-        wx = np.pi * np.arange(1, jmax + 1) / (2 * half[0])
-        wy = np.pi * np.arange(1, jmax + 1) / (2 * half[1])
-        # Bound the candidate set: frequencies above the n-th lowest of one
-        # axis alone can never be among the n lowest overall.
-        lim = min(wx[min(n_basis, jmax) - 1], wy[min(n_basis, jmax) - 1])
-        kx = np.arange(1, int(np.searchsorted(wx, lim, side="right")) + 1)
-        ky = np.arange(1, int(np.searchsorted(wy, lim, side="right")) + 1)
-        gx, gy = np.meshgrid(kx, ky, indexing="ij")
-        gx = gx.ravel()
-        gy = gy.ravel()
-        lam = (np.pi * gx / (2 * half[0])) ** 2 + (np.pi * gy / (2 * half[1])) ** 2
-        order = np.lexsort((gy, gx, lam))[:n_basis]
+        # Candidates j_x <= kx, j_y <= ky, starting from twice the count of
+        # the quarter ellipse that holds n points; the n lowest are exact
+        # once the n-th lies below every eigenvalue outside the rectangle
+        # (at least (kx + 1, 1) or (1, ky + 1)); else the rectangle grows.
+        est = np.sqrt(4.0 * n_basis / np.pi * half / half[::-1])
+        kx, ky = (int(v) for v in np.minimum(np.ceil(2 * est) + 2, n_basis))
+        while True:
+            gx, gy = np.meshgrid(np.arange(1, kx + 1), np.arange(1, ky + 1), indexing="ij")
+            gx = gx.ravel()
+            gy = gy.ravel()
+            lam = (np.pi * gx / (2 * half[0])) ** 2 + (np.pi * gy / (2 * half[1])) ** 2
+            order = np.lexsort((gy, gx, lam))[:n_basis]
+            outside = min((np.pi * (kx + 1) / (2 * half[0])) ** 2 + (np.pi / (2 * half[1])) ** 2,
+                          (np.pi / (2 * half[0])) ** 2 + (np.pi * (ky + 1) / (2 * half[1])) ** 2)
+            if order.size == n_basis and lam[order[-1]] < outside:
+                break
+            kx, ky = 2 * kx, 2 * ky
         return cls(centre, half, gx[order].astype(np.int64), gy[order].astype(np.int64))
 
     # -- properties --------------------------------------------------------

@@ -295,8 +295,10 @@ class _ReducedRankGP(_Fitted):
                 info = {"optimised": False}
             log_ml = 0.0
             for p in parts:
-                post = _linmodel.posterior(p.stats_, p._prior_var(hyper), self._noise(hyper), hyper["offset_ut"] ** 2)
-                p.mean_f_, p.cov_f_, p.hyper_ = post.mean_f, post.cov_f, hyper
+                post = _linmodel.posterior(p.stats_, p._prior_var(hyper), self._noise(hyper), hyper["offset_ut"] ** 2,
+                                           cov=False)
+                p.mean_f_, p.hyper_ = post.mean_f, hyper
+                p._set_cov_factor(post.factor)
                 p.walk_offsets_ut_ = post.mean_o
                 log_ml += post.log_ml
         self.hyper_ = hyper
@@ -316,6 +318,29 @@ class _ReducedRankGP(_Fitted):
             p.n_samples_ = int(p.sel_.sum())
         self.n_samples_ = n
         return self
+
+    # Posterior covariance of the weights: formed from the Cholesky factor
+    # on first use (a fit followed only by mean predictions never needs it).
+    def _set_cov_factor(self, factor):
+        self.__dict__.pop("_cov_f", None)
+        self._cov_factor = factor
+
+    @property
+    def cov_f_(self):
+        """(m_f, m_f) posterior covariance of the field parameters."""
+        cov = self.__dict__.get("_cov_f")
+        if cov is None:
+            fac = self.__dict__.get("_cov_factor")
+            if fac is None:
+                raise AttributeError("cov_f_")
+            with threadpool_limits(limits=1, user_api="blas"):
+                cov = fac.inverse()
+            self._cov_f, self._cov_factor = cov, None
+        return cov
+
+    @cov_f_.setter
+    def cov_f_(self, value):
+        self._cov_f, self._cov_factor = value, None
 
     def _setup_part(self, basis, xy, b, codes, rotations, n_walks, sel, box, fold=None):
         """Basis, layout and sufficient statistics of one box (the whole
@@ -594,7 +619,7 @@ class _ReducedRankGP(_Fitted):
         """Blend the parts' latent predictions: (mean (N, 3), var (N, 3));
         var is the mixture variance (None if not ``return_var``). Points no
         tile covers get the data mean and the prior variance."""
-        posts = posts or [(p.mean_f_, p.cov_f_) for p in self.parts_]
+        posts = posts or [(p.mean_f_, p.cov_f_ if return_var else None) for p in self.parts_]
         if len(self.parts_) == 1 and self.parts_[0].box_ is None:
             p = self.parts_[0]
             return p._predict_with(posts[0][0], posts[0][1], xy, return_var=return_var)
