@@ -93,6 +93,15 @@ class Localiser:
         self._history = []
         self.n_updates = 0
 
+    @property
+    def field_validity(self):
+        """Current probability that the map explains this walk's field
+        (``FilterSettings.field_valid_prior``; None when that check is off)."""
+        if self._ctx.background is None:
+            return None
+        p = self._tracker.p_field
+        return float(self.settings.field_valid_prior if not math.isfinite(p) else p)
+
     # -- input -----------------------------------------------------------
     def push(self, t, mag_earth_ut, heading_rad):
         """Add field samples (one or many).

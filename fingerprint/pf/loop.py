@@ -13,7 +13,7 @@ import numpy as np
 from ..errors import ConvergenceError
 from ._lookup import MapTable
 from ._noise import normal32
-from .measurement import field_log_likelihood
+from .measurement import background_log_likelihood, field_log_likelihood, floor_background
 from .motion import edge_xy, graph_tables, move_arrays
 from .resampling import get_resampler
 from .state import ParticleState, normalise_log_weights, take_rows
@@ -32,6 +32,7 @@ class FilterContext:
     settings: object
     earth_to_plan_rad: float
     sensor_noise_ut: float
+    background: object = None  # FloorBackground, when field_valid_prior is set
 
 
 def make_context(fmap, settings, *, sensor_noise_ut):
@@ -44,6 +45,7 @@ def make_context(fmap, settings, *, sensor_noise_ut):
         settings=settings,
         earth_to_plan_rad=float(fmap.earth_to_plan_rad),
         sensor_noise_ut=float(sensor_noise_ut),
+        background=floor_background(fmap) if settings.use_field and settings.field_valid_prior is not None else None,
     )
 
 
@@ -54,6 +56,9 @@ class RecoveryTracker:
     level: float = 0.0
     count: int = 0
     outliers: int = 0  # consecutive updates with an outlying field innovation
+    #: probability that the map explains this walk's field (NaN = not yet
+    #: updated; see ``FilterSettings.field_valid_prior``)
+    p_field: float = float("nan")
 
 
 def _nuisance_prior(n, settings, rng):
@@ -159,6 +164,38 @@ def _predict_bias(state, s):
     return phi * state.bias_ut, phi * phi * state.bias_var_ut2 + ((1.0 - phi * phi) * prior) * has
 
 
+def _mix_with_background(llf, obs, psi, state, ctx, tracker):
+    """Walk-level check that the map explains the field at all.
+
+    Two hypotheses for the whole walk: H1, the field follows the map (the
+    particles' field likelihoods ``llf``), and H0, it does not (the
+    observation is drawn from the floor-wide spread of the mapped field, the
+    same for every particle). Each particle's likelihood becomes the mixture
+    ``p l_i + (1 - p) l_0``, and ``p = P(H1 | field so far)`` is updated by
+    Bayes' rule with the cloud's marginal likelihood (its evidence raised to
+    ``field_valid_gain``), then mixed with its complement by
+    ``field_valid_switch`` (a two-state Markov chain: the map may stop or
+    start explaining the field along the walk). A walk whose field the map
+    does not explain thus falls back towards the filter without the field.
+    """
+    s = ctx.settings
+    p = tracker.p_field if math.isfinite(tracker.p_field) else s.field_valid_prior
+    p = min(max(p, 1e-12), 1.0 - 1e-12)
+    llf = np.asarray(llf, dtype=np.float64)
+    ll0 = background_log_likelihood(obs, psi, state.log_w, state.bias_ut, state.bias_var_ut2, ctx.background,
+                                    settings=s, sensor_noise_ut=ctx.sensor_noise_ut)
+    a = state.log_w + llf
+    top = float(np.max(a))
+    log_l1 = top + math.log(float(np.sum(np.exp(a - top)))) if math.isfinite(top) else -math.inf
+    lp1, lp0 = math.log(p), math.log1p(-p)
+    mixed = np.logaddexp(lp1 + llf, lp0 + ll0)
+    k = s.field_valid_gain
+    post = math.exp(lp1 + k * log_l1 - np.logaddexp(lp1 + k * log_l1, lp0 + k * ll0))
+    q = s.field_valid_switch
+    post = (1.0 - q) * post + q * (1.0 - post)
+    return mixed, dataclasses.replace(tracker, p_field=float(post))
+
+
 def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
     """One update: move by an increment, weigh by heading and field, detect
     a collapse (re-seed), resample when the ESS is low.
@@ -213,6 +250,8 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
         if not gated:
             if s.field_floor_nats is not None:
                 llf = np.maximum(llf.astype(np.float64), float(np.max(llf)) - s.field_floor_nats)
+            if ctx.background is not None:
+                llf, tracker = _mix_with_background(llf, obs, psi, state, ctx, tracker)
             ll = np.add(ll, llf, dtype=np.float64)  # float32 terms, summed exactly
             arrays["bias_ut"], arrays["bias_var_ut2"] = bias, bias_var
             field_used = True
@@ -242,7 +281,7 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
             lost = True
         value = max(log_total, tracker.level - s.recovery_drop) if tracker.count else log_total
         level = value if tracker.count == 0 else (1 - s.recovery_rate) * tracker.level + s.recovery_rate * value
-        tracker = RecoveryTracker(level=float(level), count=tracker.count + 1, outliers=tracker.outliers)
+        tracker = dataclasses.replace(tracker, level=float(level), count=tracker.count + 1)
     resampled = ess < s.ess_threshold * n
     if resampled:
         state = _resample(arrays, ctx, rng, e)

@@ -43,6 +43,9 @@ __all__ = [
     "FEATURE_SETS",
     "LIKELIHOODS",
     "field_log_likelihood",
+    "FloorBackground",
+    "floor_background",
+    "background_log_likelihood",
 ]
 
 
@@ -279,3 +282,97 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, look
             chi2 = float(wc @ np.where(covered, d2, 0.0) / wc.sum())
         return ll, new_b, new_p, chi2
     return ll, new_b, new_p
+
+
+# -- the field when the map does not explain it (walk-level check) --------------
+@dataclass(frozen=True)
+class FloorBackground:
+    """Floor-wide spread of the mapped field along the graph (points every
+    ``spacing_m`` of edge, so every metre of graph counts the same).
+
+    Attributes
+    ----------
+    mean_ut : (3,) mean map vector (plan x, y, up)
+    cov_xy_ut2 : (2, 2) covariance of its horizontal part
+    var_ut2 : (3,) variance of each component
+    map_var_ut2 : (3,) mean map variance
+    h_ut, h_var_ut2 : mean and variance of the horizontal magnitude
+    total_ut, total_var_ut2 : the same for the magnitude
+    """
+
+    mean_ut: np.ndarray
+    cov_xy_ut2: np.ndarray
+    var_ut2: np.ndarray
+    map_var_ut2: np.ndarray
+    h_ut: float
+    h_var_ut2: float
+    total_ut: float
+    total_var_ut2: float
+
+
+def floor_background(fmap, spacing_m=0.5):
+    """:class:`FloorBackground` of a FieldMap (its graph and raster)."""
+    g = fmap.graph
+    k = np.maximum(np.ceil(g.length_m / spacing_m).astype(np.int64), 1)
+    e = np.repeat(np.arange(g.n_edges), k)
+    frac = (np.arange(e.size) - np.repeat(np.cumsum(k) - k, k) + 0.5) / np.repeat(k, k)
+    mean, var, _ = fmap.lookup(g.point(e, frac * g.length_m[e]))
+    ok = np.all(np.isfinite(mean), axis=1) & np.all(np.isfinite(var), axis=1)
+    if not np.any(ok):
+        raise ConfigError("the map has no finite field along its graph; the field-validity check needs one")
+    mean, var = mean[ok], var[ok]
+    h = np.hypot(mean[:, 0], mean[:, 1])
+    tot = np.sqrt(h * h + mean[:, 2] ** 2)
+    return FloorBackground(
+        mean_ut=mean.mean(axis=0), cov_xy_ut2=np.cov(mean[:, :2].T), var_ut2=mean.var(axis=0),
+        map_var_ut2=var.mean(axis=0), h_ut=float(h.mean()), h_var_ut2=float(h.var()),
+        total_ut=float(tot.mean()), total_var_ut2=float(tot.var()),
+    )
+
+
+def _background_features(bg, obs, psi, feature_set):
+    """Observed features, their floor-wide mean and variance (spread of the
+    map plus its mean variance) and bias components, for device heading ``psi``."""
+    mv = bg.map_var_ut2
+    if feature_set == "full":
+        c, s = math.cos(psi), math.sin(psi)
+        mx, my, mu = bg.mean_ut
+        (vxx, vxy), (_, vyy) = bg.cov_xy_ut2
+        pred = np.array([mx * c + my * s, -mx * s + my * c, mu])
+        var = np.array([
+            c * c * (vxx + mv[0]) + s * s * (vyy + mv[1]) + 2 * c * s * vxy,
+            s * s * (vxx + mv[0]) + c * c * (vyy + mv[1]) - 2 * c * s * vxy,
+            bg.var_ut2[2] + mv[2],
+        ])
+        return np.array([obs.fwd_ut, obs.left_ut, obs.up_ut]), pred, var, (0, 1, 2)
+    if feature_set == "vertical+horizontal":
+        return (np.array([obs.h_ut, obs.up_ut]), np.array([bg.h_ut, bg.mean_ut[2]]),
+                np.array([bg.h_var_ut2 + 0.5 * (mv[0] + mv[1]), bg.var_ut2[2] + mv[2]]), (0, 2))
+    return np.array([obs.total_ut]), np.array([bg.total_ut]), np.array([bg.total_var_ut2 + mv.mean()]), (2,)
+
+
+def background_log_likelihood(obs, psi_rad, log_w, bias_ut, bias_var_ut2, bg, *, settings, sensor_noise_ut):
+    """Tempered log-likelihood of the observation if the field does not
+    follow the map (drawn from the floor-wide spread, :class:`FloorBackground`),
+    with the cloud's weighted mean bias and device heading; one number for
+    every particle.
+
+    Parameters
+    ----------
+    obs : WindowObservation ; psi_rad : (N,) device heading of each particle in the plan
+    log_w : (N,) normalised log-weights ; bias_ut, bias_var_ut2 : (N, 3)
+    bg : FloorBackground ; settings : FilterSettings ; sensor_noise_ut : float
+    """
+    s = settings
+    w = np.exp(log_w - np.max(log_w))
+    w /= w.sum()
+    psi = math.atan2(float(w @ np.sin(psi_rad)), float(w @ np.cos(psi_rad)))
+    y, pred, mvar, bidx = _background_features(bg, obs, psi, s.feature_set)
+    bidx = list(bidx)
+    b = w @ np.asarray(bias_ut, dtype=np.float64)[:, bidx]
+    p = w @ np.asarray(bias_var_ut2, dtype=np.float64)[:, bidx]
+    tau = s.field_temper
+    v = s.map_var_scale * mvar + (sensor_noise_ut**2 / max(obs.n, 1) + s.mismatch_ut**2)
+    r = (y - pred - b)[None, :]
+    dens = _get(LIKELIHOODS, s.likelihood, "likelihood")
+    return float(tau * np.sum(dens(r, (v + tau * p)[None, :], s)))

@@ -79,6 +79,14 @@ class FilterSettings:
         ``field_gate_after`` consecutive updates (a walk whose field does not
         match the map at all)
     field_gate_after : consecutive outlying updates before the gate closes
+    field_valid_prior : None = off; a probability p0 = weigh, for the whole
+        walk, the hypothesis that the map explains its field against the
+        hypothesis that it does not (the field drawn from the floor-wide
+        spread); the field's weight follows the posterior of the first,
+        starting from p0 (``fingerprint.pf.loop._mix_with_background``)
+    field_valid_switch : per-update probability that the answer changes
+    field_valid_gain : exponent on the evidence that updates that probability
+        (0 freezes it at ``field_valid_prior``)
     field_floor_nats : None = off; a number c = no particle's field
         log-likelihood is more than c below the best particle's in one update
         (bounds how hard one update of the field can pull the cloud)
@@ -134,6 +142,9 @@ class FilterSettings:
     field_gate: float | None = None
     field_gate_after: int = 3
     field_floor_nats: float | None = None
+    field_valid_prior: float | None = None
+    field_valid_switch: float = 0.0
+    field_valid_gain: float = 1.0
     # resampling and recovery
     resampler: str = "systematic"
     ess_threshold: float = 0.5
@@ -190,6 +201,13 @@ class FilterSettings:
             v = getattr(self, name)
             if v is not None and not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
                 bad(name, "None or a finite number > 0")
+        if self.field_valid_prior is not None and not (0 < self.field_valid_prior < 1):
+            bad("field_valid_prior", "None or a probability strictly between 0 and 1")
+        if not (isinstance(self.field_valid_gain, (int, float)) and math.isfinite(self.field_valid_gain)
+                and self.field_valid_gain >= 0):
+            bad("field_valid_gain", "a finite number >= 0")
+        if not (isinstance(self.field_valid_switch, (int, float)) and 0 <= self.field_valid_switch <= 0.5):
+            bad("field_valid_switch", "a number in [0, 0.5]")
         if not (isinstance(self.field_gate_after, int) and self.field_gate_after >= 1):
             bad("field_gate_after", "an integer >= 1")
         if not (isinstance(self.recovery_warmup, int) and self.recovery_warmup >= 0):
