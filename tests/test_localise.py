@@ -142,7 +142,7 @@ def test_no_coverage_equals_no_field(floor):
     g, _ = floor
     fm = S.field_map(g, earth_to_plan_rad=E2P, coverage_m=10.0)
     w, t, xy = make_walk(g, 6, n_legs=6)
-    s = FilterSettings(n_particles=400, coverage_max_m=3.0)
+    s = FilterSettings(n_particles=400, coverage_max_m=3.0, field_valid_prior=None)
     a = localise(w, fm, settings=s, start_xy=xy[0], rng=5)
     b = localise(w, fm, settings=dataclasses.replace(s, use_field=False), start_xy=xy[0], rng=5)
     np.testing.assert_array_equal(a.xy, b.xy)
@@ -285,7 +285,8 @@ def test_field_floor_bounds_the_field_weight_spread_of_one_update(floor):
     # draws); without the floor this observation spreads them much further
     # (common practice, no source).
     _, fm = floor
-    s = FilterSettings(n_particles=500, ess_threshold=0.0, field_floor_nats=1.5, field_temper=1.0)
+    s = FilterSettings(n_particles=500, ess_threshold=0.0, field_floor_nats=1.5, field_temper=1.0,
+                       field_valid_prior=None)  # the walk-level mixture would compress the spread further
     obs = window_observation(np.array([[10.0, 15.0, -40.0]] * 5), np.zeros(5))
     base, _, _ = _gate_step(fm, dataclasses.replace(s, use_field=False), obs, RecoveryTracker())
     floored, _, _ = _gate_step(fm, s, obs, RecoveryTracker())

@@ -78,7 +78,7 @@ def test_validity_rises_on_the_mapped_field_and_falls_on_another(floor):
 def test_frozen_extremes_reduce_to_the_plain_filters(floor, limit):
     g, fm = floor
     w, xy = _walk(g, 2, n_legs=6)
-    base = FilterSettings(n_particles=400)
+    base = FilterSettings(n_particles=400, field_valid_prior=None)
     p = 1.0 - 1e-12 if limit == "field" else 1e-12
     mixed = dataclasses.replace(base, field_valid_prior=p, field_valid_gain=0.0)
     ref = base if limit == "field" else dataclasses.replace(base, use_field=False)
@@ -100,7 +100,8 @@ def test_streaming_equals_batch_with_the_check(floor):
 
 def test_validity_is_none_when_off_and_settings_are_checked(floor):
     g, fm = floor
-    assert Localiser(fm, settings=FilterSettings(n_particles=50), start_xy=(3.0, 3.0), rng=0).field_validity is None
+    off = FilterSettings(n_particles=50, field_valid_prior=None)
+    assert Localiser(fm, settings=off, start_xy=(3.0, 3.0), rng=0).field_validity is None
     for bad in ({"field_valid_prior": 1.0}, {"field_valid_prior": 0.0}, {"field_valid_switch": 0.7},
                 {"field_valid_gain": -1.0}):
         with pytest.raises(ConfigError):

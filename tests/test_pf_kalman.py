@@ -66,6 +66,8 @@ def linear_settings(**kw):
         project_estimate=False,
         # the Kalman model measures the state after the move
         field_at_midpoint=False,
+        # the Kalman model knows the field follows the map
+        field_valid_prior=None,
     )
     return dataclasses.replace(base, **kw)
 

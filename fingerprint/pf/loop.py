@@ -164,6 +164,10 @@ def _predict_bias(state, s):
     return phi * state.bias_ut, phi * phi * state.bias_var_ut2 + ((1.0 - phi * phi) * prior) * has
 
 
+#: P(map explains the field) right after a collapse (see ``filter_step``)
+_P_FIELD_AFTER_LOSS = 0.999
+
+
 def _mix_with_background(llf, obs, psi, state, ctx, tracker):
     """Walk-level check that the map explains the field at all.
 
@@ -226,6 +230,7 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
     )
     arrays["bias_ut"], arrays["bias_var_ut2"] = state.bias_ut, state.bias_var_ut2
     field_used = False
+    ll_map = None
     if want_field:
         xy_t = np.empty((2, n))  # rows x, y: xy_t.T is (N, 2) with contiguous columns
         x, y = edge_xy(tab, arrays["edge"], arrays["offset_m"], out=xy_t)
@@ -251,6 +256,9 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
             if s.field_floor_nats is not None:
                 llf = np.maximum(llf.astype(np.float64), float(np.max(llf)) - s.field_floor_nats)
             if ctx.background is not None:
+                # collapse detection keeps watching the map hypothesis alone
+                # (the mixture would cushion a lost cloud by the floor-wide term)
+                ll_map = np.add(ll, llf, dtype=np.float64)
                 llf, tracker = _mix_with_background(llf, obs, psi, state, ctx, tracker)
             ll = np.add(ll, llf, dtype=np.float64)  # float32 terms, summed exactly
             arrays["bias_ut"], arrays["bias_var_ut2"] = bias, bias_var
@@ -276,10 +284,15 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
         lost = True
         e = np.exp(log_w)
         ess = 1.0 / float(e @ e)
-    if field_used and math.isfinite(log_total):
-        if s.recovery and tracker.count >= s.recovery_warmup and log_total < tracker.level - s.recovery_drop:
+    watched = log_total
+    if ll_map is not None and math.isfinite(log_total):
+        a = state.log_w + ll_map
+        top_m = float(np.max(a))
+        watched = top_m + math.log(float(np.sum(np.exp(a - top_m)))) if math.isfinite(top_m) else -math.inf
+    if field_used and math.isfinite(watched):
+        if s.recovery and tracker.count >= s.recovery_warmup and watched < tracker.level - s.recovery_drop:
             lost = True
-        value = max(log_total, tracker.level - s.recovery_drop) if tracker.count else log_total
+        value = max(watched, tracker.level - s.recovery_drop) if tracker.count else watched
         level = value if tracker.count == 0 else (1 - s.recovery_rate) * tracker.level + s.recovery_rate * value
         tracker = dataclasses.replace(tracker, level=float(level), count=tracker.count + 1)
     resampled = ess < s.ess_threshold * n
@@ -288,6 +301,9 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
     else:
         state = ParticleState(**arrays, log_w=log_w)
     if lost and s.recovery:
+        # the evidence against the map came from a lost cloud: trust the map
+        # again while the re-seeded particles look for the walker
+        tracker = dataclasses.replace(tracker, p_field=_P_FIELD_AFTER_LOSS)
         m = int(round(s.recovery_fraction * state.n))
         if m:
             state = reseed(state, rng.choice(state.n, size=m, replace=False), ctx, rng)

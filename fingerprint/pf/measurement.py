@@ -319,7 +319,7 @@ def floor_background(fmap, spacing_m=0.5):
     mean, var, _ = fmap.lookup(g.point(e, frac * g.length_m[e]))
     ok = np.all(np.isfinite(mean), axis=1) & np.all(np.isfinite(var), axis=1)
     if not np.any(ok):
-        raise ConfigError("the map has no finite field along its graph; the field-validity check needs one")
+        raise ConvergenceError("the map's field is NaN along its whole graph")
     mean, var = mean[ok], var[ok]
     h = np.hypot(mean[:, 0], mean[:, 1])
     tot = np.sqrt(h * h + mean[:, 2] ** 2)

@@ -31,7 +31,10 @@ class FilterSettings:
     length_sigma_frac, length_sigma_m : 1-sigma noise on each increment's
         length, relative and absolute
     scale_sigma0, scale_rw : initial spread of the step-length scale (around 1)
-        and its random walk per update
+        and its random walk per update (0 and 0 by default: on the real phone
+        walks the step model's own length was better than a per-particle
+        scale, for the filter with and without the field; give a walker of
+        unknown stride, e.g. 0.08 and 0.005)
     heading_sigma0_rad, heading_rw_rad : initial spread of the per-particle
         heading offset and its random walk per update
     heading_kappa : von Mises concentration of the agreement between the
@@ -117,8 +120,8 @@ class FilterSettings:
     update_min_m: float = 0.5
     length_sigma_frac: float = 0.08
     length_sigma_m: float = 0.05
-    scale_sigma0: float = 0.08
-    scale_rw: float = 0.005
+    scale_sigma0: float = 0.0
+    scale_rw: float = 0.0
     heading_sigma0_rad: float = math.radians(8.0)
     heading_rw_rad: float = math.radians(0.5)
     heading_kappa: float = 2.0
@@ -129,7 +132,7 @@ class FilterSettings:
     feature_set: str = "vertical+horizontal"
     likelihood: str = "student-t"
     student_nu: float = 4.0
-    field_temper: float = 0.1
+    field_temper: float = 0.05
     sensor_noise_ut: float | None = None
     mismatch_ut: float = 3.0
     coverage_max_m: float = 1.5
@@ -142,14 +145,14 @@ class FilterSettings:
     field_gate: float | None = None
     field_gate_after: int = 3
     field_floor_nats: float | None = None
-    field_valid_prior: float | None = None
+    field_valid_prior: float | None = 0.7
     field_valid_switch: float = 0.0
     field_valid_gain: float = 1.0
     # resampling and recovery
     resampler: str = "systematic"
     ess_threshold: float = 0.5
     rough_heading_rad: float = math.radians(0.5)
-    rough_scale: float = 0.003
+    rough_scale: float = 0.0
     recovery: bool = True
     recovery_drop: float = 6.0
     recovery_fraction: float = 0.1
@@ -234,7 +237,11 @@ class FilterSettings:
 #: small residual offsets: the full vector, Gaussian, less tempering).
 PRESETS = {
     "default": {},
-    "simulated": {"feature_set": "full", "likelihood": "gaussian", "field_temper": 0.2, "mismatch_ut": 1.5},
+    "simulated": {"feature_set": "full", "likelihood": "gaussian", "field_temper": 0.2, "mismatch_ut": 1.5,
+                  # the simulated walkers' stride drifts along a walk: keep a scale state
+                  "scale_sigma0": 0.08, "scale_rw": 0.005, "rough_scale": 0.003,
+                  # the simulated map explains every walk's field
+                  "field_valid_prior": None},
 }
 
 
