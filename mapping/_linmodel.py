@@ -336,6 +336,14 @@ class _Factor:
         return out
 
 
+def _block(g, b):
+    """``g[:, b][:, :, b]`` for (G, n, n) ``g``: a view when ``b`` is a run of
+    consecutive indices (read-only use), else a copy."""
+    if b.size and b[-1] - b[0] + 1 == b.size and np.all(np.diff(b) == 1):
+        return g[:, b[0] : b[-1] + 1, b[0] : b[-1] + 1]
+    return g[:, b[:, None], b[None, :]]
+
+
 def _structure(st):
     """The partition the normal equations are block-diagonal for at every
     hyperparameter value: the blocks of ``st.blocks``, merged where a
@@ -382,7 +390,7 @@ def _structure(st):
         for i in range(len(bl)):
             groups.setdefault(find(i), []).append(bl[i])
         parts = [np.sort(np.concatenate(g)) for g in groups.values()]
-    gffb = [st.gff[:, b[:, None], b[None, :]] for b in parts]
+    gffb = [_block(st.gff, b) for b in parts]
     st._structure_cache = (parts, gffb)
     return st._structure_cache
 
