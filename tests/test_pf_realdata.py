@@ -9,7 +9,7 @@ Bars (this sample has only 8 + 4 test walks, 16 + 8 survey walks, so the
 graph-constrained filter without the field must beat plain dead reckoning
 (the same steps integrated from the first checkpoint, rotated into the
 plan) on the median; its median must stay at most 2.5 m (the issue's bar is
-2.0 m on the full floors, where this code gives about 1.8 m on F1 and 1.6 m
+2.0 m on the full floors, where this code gives about 1.6 m on F1 and 1.5 m
 on B1); the filter with the field must not lose more than 0.3 m of median
 against it. The full-floor comparison of field vs no-field needs maps of
 80-118 survey walks (minutes to build) and is not a unit test.
