@@ -116,3 +116,20 @@ def errors(track, t, xy):
     """Error (K,) metres of the track's updates against the truth."""
     tx = np.column_stack([np.interp(track.t, t, xy[:, 0]), np.interp(track.t, t, xy[:, 1])])
     return np.hypot(*(track.xy - tx).T)
+
+
+def feed(loc, walk):
+    """Push a ProcessedWalk into a Localiser sample by sample and increment
+    by increment, as a live app would, then flush; returns ``loc``."""
+    m = walk.motion
+    k = 0
+    for i in range(walk.n):
+        while k < m.n and m.t[k] < walk.t[i]:
+            loc.push_motion(m.t[k], m.length_m[k], m.heading_rad[k])
+            k += 1
+        loc.push(walk.t[i], walk.mag_earth_ut[i], walk.heading_rad[i])
+    while k < m.n:
+        loc.push_motion(m.t[k], m.length_m[k], m.heading_rad[k])
+        k += 1
+    loc.flush()
+    return loc

@@ -42,17 +42,7 @@ def stream(fmap, walk, *, settings, start_xy, seed):
     """Feed sample by sample and increment by increment, as a live app would."""
     loc = Localiser(fmap, settings=settings, start_xy=start_xy, start_sigma_m=1.0, rng=seed,
                     sensor_noise_ut=walk.mag_noise_ut)
-    m = walk.motion
-    k = 0
-    for i in range(walk.n):
-        while k < m.n and m.t[k] < walk.t[i]:
-            loc.push_motion(m.t[k], m.length_m[k], m.heading_rad[k])
-            k += 1
-        loc.push(walk.t[i], walk.mag_earth_ut[i], walk.heading_rad[i])
-    while k < m.n:
-        loc.push_motion(m.t[k], m.length_m[k], m.heading_rad[k])
-        k += 1
-    loc.flush()
+    S.feed(loc, walk)
     return loc.track()
 
 

@@ -40,15 +40,7 @@ def _walk(g, seed, *, field_seed=0, n_legs=12):
 
 def _run(fm, w, start, settings, seed=3):
     loc = Localiser(fm, settings=settings, start_xy=start, rng=seed, sensor_noise_ut=w.mag_noise_ut)
-    m = w.motion
-    k = 0
-    for i in range(w.n):
-        while k < m.n and m.t[k] < w.t[i]:
-            loc.push_motion(m.t[k], m.length_m[k], m.heading_rad[k])
-            k += 1
-        loc.push(w.t[i], w.mag_earth_ut[i], w.heading_rad[i])
-    loc.flush()
-    return loc
+    return S.feed(loc, w)
 
 
 def test_background_is_the_floor_wide_spread_of_the_map(floor):
