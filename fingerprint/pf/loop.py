@@ -186,13 +186,19 @@ def _mix_with_background(llf, obs, psi, state, ctx, tracker):
     p = tracker.p_field if math.isfinite(tracker.p_field) else s.field_valid_prior
     p = min(max(p, 1e-12), 1.0 - 1e-12)
     llf = np.asarray(llf, dtype=np.float64)
-    ll0 = background_log_likelihood(obs, psi, state.log_w, state.bias_ut, state.bias_var_ut2, ctx.background,
+    w = np.exp(state.log_w - np.max(state.log_w))
+    w /= np.sum(w)
+    ll0 = background_log_likelihood(obs, psi, w, state.bias_ut, state.bias_var_ut2, ctx.background,
                                     settings=s, sensor_noise_ut=ctx.sensor_noise_ut)
-    a = state.log_w + llf
-    top = float(np.max(a))
-    log_l1 = top + math.log(float(np.sum(np.exp(a - top)))) if math.isfinite(top) else -math.inf
+    # one exp and one log pass: with c >= every term, l_i / e^c = m_i
+    c = max(float(np.max(llf)), ll0)
+    m = np.exp(llf - c)
+    log_l1 = c + math.log(float(w @ m)) if np.any(m > 0) else -math.inf
     lp1, lp0 = math.log(p), math.log1p(-p)
-    mixed = np.logaddexp(lp1 + llf, lp0 + ll0)
+    m *= p
+    m += (1.0 - p) * math.exp(ll0 - c)
+    mixed = np.log(m)
+    mixed += c
     k = s.field_valid_gain
     post = math.exp(lp1 + k * log_l1 - np.logaddexp(lp1 + k * log_l1, lp0 + k * ll0))
     q = s.field_valid_switch

@@ -351,7 +351,7 @@ def _background_features(bg, obs, psi, feature_set):
     return np.array([obs.total_ut]), np.array([bg.total_ut]), np.array([bg.total_var_ut2 + mv.mean()]), (2,)
 
 
-def background_log_likelihood(obs, psi_rad, log_w, bias_ut, bias_var_ut2, bg, *, settings, sensor_noise_ut):
+def background_log_likelihood(obs, psi_rad, w, bias_ut, bias_var_ut2, bg, *, settings, sensor_noise_ut):
     """Tempered log-likelihood of the observation if the field does not
     follow the map (drawn from the floor-wide spread, :class:`FloorBackground`),
     with the cloud's weighted mean bias and device heading; one number for
@@ -360,13 +360,13 @@ def background_log_likelihood(obs, psi_rad, log_w, bias_ut, bias_var_ut2, bg, *,
     Parameters
     ----------
     obs : WindowObservation ; psi_rad : (N,) device heading of each particle in the plan
-    log_w : (N,) normalised log-weights ; bias_ut, bias_var_ut2 : (N, 3)
+    w : (N,) linear weights summing to 1 ; bias_ut, bias_var_ut2 : (N, 3)
     bg : FloorBackground ; settings : FilterSettings ; sensor_noise_ut : float
     """
     s = settings
-    w = np.exp(log_w - np.max(log_w))
-    w /= w.sum()
-    psi = math.atan2(float(w @ np.sin(psi_rad)), float(w @ np.cos(psi_rad)))
+    psi = 0.0
+    if s.feature_set == "full":  # the only feature set that turns with the device
+        psi = math.atan2(float(w @ np.sin(psi_rad)), float(w @ np.cos(psi_rad)))
     y, pred, mvar, bidx = _background_features(bg, obs, psi, s.feature_set)
     bidx = list(bidx)
     b = w @ np.asarray(bias_ut, dtype=np.float64)[:, bidx]
