@@ -341,7 +341,7 @@ def _block(g, b):
     consecutive indices (read-only use), else a copy."""
     if b.size and b[-1] - b[0] + 1 == b.size and np.all(np.diff(b) == 1):
         return g[:, b[0] : b[-1] + 1, b[0] : b[-1] + 1]
-    return g[:, b[:, None], b[None, :]]
+    return g[:, b][:, :, b]  # two 1-D gathers: several times faster than one 2-D fancy index
 
 
 def _structure(st):
