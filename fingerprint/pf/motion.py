@@ -46,18 +46,10 @@ class GraphTables:
         direction (node is ``edges[e, 0]``), -1 otherwise
     out_cos, out_sin : (K, D) float, unit vector of leaving along the edge
     start_offset_m : (K, D) float, offset of the node on that edge (0 or length)
-    pad_prior : (K, D) float, 0 for a real slot, -inf for padding
-    dead_end : (K,) bool, node of degree 1 (the way back is the only way
-        and gets prior 1)
-    out_cs_t : (2, D, K) float, ``out_cos`` and ``out_sin`` stacked and
-        transposed (one gather, options along the first axis)
-    cand_t, pad_prior_t : (D, K), ``cand`` and ``pad_prior`` transposed
-    edge_tab : (E, 5) float, per edge unit x, unit y, length (m), start x, y (one gather)
-    end_node : (E, 2) int64, node reached travelling forward / backward
-    edge_ux, edge_uy, edge_x0, edge_y0, edge_len : (E,) float, the columns of
-        ``edge_tab`` as contiguous arrays (one 1-D gather each)
+    edge_ux, edge_uy, edge_x0, edge_y0, edge_len : (E,) float, per edge unit
+        vector, first node and length as contiguous arrays (one 1-D gather each)
     edge_u32 : (2, E) float32, unit x and y (for the float32 heading terms)
-    arr_cs : (2, D, 2 E) float32, ``out_cs_t`` of the node reached along
+    arr_cs : (2, D, 2 E) float32, ``out_cos``, ``out_sin`` of the node reached along
         edge ``e`` travelling forward (column ``2 e``) or backward (``2 e + 1``)
     arr_valid : (D, 2 E) float32, 1 for a real slot of that node, 0 for padding
     arr_back : (D, 2 E) bool, the slot is the way back (edge ``e`` itself) and
@@ -74,26 +66,19 @@ class GraphTables:
     out_cos: np.ndarray
     out_sin: np.ndarray
     start_offset_m: np.ndarray
-    pad_prior: np.ndarray
-    dead_end: np.ndarray
-    out_cs_t: np.ndarray
-    cand_t: np.ndarray
-    pad_prior_t: np.ndarray
-    edge_tab: np.ndarray
-    end_node: np.ndarray
-    edge_ux: np.ndarray = None
-    edge_uy: np.ndarray = None
-    edge_x0: np.ndarray = None
-    edge_y0: np.ndarray = None
-    edge_len: np.ndarray = None
-    edge_u32: np.ndarray = None
-    arr_cs: np.ndarray = None
-    arr_valid: np.ndarray = None
-    arr_back: np.ndarray = None
-    arr_cand: np.ndarray = None
-    arr_dir: np.ndarray = None
-    arr_start: np.ndarray = None
-    arr_len: np.ndarray = None
+    edge_ux: np.ndarray
+    edge_uy: np.ndarray
+    edge_x0: np.ndarray
+    edge_y0: np.ndarray
+    edge_len: np.ndarray
+    edge_u32: np.ndarray
+    arr_cs: np.ndarray
+    arr_valid: np.ndarray
+    arr_back: np.ndarray
+    arr_cand: np.ndarray
+    arr_dir: np.ndarray
+    arr_start: np.ndarray
+    arr_len: np.ndarray
     _prior_cache: dict = field(default_factory=dict, repr=False)
 
     def arrival_prior(self, reverse_prior):
@@ -124,25 +109,19 @@ def graph_tables(graph):
     out_cos = np.where(valid, graph.unit[c, 0] * out_dir, 0.0)
     out_sin = np.where(valid, graph.unit[c, 1] * out_dir, 0.0)
     start = np.where(leaves_forward, 0.0, graph.length_m[c])
-    pad_prior = np.where(valid, 0.0, -np.inf)
-    edge_tab = np.zeros((graph.n_edges, 5))
-    edge_tab[:, 0:2] = graph.unit
-    edge_tab[:, 2] = graph.length_m
-    edge_tab[:, 3:5] = graph.nodes_xy[graph.edges[:, 0]]
-    end_node = np.ascontiguousarray(graph.edges[:, ::-1], dtype=np.int64)
+    end_node = graph.edges[:, ::-1]  # node reached travelling forward / backward
     dead_end = deg == 1
-    out_cs_t = np.ascontiguousarray(np.stack([out_cos.T, out_sin.T]))
+    out_cs_t = np.stack([out_cos.T, out_sin.T])  # (2, D, K)
     arrive = end_node.reshape(-1)  # node reached by arrival 2 e + (d < 0)
     came = np.repeat(np.arange(graph.n_edges), 2)
     arr_back = (cand[arrive] == came[:, None]) & ~dead_end[arrive][:, None]
     slot_len = np.where(valid, graph.length_m[c], 0.0)
+    x0 = graph.nodes_xy[graph.edges[:, 0]]
     return GraphTables(
-        cand=cand, out_dir=out_dir, out_cos=out_cos, out_sin=out_sin, start_offset_m=start, pad_prior=pad_prior,
-        dead_end=dead_end, out_cs_t=out_cs_t, cand_t=np.ascontiguousarray(cand.T),
-        pad_prior_t=np.ascontiguousarray(pad_prior.T), edge_tab=edge_tab, end_node=end_node,
+        cand=cand, out_dir=out_dir, out_cos=out_cos, out_sin=out_sin, start_offset_m=start,
         edge_ux=np.ascontiguousarray(graph.unit[:, 0], dtype=float),
         edge_uy=np.ascontiguousarray(graph.unit[:, 1], dtype=float),
-        edge_x0=np.ascontiguousarray(edge_tab[:, 3]), edge_y0=np.ascontiguousarray(edge_tab[:, 4]),
+        edge_x0=np.ascontiguousarray(x0[:, 0], dtype=float), edge_y0=np.ascontiguousarray(x0[:, 1], dtype=float),
         edge_len=np.ascontiguousarray(graph.length_m, dtype=float),
         edge_u32=np.ascontiguousarray(graph.unit.T, dtype=np.float32),
         arr_cs=np.ascontiguousarray(out_cs_t[:, :, arrive], dtype=np.float32),
