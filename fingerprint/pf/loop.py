@@ -262,9 +262,10 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
             if s.field_floor_nats is not None:
                 llf = np.maximum(llf.astype(np.float64), float(np.max(llf)) - s.field_floor_nats)
             if ctx.background is not None:
-                # collapse detection keeps watching the map hypothesis alone
-                # (the mixture would cushion a lost cloud by the floor-wide term)
-                ll_map = np.add(ll, llf, dtype=np.float64)
+                if s.recovery:
+                    # collapse detection keeps watching the map hypothesis alone
+                    # (the mixture would cushion a lost cloud by the floor-wide term)
+                    ll_map = np.add(ll, llf, dtype=np.float64)
                 llf, tracker = _mix_with_background(llf, obs, psi, state, ctx, tracker)
             ll = np.add(ll, llf, dtype=np.float64)  # float32 terms, summed exactly
             arrays["bias_ut"], arrays["bias_var_ut2"] = bias, bias_var
