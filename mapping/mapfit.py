@@ -45,6 +45,15 @@ the overlaps (mixture mean and variance). Inside a tile the field stays
 exactly curl-free; in an overlap it is a weighted sum of two curl-free
 fields, curl-free only up to the blend's gradient.
 
+Refinement (``refine=True``, with ``tiles="auto"``): when the fitted length
+scale ends on the lower bound that the basis can resolve (about
+``3 / omega_max``), the data ask for finer detail than the basis holds; the
+fit is then done once more on tiles of ``fine_tile_basis`` functions,
+starting from the coarse optimum (``optim_info_["refined_from"]`` records
+the coarse fit). Near steel the field changes by tens of µT within a metre,
+which one 1024-function box over a 60 m floor cannot follow. The tiles'
+factorisations run on ``n_jobs`` threads (default: one per core).
+
 Estimator contract (scikit-learn style): ``__init__`` only stores
 parameters; ``fit(xy (N, 2), b (N, 3), *, groups=None, rotations=None)``
 validates, sets attributes ending in ``_`` and returns ``self``;
@@ -62,6 +71,9 @@ walks (group k-fold) so that about 68 % of held-out residuals fall within
 """
 
 from __future__ import annotations
+
+import os
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import scipy.optimize
@@ -158,6 +170,9 @@ class _ReducedRankGP(_Fitted):
         "tile_m",
         "tile_overlap_m",
         "tile_basis",
+        "refine",
+        "fine_tile_basis",
+        "n_jobs",
     )
 
     #: optimised hyperparameters, in the order of the log-parameter vector
@@ -184,6 +199,9 @@ class _ReducedRankGP(_Fitted):
         tile_m=16.0,
         tile_overlap_m=3.0,
         tile_basis=256,
+        refine=True,
+        fine_tile_basis=1024,
+        n_jobs=None,
     ):
         self.n_basis = n_basis
         self.margin_m = margin_m
@@ -203,6 +221,9 @@ class _ReducedRankGP(_Fitted):
         self.tile_m = tile_m
         self.tile_overlap_m = tile_overlap_m
         self.tile_basis = tile_basis
+        self.refine = refine
+        self.fine_tile_basis = fine_tile_basis
+        self.n_jobs = n_jobs
 
     # -- to be provided by subclasses ----------------------------------------
     def _layout(self, m):
@@ -270,33 +291,31 @@ class _ReducedRankGP(_Fitted):
             fold_of_walk = np.empty(n_walks, dtype=np.int64)
             fold_of_walk[rng.permutation(n_walks)] = np.arange(n_walks) % k
             fold = fold_of_walk[codes]
-        parts = []
-        if boxes is None:
-            self._setup_part(basis, xy, b, codes, rotations, n_walks, np.ones(n, dtype=bool), None, fold)
-            parts.append(self)
-        else:
-            for elo, ehi in boxes:
-                sel = np.all((xy >= elo) & (xy <= ehi), axis=1)
-                if sel.sum() < 20:
-                    continue
-                sub = type(self)(**{k: getattr(self, k) for k in self._param_names})
-                sub.tiles = "never"
-                tb = BoxBasis.covering(elo, ehi, margin_m=float(self.margin_m), n_basis=int(self.tile_basis))
-                sub._setup_part(tb, xy, b, codes, rotations, n_walks, sel, (elo, ehi), fold)
-                parts.append(sub)
-            if not parts:
-                raise DataError("no map tile holds enough survey samples (need 20 in at least one)")
+        parts = self._make_parts(basis, boxes, int(self.tile_basis), xy, b, codes, rotations, n_walks, fold)
         self.parts_ = parts
         hyper = self._initial_hyper(b, parts, use_offsets=use_offsets)
         with threadpool_limits(limits=1, user_api="blas"):
             if self.optimize:
                 hyper, info = self._optimise(parts, hyper)
+                fine = self._refined_boxes(lo, hi, parts, hyper, info)
+                if fine is not None:
+                    # the data ask for finer detail than the basis resolves:
+                    # again with finer tiles, from the coarse optimum
+                    coarse = {"tiles": len(parts), "length_scale_m": hyper["length_scale_m"],
+                              "length_scale_bounds_m": info["length_scale_bounds_m"]}
+                    parts = self._make_parts(basis, fine, int(self.fine_tile_basis), xy, b, codes, rotations,
+                                             n_walks, fold)
+                    self.parts_ = parts
+                    hyper, info = self._optimise(parts, hyper)
+                    info["refined_from"] = coarse
             else:
                 info = {"optimised": False}
             log_ml = 0.0
-            for p in parts:
-                post = _linmodel.posterior(p.stats_, p._prior_var(hyper), self._noise(hyper), hyper["offset_ut"] ** 2,
-                                           cov=False)
+            noise = self._noise(hyper)
+            posts = self._map_parts(
+                lambda p: _linmodel.posterior(p.stats_, p._prior_var(hyper), noise, hyper["offset_ut"] ** 2, cov=False),
+                parts)
+            for p, post in zip(parts, posts):
                 p.mean_f_, p.hyper_ = post.mean_f, hyper
                 p._set_cov_factor(post.factor)
                 p.walk_offsets_ut_ = post.mean_o
@@ -318,6 +337,53 @@ class _ReducedRankGP(_Fitted):
             p.n_samples_ = int(p.sel_.sum())
         self.n_samples_ = n
         return self
+
+    def _make_parts(self, basis, boxes, tile_basis, xy, b, codes, rotations, n_walks, fold):
+        """The model's parts: ``[self]`` on one box (``boxes`` None), else
+        one sub-model per tile box holding at least 20 samples."""
+        if boxes is None:
+            self._setup_part(basis, xy, b, codes, rotations, n_walks, np.ones(xy.shape[0], dtype=bool), None, fold)
+            return [self]
+        parts = []
+        for elo, ehi in boxes:
+            sel = np.all((xy >= elo) & (xy <= ehi), axis=1)
+            if sel.sum() < 20:
+                continue
+            sub = type(self)(**{k: getattr(self, k) for k in self._param_names})
+            sub.tiles = "never"
+            sub.tile_basis = tile_basis
+            tb = BoxBasis.covering(elo, ehi, margin_m=float(self.margin_m), n_basis=tile_basis)
+            sub._setup_part(tb, xy, b, codes, rotations, n_walks, sel, (elo, ehi), fold)
+            parts.append(sub)
+        if not parts:
+            raise DataError("no map tile holds enough survey samples (need 20 in at least one)")
+        return parts
+
+    def _map_parts(self, fn, parts):
+        """``[fn(p) for p in parts]``, the parts on ``n_jobs`` threads (the
+        factorisations release the GIL; default: one per core)."""
+        n = int(self.n_jobs) if self.n_jobs is not None else (os.cpu_count() or 1)
+        n = max(1, min(n, len(parts)))
+        if n == 1:
+            return [fn(p) for p in parts]
+        with ThreadPoolExecutor(max_workers=n) as ex:
+            return list(ex.map(fn, parts))
+
+    def _refined_boxes(self, lo, hi, parts, hyper, info):
+        """Tile boxes of ``fine_tile_basis`` functions when ``refine`` (with
+        ``tiles="auto"``) and the fitted length scale sits on the lower bound
+        that the current basis resolves while the finer tiles resolve at
+        least 1.2 times shorter ones; else None."""
+        if not (self.refine and self.tiles == "auto" and info.get("optimised")):
+            return None
+        lo_l = info["length_scale_bounds_m"][0]
+        if "length_scale_m" not in info.get("at_bound", ()) or hyper["length_scale_m"] > 1.01 * lo_l:
+            return None
+        boxes = self._grid_boxes(lo, hi)
+        tb = BoxBasis.covering(*boxes[0], margin_m=float(self.margin_m), n_basis=int(self.fine_tile_basis))
+        if self._length_bounds(tb)[0] * 1.2 > lo_l:
+            return None
+        return boxes
 
     # Posterior covariance of the weights: formed from the Cholesky factor
     # on first use (a fit followed only by mean predictions never needs it).
@@ -381,18 +447,23 @@ class _ReducedRankGP(_Fitted):
         scales the tiles can."""
         if self.tiles == "never":
             return None
+        boxes = self._grid_boxes(lo, hi)
+        if self.tiles == "auto":
+            if len(boxes) <= 1:
+                return None
+            tb = BoxBasis.covering(*boxes[0], margin_m=float(self.margin_m), n_basis=int(self.tile_basis))
+            if self._length_bounds(basis)[0] <= 1.2 * self._length_bounds(tb)[0]:
+                return None
+        return boxes
+
+    def _grid_boxes(self, lo, hi):
+        """Overlapping tile boxes of about ``tile_m`` metres (plus
+        ``tile_overlap_m`` each side) covering ``[lo, hi]``."""
         core = float(self.tile_m)
         ov = float(self.tile_overlap_m)
         if not (core > 0 and ov >= 0):
             raise ConfigError(f"tile_m must be > 0 and tile_overlap_m >= 0, got {core}, {ov}")
         nt = np.maximum(np.ceil((hi - lo) / core).astype(int), 1)
-        if self.tiles == "auto":
-            if nt.prod() <= 1:
-                return None
-            size = (hi - lo) / nt + 2 * ov
-            tb = BoxBasis.covering(lo, lo + size, margin_m=float(self.margin_m), n_basis=int(self.tile_basis))
-            if self._length_bounds(basis)[0] <= 1.2 * self._length_bounds(tb)[0]:
-                return None
         step = (hi - lo) / nt
         boxes = []
         for i in range(nt[0]):
@@ -494,10 +565,10 @@ class _ReducedRankGP(_Fitted):
             h = unpack(theta)
             total = 0.0
             grad = np.zeros(len(free))
-            for p in parts:
-                val, d_prior, d_noise, d_off = _linmodel.log_marginal_and_grad(
-                    p.stats_, p._prior_var(h), self._noise(h), h["offset_ut"] ** 2
-                )
+            noise = self._noise(h)
+            vals = self._map_parts(
+                lambda p: _linmodel.log_marginal_and_grad(p.stats_, p._prior_var(h), noise, h["offset_ut"] ** 2), parts)
+            for p, (val, d_prior, d_noise, d_off) in zip(parts, vals):
                 if not np.isfinite(val):
                     return 1e300, np.zeros_like(theta)
                 total += val
@@ -547,14 +618,13 @@ class _ReducedRankGP(_Fitted):
         k = int(fold.max()) + 1
         noise = self._noise(hyper)
         res, var = [], []
+        def heldout_posterior(p, f):
+            post = _linmodel.posterior(p.stats_ - p.fold_stats_[f], p._prior_var(hyper), noise, hyper["offset_ut"] ** 2)
+            return post.mean_f, post.cov_f
+
         for f in range(k):
             sel = fold == f
-            posts = []
-            for p in parts:
-                post = _linmodel.posterior(
-                    p.stats_ - p.fold_stats_[f], p._prior_var(hyper), noise, hyper["offset_ut"] ** 2
-                )
-                posts.append((post.mean_f, post.cov_f))
+            posts = self._map_parts(lambda p: heldout_posterior(p, f), parts)
             mean, latent = self._blend_points(xy[sel], posts)
             res.append(b[sel] - mean)
             var.append(latent)
@@ -745,7 +815,7 @@ class _ReducedRankGP(_Fitted):
             "log_marginal_likelihood": float(self.log_marginal_likelihood_),
             "basis": self.parts_[0].basis_.to_dict() if len(self.parts_) == 1 else {
                 "tiles": len(self.parts_), "tile_m": float(self.tile_m), "tile_overlap_m": float(self.tile_overlap_m),
-                "n_basis_per_tile": int(self.tile_basis)},
+                "n_basis_per_tile": int(self.parts_[0].tile_basis)},
             "optimisation": self.optim_info_,
             "calibration": self.calibration_,
             "n_samples": int(self.n_samples_),

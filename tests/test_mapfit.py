@@ -361,3 +361,57 @@ def test_tiled_map_agrees_with_one_box():
     mp, vp = tiled.predict(np.column_stack([gx.ravel(), gy.ravel()]))
     np.testing.assert_allclose(mg.reshape(-1, 3), mp, atol=1e-8)
     np.testing.assert_allclose(vg.reshape(-1, 3), vp, atol=1e-8)
+
+
+def _steel_field(rng, box, n=30, depth=0.9):
+    """A field with sharp local anomalies: a uniform background plus
+    vertical dipoles ``depth`` metres below the survey plane, summed by
+    magpylib (https://magpylib.readthedocs.io, SI units: A·m², T)."""
+    magpy = pytest.importorskip("magpylib")
+    pos = np.column_stack([rng.uniform([0, 0], box, size=(n, 2)), np.full(n, -depth)])
+    mom = rng.normal(size=(n, 3)) * 60.0
+    sources = [magpy.misc.Dipole(moment=m, position=p) for p, m in zip(pos, mom)]
+    background = np.array([18.0, -6.0, -41.0])
+
+    def field(xy):
+        pts = np.column_stack([xy, np.zeros(xy.shape[0])])
+        return background + 1e6 * magpy.getB(sources, pts, sumup=True)
+
+    return field
+
+
+def test_refinement_resolves_what_the_coarse_basis_cannot():
+    """When the fitted length scale sits on the lower bound one coarse box
+    resolves, the fit is redone on finer tiles: the length scale then drops
+    below that bound and the map is closer to the true field (magpylib
+    dipoles 0.9 m below the plane, anomalies about 1 m wide). One step
+    only: here the fine tiles' own bound is reached too."""
+    rng = np.random.default_rng(21)
+    box = (24.0, 16.0)
+    field = _steel_field(rng, box)
+    xy = rng.uniform([0, 0], box, size=(4000, 2))
+    b = field(xy) + rng.normal(size=(4000, 3)) * 0.3
+    q = rng.uniform([1, 1], [23, 15], size=(800, 2))
+    kw = dict(n_basis=144, tile_m=8.0, tile_overlap_m=2.0, fine_tile_basis=400, domain=((0, 0), box),
+              between_walk=False)
+    coarse = CurlFreeGP(refine=False, **kw).fit(xy, b)
+    fine = CurlFreeGP(**kw).fit(xy, b)
+    lo_coarse = coarse.optim_info_["length_scale_bounds_m"][0]
+    assert "length_scale_m" in coarse.optim_info_["at_bound"]  # the premise: coarse basis too coarse
+    assert fine.optim_info_["refined_from"]["tiles"] == len(coarse.parts_)
+    assert len(fine.parts_) == 6 and fine.parts_[0].basis_.n >= 400
+    assert fine.hyper_["length_scale_m"] < 0.9 * lo_coarse
+    rmse = [np.sqrt(np.mean((m.predict(q, return_var=False) - field(q)) ** 2)) for m in (coarse, fine)]
+    assert rmse[1] < 0.8 * rmse[0], rmse  # measured 0.63-0.68 on seeds 21-23
+    assert fine.summary()["basis"]["n_basis_per_tile"] == 400
+
+
+def test_no_refinement_when_the_basis_resolves_the_field(survey):
+    """A smooth field whose length scale the box resolves keeps one box;
+    n_jobs does not change the result."""
+    xy, b = survey[:2]
+    one = CurlFreeGP(n_basis=400, between_walk=False, n_jobs=1).fit(xy, b)
+    two = CurlFreeGP(n_basis=400, between_walk=False, n_jobs=2).fit(xy, b)
+    assert len(one.parts_) == 1 and "refined_from" not in one.optim_info_
+    assert one.hyper_["length_scale_m"] > 1.1 * one.optim_info_["length_scale_bounds_m"][0]
+    np.testing.assert_allclose(one.predict(xy[:50], return_var=False), two.predict(xy[:50], return_var=False))
