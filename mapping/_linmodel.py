@@ -51,7 +51,8 @@ class SufficientStats:
     n_field : int, number of field parameters ``m_f``
     n_walks : int, ``W``
     noise_group : (3,) int, noise group of each component (0 .. G-1)
-    gff : (G, m_f, m_f) float, ``sum F^T F`` per noise group
+    gff : (G, m_f, m_f) float, ``sum F^T F`` per noise group; None when
+        ``gff_blocks`` holds it (see :meth:`dense_gff`)
     bf : (G, m_f) float, ``sum F^T y``
     gfo : (G, m_f, W, 3) float, cross terms with the walk offsets
     goo : (G, W, 3, 3) float
@@ -74,16 +75,21 @@ class SufficientStats:
     #: index sets of the components' designs (F^T F is zero outside their
     #: squares); None: unknown
     support: list = None
+    #: ``F^T F`` block by block of ``blocks``, (G, k, k) each, when every
+    #: component's design lies inside one block (then ``gff`` is None: the
+    #: dense (G, m_f, m_f) would be mostly zeros, and on a large map tile
+    #: hundreds of MB)
+    gff_blocks: list = None
 
     @classmethod
-    def zeros(cls, n_field, n_walks, noise_group):
+    def zeros(cls, n_field, n_walks, noise_group, *, dense_gff=True):
         noise_group = np.asarray(noise_group, dtype=np.int64)
         g = int(noise_group.max()) + 1
         return cls(
             n_field,
             n_walks,
             noise_group,
-            np.zeros((g, n_field, n_field)),
+            np.zeros((g, n_field, n_field)) if dense_gff else None,
             np.zeros((g, n_field)),
             np.zeros((g, n_field, n_walks, 3)),
             np.zeros((g, n_walks, 3, 3)),
@@ -92,32 +98,38 @@ class SufficientStats:
             np.zeros(3, dtype=np.int64),
         )
 
-    def __add__(self, other):
+    def _combine(self, other, op):
+        if (self.gff_blocks is None) != (other.gff_blocks is None):
+            a, b = self.dense_gff(), other.dense_gff()
+            gff, gffb = op(a, b), None
+        elif self.gff_blocks is not None:
+            gff, gffb = None, [op(a, b) for a, b in zip(self.gff_blocks, other.gff_blocks)]
+        else:
+            gff, gffb = op(self.gff, other.gff), None
         return SufficientStats(
-            self.n_field, self.n_walks, self.noise_group, self.gff + other.gff, self.bf + other.bf,
-            self.gfo + other.gfo, self.goo + other.goo, self.bo + other.bo, self.yy + other.yy, self.n + other.n,
-            self.blocks, self.support,
+            self.n_field, self.n_walks, self.noise_group, gff, op(self.bf, other.bf), op(self.gfo, other.gfo),
+            op(self.goo, other.goo), op(self.bo, other.bo), op(self.yy, other.yy), op(self.n, other.n),
+            self.blocks, self.support, gffb,
         )
 
+    def __add__(self, other):
+        return self._combine(other, np.add)
+
     def __sub__(self, other):
-        return SufficientStats(
-            self.n_field,
-            self.n_walks,
-            self.noise_group,
-            self.gff - other.gff,
-            self.bf - other.bf,
-            self.gfo - other.gfo,
-            self.goo - other.goo,
-            self.bo - other.bo,
-            self.yy - other.yy,
-            self.n - other.n,
-            self.blocks,
-            self.support,
-        )
+        return self._combine(other, np.subtract)
+
+    def dense_gff(self):
+        """``gff`` as one (G, m_f, m_f) array (built from ``gff_blocks``)."""
+        if self.gff_blocks is None:
+            return self.gff
+        out = np.zeros((self.n_groups, self.n_field, self.n_field))
+        for b, g in zip(self.blocks, self.gff_blocks):
+            out[:, b[:, None], b[None, :]] = g
+        return out
 
     @property
     def n_groups(self) -> int:
-        return int(self.gff.shape[0])
+        return int(self.bf.shape[0])
 
 
 def accumulate(design, idx, xy, b, *, groups=None, rotations=None, n_walks=0, noise_group=(0, 0, 1), chunk=2048,
@@ -222,9 +234,12 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
         raise ValueError(f"each component needs {m} basis and one constant parameter")
     n_field = int(max(int(ix.max()) for ix in idx) + 1)
     w = int(n_walks) if groups is not None else 0
-    st = SufficientStats.zeros(n_field, w, noise_group)
-    st.blocks = blocks
+    home = _home_blocks(idx, blocks, n_field)
+    st = SufficientStats.zeros(n_field, w, noise_group, dense_gff=home is None)
+    st.blocks = None if blocks is None else [np.sort(np.asarray(bl, dtype=np.int64)) for bl in blocks]
     st.support = idx
+    if home is not None:
+        st.gff_blocks = [np.zeros((st.n_groups, bl.size, bl.size)) for bl in st.blocks]
     n = xy.shape[0]
     jx, jy = basis.n_modes
     cos_tab = np.zeros((2 * jx + 1, 2 * jy + 1))
@@ -262,16 +277,48 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
                 st.gfo[g][ic, present, :] += (onehot.T @ r)
                 st.goo[g][present] += (onehot.T @ (r[:, :, None] * r[:, None, :]).reshape(k_n, 9)).reshape(-1, 3, 3)
                 st.bo[g][present] += onehot.T @ (r * y[:, None])
+    grams = {}
     for c, (kind, sign) in enumerate(kinds):
         g = int(st.noise_group[c])
-        ixb, ic = idx[c][:m], idx[c][m]
+        if home is None:
+            target, loc = st.gff[g], idx[c]
+        else:
+            target = st.gff_blocks[home[c]][g]
+            loc = np.searchsorted(st.blocks[home[c]], idx[c])
+        ixb, ic = loc[:m], loc[m]
         cnt = float(st.n[c])
-        st.gff[g][np.ix_(ixb, ixb)] += basis.gram(cos_tab, kind, sign)
+        if (kind, sign) not in grams:  # components of one kind share it
+            grams[kind, sign] = basis.gram(cos_tab, kind, sign)
+        if ixb[-1] - ixb[0] + 1 == m and np.all(np.diff(ixb) == 1):
+            target[ixb[0] : ixb[0] + m, ixb[0] : ixb[0] + m] += grams[kind, sign]
+        else:
+            target[np.ix_(ixb, ixb)] += grams[kind, sign]
         lin = basis.project(ones_tab[c][None], kind, sign)[0]
-        st.gff[g][ixb, ic] += lin
-        st.gff[g][ic, ixb] += lin
-        st.gff[g][ic, ic] += cnt
+        target[ixb, ic] += lin
+        target[ic, ixb] += lin
+        target[ic, ic] += cnt
     return st
+
+
+def _home_blocks(idx, blocks, n_field):
+    """The block of ``blocks`` holding each component's parameters
+    ``idx[c]``, or None when ``blocks`` is not a partition of the field
+    parameters or some component spans two blocks."""
+    if not blocks:
+        return None
+    bl = [np.asarray(b, dtype=np.int64) for b in blocks]
+    if sum(b.size for b in bl) != n_field or np.unique(np.concatenate(bl)).size != n_field:
+        return None
+    member = np.empty(n_field, dtype=np.int64)
+    for i, b in enumerate(bl):
+        member[b] = i
+    home = []
+    for ix in idx:
+        m = np.unique(member[ix])
+        if m.size != 1:
+            return None
+        home.append(int(m[0]))
+    return home
 
 
 @dataclass(eq=False)
@@ -336,6 +383,20 @@ class _Factor:
         return out
 
 
+def _gather_blocks(st, part):
+    """``F^T F`` on ``part`` (a union of ``st.blocks``) from the per-block
+    Grams: the block itself when ``part`` is one, else block-diagonal."""
+    for b, g in zip(st.blocks, st.gff_blocks):
+        if b.size == part.size and np.array_equal(b, part):
+            return g
+    out = np.zeros((st.n_groups, part.size, part.size))
+    for b, g in zip(st.blocks, st.gff_blocks):
+        if np.isin(b, part).all():
+            loc = np.searchsorted(part, b)
+            out[:, loc[:, None], loc[None, :]] = g
+    return out
+
+
 def _block(g, b):
     """``g[:, b][:, :, b]`` for (G, n, n) ``g``: a view when ``b`` is a run of
     consecutive indices (read-only use), else a copy."""
@@ -366,7 +427,7 @@ def _structure(st):
             spans = [set(np.unique(member[ix]).tolist()) for ix in st.support]
             coupled = {(i, j) for i, j in pairs if any(i in sp and j in sp for sp in spans)}
         else:
-            gabs = np.abs(st.gff).sum(axis=0)
+            gabs = np.abs(st.dense_gff()).sum(axis=0)
             coupled = {(i, j) for i, j in pairs if np.any(gabs[np.ix_(bl[i], bl[j])])}
         if st.n_walks:
             used = np.abs(st.gfo).sum(axis=0) > 0  # (n, W, 3): parameter touches offset axis
@@ -390,7 +451,10 @@ def _structure(st):
         for i in range(len(bl)):
             groups.setdefault(find(i), []).append(bl[i])
         parts = [np.sort(np.concatenate(g)) for g in groups.values()]
-    gffb = [_block(st.gff, b) for b in parts]
+    if st.gff_blocks is None:
+        gffb = [_block(st.gff, b) for b in parts]
+    else:
+        gffb = [_gather_blocks(st, b) for b in parts]
     st._structure_cache = (parts, gffb)
     return st._structure_cache
 

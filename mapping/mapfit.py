@@ -444,13 +444,16 @@ class _ReducedRankGP(_Fitted):
     def _tile_boxes(self, lo, hi, basis):
         """Extended tile boxes [(lo, hi), ...], or None for one box. "auto"
         tiles when one box with ``n_basis`` functions cannot resolve length
-        scales the tiles can."""
+        scales the tiles can (with a given ``length_scale_m``: when it cannot
+        resolve that one)."""
         if self.tiles == "never":
             return None
         boxes = self._grid_boxes(lo, hi)
         if self.tiles == "auto":
             if len(boxes) <= 1:
                 return None
+            if self.length_scale_m is not None and self._length_bounds(basis)[0] <= float(self.length_scale_m):
+                return None  # a given length scale the one box resolves
             tb = BoxBasis.covering(*boxes[0], margin_m=float(self.margin_m), n_basis=int(self.tile_basis))
             if self._length_bounds(basis)[0] <= 1.2 * self._length_bounds(tb)[0]:
                 return None
@@ -851,16 +854,17 @@ class CurlFreeGP(_ReducedRankGP):
     #: basis-function kind and sign of each component's design (b = -grad phi)
     _kinds = (("dx", -1.0), ("dy", -1.0), ("phi", 1.0))
 
+    # Parameter order: potential weights, the two horizontal constants, the
+    # b_up weights, its constant; so each block of the normal equations is
+    # one run of consecutive indices (a view, not a gather).
     def _layout(self, m):
         pot = np.arange(m)
-        up = np.arange(m, 2 * m)
-        c = 2 * m
-        return 2 * m + 3, [np.append(pot, c), np.append(pot, c + 1), np.append(up, c + 2)]
+        return 2 * m + 3, [np.append(pot, m), np.append(pot, m + 1), np.arange(m + 2, 2 * m + 3)]
 
     def _blocks(self, m):
         # horizontal (potential + two constants) and vertical (b_up basis +
         # constant): independent unless a walk offset or tilt couples them
-        return [np.concatenate([np.arange(m), [2 * m, 2 * m + 1]]), np.append(np.arange(m, 2 * m), 2 * m + 2)]
+        return [np.arange(m + 2), np.arange(m + 2, 2 * m + 3)]
 
     def _design(self, basis, xy):
         # B = -grad(phi): the potential weights enter with a minus sign.
@@ -874,19 +878,18 @@ class CurlFreeGP(_ReducedRankGP):
         pot = se_spectral_density_2d(w, s2 * ell**2, ell)  # potential variance s^2 l^2
         up = se_spectral_density_2d(w, s2, ell)
         c2 = h["constant_ut"] ** 2
-        return np.concatenate([pot, up, [c2, c2, c2]])
+        return np.concatenate([pot, [c2, c2], up, [c2]])
 
     def _dlog_prior(self, h):
         """d log(prior_var) / d log(hyperparameter), (m_f,) each."""
         w2l2 = (self.basis_.omega * h["length_scale_m"]) ** 2
         m = self.basis_.n
-        z = np.zeros(3)
+        two, zero = np.full(m, 2.0), np.zeros(m)
         return {
-            "magnitude_ut": np.concatenate([np.full(2 * m, 2.0), z]),
-            "length_scale_m": np.concatenate([4.0 - w2l2, 2.0 - w2l2, z]),
-            "constant_ut": np.concatenate([np.zeros(2 * m), np.full(3, 2.0)]),
+            "magnitude_ut": np.concatenate([two, [0.0, 0.0], two, [0.0]]),
+            "length_scale_m": np.concatenate([4.0 - w2l2, [0.0, 0.0], 2.0 - w2l2, [0.0]]),
+            "constant_ut": np.concatenate([zero, [2.0, 2.0], zero, [2.0]]),
         }
-
 
 
 class PerComponentGP(_ReducedRankGP):
@@ -898,14 +901,15 @@ class PerComponentGP(_ReducedRankGP):
 
     _kinds = (("phi", 1.0),) * 3
 
+    # Parameter order: per component its m weights then its constant (each
+    # block one run of consecutive indices).
     def _layout(self, m):
-        c = 3 * m
-        return 3 * m + 3, [np.append(np.arange(k * m, (k + 1) * m), c + k) for k in range(3)]
+        return 3 * m + 3, [np.arange(k * (m + 1), (k + 1) * (m + 1)) for k in range(3)]
 
     def _blocks(self, m):
         # one per component; b_x and b_y are merged when heading-frame walk
         # offsets couple them (_linmodel._structure)
-        return [np.append(np.arange(k * m, (k + 1) * m), 3 * m + k) for k in range(3)]
+        return self._layout(m)[1]
 
     def _design(self, basis, xy):
         f = basis.evaluate(xy, ones=1)[0]
@@ -914,20 +918,18 @@ class PerComponentGP(_ReducedRankGP):
     def _prior_var(self, h):
         s = se_spectral_density_2d(self.basis_.omega, h["magnitude_ut"] ** 2, h["length_scale_m"])
         c2 = h["constant_ut"] ** 2
-        return np.concatenate([s, s, s, [c2, c2, c2]])
+        return np.tile(np.append(s, c2), 3)
 
     _kappa = 3.0
 
     def _dlog_prior(self, h):
         w2l2 = (self.basis_.omega * h["length_scale_m"]) ** 2
         m = self.basis_.n
-        z = np.zeros(3)
         return {
-            "magnitude_ut": np.concatenate([np.full(3 * m, 2.0), z]),
-            "length_scale_m": np.concatenate([np.tile(2.0 - w2l2, 3), z]),
-            "constant_ut": np.concatenate([np.zeros(3 * m), np.full(3, 2.0)]),
+            "magnitude_ut": np.tile(np.append(np.full(m, 2.0), 0.0), 3),
+            "length_scale_m": np.tile(np.append(2.0 - w2l2, 0.0), 3),
+            "constant_ut": np.tile(np.append(np.zeros(m), 2.0), 3),
         }
-
 
 
 class NearestMap(_Fitted):

@@ -94,3 +94,34 @@ def test_separable_statistics_equal_design_statistics(cls, walks):
         r, s = getattr(ref, name), getattr(sep, name)
         np.testing.assert_allclose(s, r, rtol=0, atol=1e-10 * max(np.abs(r).max(initial=0.0), 1.0), err_msg=name)
     np.testing.assert_array_equal(sep.n, ref.n)
+
+
+@pytest.mark.parametrize("cls", [CurlFreeGP, PerComponentGP])
+def test_block_statistics_equal_dense_statistics(cls):
+    """With the model's blocks given, F^T F is kept block by block; it is
+    the dense matrix of the design statistics (``accumulate``, BLAS) and
+    sums of folds are sums of the blocks."""
+    rng = np.random.default_rng(6)
+    n = 2000
+    xy = rng.uniform([0, 0], [30, 20], size=(n, 2))
+    b = rng.normal(size=(n, 3)) * 5 + [10, -20, 40]
+    model = cls(n_basis=100, optimize=False, between_walk=False, tiles="never").fit(xy, b)
+    groups = np.sort(rng.integers(0, 4, n))
+    kw = dict(groups=groups, rotations=None, n_walks=4)
+    ref = _linmodel.accumulate(lambda q: model._design(model.basis_, q), model.idx_, xy, b, **kw)
+    blocks = model._blocks(model.basis_.n)
+    half = np.arange(n) < n // 2
+    parts = [_linmodel.accumulate_separable(model.basis_, model._kinds, model.idx_, xy[s], b[s], chunk=700,
+                                            blocks=blocks, groups=groups[s], n_walks=4) for s in (half, ~half)]
+    total = parts[0] + parts[1]
+    assert total.gff is None and len(total.gff_blocks) == len(blocks)
+    r = ref.gff
+    np.testing.assert_allclose(total.dense_gff(), r, rtol=0, atol=1e-10 * np.abs(r).max())
+    for name in ("bf", "gfo", "goo", "bo", "yy"):
+        np.testing.assert_allclose(getattr(total, name), getattr(ref, name), rtol=0,
+                                   atol=1e-10 * max(np.abs(getattr(ref, name)).max(), 1.0), err_msg=name)
+    # the likelihood does not depend on how F^T F is stored
+    ref.blocks, ref.support = total.blocks, total.support
+    pv = np.full(model.n_field_, 2.0)
+    np.testing.assert_allclose(_linmodel.log_marginal(total, pv, [0.5, 0.4], 1.0),
+                               _linmodel.log_marginal(ref, pv, [0.5, 0.4], 1.0), rtol=1e-10)
