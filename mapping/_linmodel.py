@@ -103,7 +103,13 @@ class SufficientStats:
             a, b = self.dense_gff(), other.dense_gff()
             gff, gffb = op(a, b), None
         elif self.gff_blocks is not None:
-            gff, gffb = None, [op(a, b) for a, b in zip(self.gff_blocks, other.gff_blocks)]
+            gffb = []
+            for a, b, groups in zip(self.gff_blocks, other.gff_blocks, _groups_on(self, self.blocks)):
+                out = np.zeros_like(a)  # untouched groups stay unmapped zero pages
+                for g in groups:
+                    out[g] = op(a[g], b[g])
+                gffb.append(out)
+            gff = None
         else:
             gff, gffb = op(self.gff, other.gff), None
         return SufficientStats(
@@ -383,6 +389,19 @@ class _Factor:
         return out
 
 
+def _groups_on(st, parts):
+    """The noise groups whose ``F^T F`` can be non-zero on each index set
+    of ``parts``: those of the components whose design (``st.support``)
+    touches it; all groups when the support is unknown."""
+    if st.support is None:
+        return [list(range(st.n_groups)) for _ in parts]
+    out = []
+    for part in parts:
+        gs = {int(st.noise_group[c]) for c, ix in enumerate(st.support) if np.isin(ix, part).any()}
+        out.append(sorted(gs))
+    return out
+
+
 def _gather_blocks(st, part):
     """``F^T F`` on ``part`` (a union of ``st.blocks``) from the per-block
     Grams: the block itself when ``part`` is one, else block-diagonal."""
@@ -411,7 +430,8 @@ def _structure(st):
     sample (``F^T F``) or a walk offset (``F^T R``, through the offset's
     3 x 3 block) couples two of them. A property of the zero pattern only,
     so it is found once per statistics; the blocks of ``F^T F`` are cached
-    with it. Returns (parts, gff blocks (G, k, k) per part)."""
+    with it. Returns (parts, per part ``{noise group: F^T F block (k, k)}``
+    for the groups whose samples touch it)."""
     cache = st.__dict__.get("_structure_cache")
     if cache is not None:
         return cache
@@ -452,9 +472,11 @@ def _structure(st):
             groups.setdefault(find(i), []).append(bl[i])
         parts = [np.sort(np.concatenate(g)) for g in groups.values()]
     if st.gff_blocks is None:
-        gffb = [_block(st.gff, b) for b in parts]
+        full = [_block(st.gff, b) for b in parts]
     else:
-        gffb = [_gather_blocks(st, b) for b in parts]
+        full = [_gather_blocks(st, b) for b in parts]
+    # per part only the noise groups that touch it: {group: (k, k)}
+    gffb = [{g: f[g] for g in groups} for f, groups in zip(full, _groups_on(st, parts))]
     st._structure_cache = (parts, gffb)
     return st._structure_cache
 
@@ -478,8 +500,10 @@ def _assemble(st, prior_var_f, noise_var, offset_var):
     parts = None
     blocks, gffb = _structure(st)
     sb = []
-    for b, g in zip(blocks, gffb):
-        sub = np.tensordot(inv_nv, g, axes=1)
+    for b, gb in zip(blocks, gffb):
+        sub = np.zeros((b.size, b.size))
+        for g, a in gb.items():
+            sub += inv_nv[g] * a
         sub[np.diag_indices_from(sub)] += 1.0 / prior_var_f[b]
         sb.append(sub)
     if st.n_walks:
@@ -620,9 +644,9 @@ def log_marginal_and_grad(st, prior_var_f, noise_var, offset_var=1.0):
         rows = st.noise_group == g
         n_g = int(st.n[rows].sum())
         yy_g = float(st.yy[rows].sum())
-        quad = sum(float(mu_f[b] @ gb[g] @ mu_f[b]) for b, gb in zip(blocks, gffb))
+        quad = sum(float(mu_f[b] @ gb[g] @ mu_f[b]) for b, gb in zip(blocks, gffb) if g in gb)
         resid = yy_g - 2 * float(mu_f @ st.bf[g]) + quad
-        tr = sum(float(np.sum(si * gb[g])) for si, gb in zip(sinv, gffb))
+        tr = sum(float(np.vdot(si, gb[g])) for si, gb in zip(sinv, gffb) if g in gb)
         if w:
             gfo_g = st.gfo[g]  # (m_f, W, 3)
             resid += -2 * float(np.sum(mu_o * st.bo[g])) + 2 * float(mu_f @ np.einsum("mwj,wj->m", gfo_g, mu_o))
