@@ -97,7 +97,7 @@ class DatasetSettings:
     survey_calibration_s: float = 30.0
     survey_raw_magnetometer: bool = True
     survey_cover_edges: bool = True
-    survey_edge_length_m: float = 250.0
+    survey_edge_length_m: float = 130.0
     calibration_search_m: float = 15.0
 
     def __post_init__(self):
