@@ -59,6 +59,8 @@ def test_map_info_query_and_image(b1_map, tmp_path, capsys):
     assert main(["map-info", str(b1_map)]) == 0
     text = capsys.readouterr().out
     assert "floor:            B1" in text and "curl-free" in text
+    basis = load_map(b1_map).meta["model"]["basis"]
+    assert f"{basis['tiles']} tiles of" in text and "shortest length scale it resolves" in text
     fmap = load_map(b1_map)
     pts = tmp_path / "pts.csv"
     xy = np.array([[50.0, 60.0], [120.5, 80.25], [-500.0, 0.0]])

@@ -39,6 +39,21 @@ def run(args):
     print(f"kernel:           {meta.get('kernel')}")
     for k, v in (model.get("hyperparameters") or {}).items():
         print(f"  {k:<22s}{v:.4g}")
+    basis, opt = model.get("basis") or {}, model.get("optimisation") or {}
+    if "tiles" in basis:
+        line = f"{basis['tiles']} tiles of {basis['tile_m']:g} m, {basis['n_basis_per_tile']} basis functions each"
+    elif "n_basis" in basis:
+        line = f"one box of {basis['n_basis']} basis functions"
+    else:
+        line = ""
+    if line and opt.get("length_scale_bounds_m"):
+        line += f"; shortest length scale it resolves {opt['length_scale_bounds_m'][0]:.2f} m"
+    if line and opt.get("refined_from"):
+        rf = opt["refined_from"]
+        line += (f" (refined: the fit on {rf['tiles']} part(s) ended on its bound, "
+                 f"{rf['length_scale_bounds_m'][0]:.2f} m)")
+    if line:
+        print(f"  basis                 {line}")
     if model.get("between_walk_sd_ut"):
         print("  between-walk sd       " + ", ".join(f"{v:.3f}" for v in model["between_walk_sd_ut"]) + " µT (b_x, b_y, b_up)")
     if meta.get("noise_sd_ut"):
