@@ -303,6 +303,8 @@ class _ReducedRankGP(_Fitted):
                     # again with finer tiles, from the coarse optimum
                     coarse = {"tiles": len(parts), "length_scale_m": hyper["length_scale_m"],
                               "length_scale_bounds_m": info["length_scale_bounds_m"]}
+                    if parts[0] is self:  # the coarse box's statistics are no longer needed
+                        self.stats_ = self.fold_stats_ = None
                     parts = self._make_parts(basis, fine, int(self.fine_tile_basis), xy, b, codes, rotations,
                                              n_walks, fold)
                     self.parts_ = parts
@@ -621,6 +623,7 @@ class _ReducedRankGP(_Fitted):
         k = int(fold.max()) + 1
         noise = self._noise(hyper)
         res, var = [], []
+
         def heldout_posterior(p, f):
             post = _linmodel.posterior(p.stats_ - p.fold_stats_[f], p._prior_var(hyper), noise, hyper["offset_ut"] ** 2)
             return post.mean_f, post.cov_f
