@@ -306,10 +306,9 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
     return st
 
 
-def _home_blocks(idx, blocks, n_field):
-    """The block of ``blocks`` holding each component's parameters
-    ``idx[c]``, or None when ``blocks`` is not a partition of the field
-    parameters or some component spans two blocks."""
+def _membership(blocks, n_field):
+    """(n_field,) index of the block of ``blocks`` holding each field
+    parameter, or None when ``blocks`` is not a partition of them."""
     if not blocks:
         return None
     bl = [np.asarray(b, dtype=np.int64) for b in blocks]
@@ -318,6 +317,16 @@ def _home_blocks(idx, blocks, n_field):
     member = np.empty(n_field, dtype=np.int64)
     for i, b in enumerate(bl):
         member[b] = i
+    return member
+
+
+def _home_blocks(idx, blocks, n_field):
+    """The block of ``blocks`` holding each component's parameters
+    ``idx[c]``, or None when ``blocks`` is not a partition of the field
+    parameters or some component spans two blocks."""
+    member = _membership(blocks, n_field)
+    if member is None:
+        return None
     home = []
     for ix in idx:
         m = np.unique(member[ix])
@@ -438,12 +447,10 @@ def _structure(st):
     n = st.n_field
     parts = [np.arange(n)]
     bl = [np.asarray(b, dtype=np.int64) for b in (st.blocks or [])]
-    if len(bl) > 1 and sum(b.size for b in bl) == n and np.unique(np.concatenate(bl)).size == n:
+    member = _membership(bl, n) if len(bl) > 1 else None
+    if member is not None:
         pairs = [(i, j) for i in range(len(bl)) for j in range(i + 1, len(bl))]
         if st.support is not None:  # a component's design spanning two blocks couples them
-            member = np.empty(n, dtype=np.int64)
-            for i, b in enumerate(bl):
-                member[b] = i
             spans = [set(np.unique(member[ix]).tolist()) for ix in st.support]
             coupled = {(i, j) for i, j in pairs if any(i in sp and j in sp for sp in spans)}
         else:
