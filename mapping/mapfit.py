@@ -650,6 +650,23 @@ class _ReducedRankGP(_Fitted):
         }
 
     # -- prediction ------------------------------------------------------------
+    def _poly_terms(self, mean_f, cov_f=None):
+        """Per component the coefficients of its mean (``lin``, ``const``)
+        and, with ``cov_f``, of its variance (``quad``, ``cross``,
+        ``var_const``) as trigonometric polynomials in the position."""
+        basis = self.basis_
+        m = basis.n
+        terms = []
+        for c, (kind, sign) in enumerate(self._kinds):
+            ixb, ic = self.idx_[c][:m], self.idx_[c][m]
+            t = {"lin": basis.collapse_linear(mean_f[ixb], kind, sign), "const": mean_f[ic]}
+            if cov_f is not None:
+                t["quad"] = basis.collapse_quadratic(cov_f[np.ix_(ixb, ixb)], kind, sign)
+                t["cross"] = basis.collapse_linear(cov_f[ixb, ic], kind, sign)
+                t["var_const"] = cov_f[ic, ic]
+            terms.append(t)
+        return terms
+
     def _predict_with(self, mean_f, cov_f, xy, chunk=8192, return_var=True):
         """Latent mean and variance (None if not ``return_var``) at points
         from the weights ``mean_f`` and their covariance ``cov_f``. Both
@@ -657,18 +674,9 @@ class _ReducedRankGP(_Fitted):
         :mod:`mapping.gp_hilbert`): ``O(m^2)`` once to collapse the
         covariance, then ``O(J_x J_y)`` per point instead of ``O(m^2)``."""
         basis = self.basis_
-        m = basis.n
         out_m = np.empty((xy.shape[0], 3))
         out_v = np.empty((xy.shape[0], 3)) if return_var else None
-        terms = []
-        for c, (kind, sign) in enumerate(self._kinds):
-            ixb, ic = self.idx_[c][:m], self.idx_[c][m]
-            t = {"lin": basis.collapse_linear(mean_f[ixb], kind, sign), "const": mean_f[ic]}
-            if return_var:
-                t["quad"] = basis.collapse_quadratic(cov_f[np.ix_(ixb, ixb)], kind, sign)
-                t["cross"] = basis.collapse_linear(cov_f[ixb, ic], kind, sign)
-                t["var_const"] = cov_f[ic, ic]
-            terms.append(t)
+        terms = self._poly_terms(mean_f, cov_f if return_var else None)
         for s in range(0, xy.shape[0], chunk):
             q = basis.harmonics_at(xy[s : s + chunk])  # shared by the components
             for c, (kind, _) in enumerate(self._kinds):
@@ -792,19 +800,14 @@ class _ReducedRankGP(_Fitted):
         # mean and variance are trigonometric polynomials in x and y (see
         # _predict_with); on a raster each is two small matrix products
         basis = self.basis_
-        m = basis.n
         mean = np.empty((ys.size, xs.size, 3))
         var = np.empty((ys.size, xs.size, 3))
-        for c, (kind, sign) in enumerate(self._kinds):
-            ixb, ic = self.idx_[c][:m], self.idx_[c][m]
-            lin = basis.collapse_linear(self.mean_f_[ixb], kind, sign)
-            mean[..., c] = basis.eval_trig_grid(lin, kind, xs, ys) + self.mean_f_[ic]
-            if not return_var:
-                continue
-            quad = basis.collapse_quadratic(self.cov_f_[np.ix_(ixb, ixb)], kind, sign)
-            cross = basis.collapse_linear(self.cov_f_[ixb, ic], kind, sign)
-            var[..., c] = (basis.eval_cos_grid(quad, xs, ys) + 2.0 * basis.eval_trig_grid(cross, kind, xs, ys)
-                           + self.cov_f_[ic, ic])
+        terms = self._poly_terms(self.mean_f_, self.cov_f_ if return_var else None)
+        for c, ((kind, _), t) in enumerate(zip(self._kinds, terms)):
+            mean[..., c] = basis.eval_trig_grid(t["lin"], kind, xs, ys) + t["const"]
+            if return_var:
+                var[..., c] = (basis.eval_cos_grid(t["quad"], xs, ys) + 2.0 * basis.eval_trig_grid(t["cross"], kind, xs, ys)
+                               + t["var_const"])
         if not return_var:
             return mean
         var = np.maximum(var, 0.0) + self.between_walk_var_[None, None, :]
