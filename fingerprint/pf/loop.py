@@ -136,13 +136,14 @@ def _resample(arrays, ctx, rng, weights):
     idx = get_resampler(s.resampler)(weights, rng)
     new = {name: take_rows(a, idx) for name, a in arrays.items()}
     n = idx.shape[0]
-    if s.rough_heading_rad > 0 or s.rough_scale > 0:
-        z = normal32(rng, 2 * n)  # one draw for both jitters
-        if s.rough_heading_rad > 0:
+    rough = [s.rough_heading_rad > 0, s.rough_scale > 0]
+    if any(rough):
+        z = normal32(rng, sum(rough) * n)  # one draw for the jitters switched on
+        if rough[0]:
             new["heading_offset_rad"] += np.float32(s.rough_heading_rad) * z[:n]
-        if s.rough_scale > 0:
+        if rough[1]:
             sc = new["scale"]
-            sc += np.float32(s.rough_scale) * z[n:]
+            sc += np.float32(s.rough_scale) * z[z.size - n :]
             np.clip(sc, 0.5, 1.5, out=sc)
     return ParticleState(**new, log_w=np.full(n, -math.log(n)))
 
@@ -186,8 +187,8 @@ def _mix_with_background(llf, obs, psi, state, ctx, tracker):
     p = tracker.p_field if math.isfinite(tracker.p_field) else s.field_valid_prior
     p = min(max(p, 1e-12), 1.0 - 1e-12)
     llf = np.asarray(llf, dtype=np.float64)
-    w = np.exp(state.log_w - np.max(state.log_w))
-    w /= np.sum(w)
+    w = np.exp(state.log_w)  # the log-weights are normalised
+    w *= 1.0 / np.sum(w)
     ll0 = background_log_likelihood(obs, psi, w, state.bias_ut, state.bias_var_ut2, ctx.background,
                                     settings=s, sensor_noise_ut=ctx.sensor_noise_ut)
     # one exp and one log pass: with c >= every term, l_i / e^c = m_i

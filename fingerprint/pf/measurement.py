@@ -369,8 +369,11 @@ def background_log_likelihood(obs, psi_rad, w, bias_ut, bias_var_ut2, bg, *, set
         psi = math.atan2(float(w @ np.sin(psi_rad)), float(w @ np.cos(psi_rad)))
     y, pred, mvar, bidx = _background_features(bg, obs, psi, s.feature_set)
     bidx = list(bidx)
-    b = w @ np.asarray(bias_ut, dtype=np.float64)[:, bidx]
-    p = w @ np.asarray(bias_var_ut2, dtype=np.float64)[:, bidx]
+    # weighted means over the particles, one component row at a time (the
+    # bias states are column-major float32; a float32 product is plenty for a mean)
+    w32 = np.asarray(w, dtype=np.float32)
+    b = np.array([float(np.dot(np.asarray(bias_ut).T[c], w32)) for c in bidx])
+    p = np.array([float(np.dot(np.asarray(bias_var_ut2).T[c], w32)) for c in bidx])
     tau = s.field_temper
     v = s.map_var_scale * mvar + (sensor_noise_ut**2 / max(obs.n, 1) + s.mismatch_ut**2)
     r = (y - pred - b)[None, :]

@@ -187,31 +187,37 @@ def move_arrays(state, length_m, heading_rad, *, tables, settings, rng, earth_to
     of a new state, and the (N,) heading log-likelihood."""
     s = settings
     n = state.n
-    # the jitter normals of the update in one call (float32 is plenty)
-    z = normal32(rng, 3 * n)
+    f, m = s.length_sigma_frac, s.length_sigma_m
+    # the jitter normals of the update in one call (float32 is plenty), as
+    # many blocks of n as there are jitters switched on
+    jitters = [s.heading_rw_rad > 0, s.scale_rw > 0, f > 0 or m > 0]
+    z = normal32(rng, sum(jitters) * n)
+    blocks = iter(range(0, z.size, n))
     # nuisance random walks
     hoff = state.heading_offset_rad
-    if s.heading_rw_rad > 0:
-        hoff = hoff + np.float32(s.heading_rw_rad) * z[:n]
+    if jitters[0]:
+        i = next(blocks)
+        hoff = hoff + np.float32(s.heading_rw_rad) * z[i : i + n]
     scale = state.scale
-    if s.scale_rw > 0:
-        scale = scale + np.float32(s.scale_rw) * z[n : 2 * n]
+    if jitters[1]:
+        i = next(blocks)
+        scale = scale + np.float32(s.scale_rw) * z[i : i + n]
         np.clip(scale, 0.5, 1.5, out=scale)
     hp32 = np.add(hoff, heading_rad + earth_to_plan_rad, dtype=np.float32)
     ch, sh = np.cos(hp32), np.sin(hp32)  # float32 cos/sin: vectorised, ~1e-7 rad is plenty
     dist = length_m * scale
     # relative and absolute length noise: one Gaussian with both variances,
     # L s (1 + f e1) + m e2  ~  L s + sqrt((L s f)^2 + m^2) e
-    f, m = s.length_sigma_frac, s.length_sigma_m
-    if f > 0 or m > 0:
+    if jitters[2]:
+        i = next(blocks)
         if f > 0:
             sd = np.multiply(dist, f, dtype=np.float32)  # the noise is float32 anyway
             sd *= sd
             sd += np.float32(m * m)
             np.sqrt(sd, out=sd)
-            sd *= z[2 * n :]
+            sd *= z[i : i + n]
         else:
-            sd = m * z[2 * n :]
+            sd = m * z[i : i + n]
         dist += sd
     remaining = np.maximum(dist, 0.0, out=dist)
 

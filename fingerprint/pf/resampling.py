@@ -27,9 +27,11 @@ def _check(weights):
     w = np.asarray(weights, dtype=float)
     if w.ndim != 1 or w.size == 0:
         raise DataError(f"weights must be a non-empty 1-D array, got shape {w.shape}")
-    if np.any(~np.isfinite(w)) or np.any(w < 0):
-        raise DataError("weights must be finite and >= 0")
     total = w.sum()
+    # a finite sum means every weight is finite (NaN and inf propagate); the
+    # minimum is NaN-aware through the comparison
+    if not (np.isfinite(total) and w.min() >= 0):
+        raise DataError("weights must be finite and >= 0")
     if not total > 0:
         raise DataError("weights sum to 0: nothing to resample")
     return w / total
@@ -78,8 +80,9 @@ def _sorted_search(c, u):
     c = np.minimum(c, 1.0)
     k = c * n
     k -= u
+    # 0 <= c <= 1 and 0 <= u < 1: ceil(c n - u) is already within [0, n]
+    # (-0.0 at worst), a float array of integers
     np.ceil(k, out=k)
-    np.clip(k, 0, n, out=k)  # float array of integers
     for _ in range(4):  # rounding can put k off by one, rarely
         p = k + u
         p /= n
@@ -89,11 +92,9 @@ def _sorted_search(c, u):
         p /= n
         high = p >= c  # positions[k - 1] >= c: k too large (never for k = 0: p < 0 <= c)
         if not (low.any() or high.any()):
-            k = k.astype(np.int64)
-            counts = np.empty_like(k)
-            counts[0] = k[0]
-            np.subtract(k[1:], k[:-1], out=counts[1:])
-            return np.repeat(np.arange(n, dtype=np.int64), counts)
+            # position i goes to #{j : c[j] <= position i} = #{j : k[j] <= i}
+            idx = np.bincount(k.astype(np.intp), minlength=n + 1)[:n]
+            return np.cumsum(idx, out=idx).astype(np.int64, copy=False)
         k += low
         k -= high
     return np.searchsorted(c, (u + np.arange(n)) / n, side="right").astype(np.int64)
