@@ -37,6 +37,7 @@ __all__ = [
     "fit_samples",
     "raster_map",
     "build_floor_map",
+    "outlying_walks",
     "plan_rotation_matrix",
     "track_heading_offset",
 ]
@@ -434,6 +435,39 @@ def _grid_with_coarse_var(model, xs, ys, step):
     return mean, var
 
 
+def outlying_walks(names, offsets_ut, *, k=4.0, min_ut=6.0):
+    """Survey walks whose device-frame offset stands out from the others'.
+
+    A walk's offset (its residual calibration error, as the map fit
+    estimates it) is compared with the median of all walks, per device
+    axis; it is an outlier where it deviates by more than ``k`` robust
+    standard deviations (1.4826 times the median absolute deviation) and
+    by more than ``min_ut``. Such a walk (a device with a poor calibration,
+    a robot with a magnet near its sensor) pulls the map towards its own
+    level. Needs at least four walks; fewer give an empty list.
+
+    Parameters
+    ----------
+    names : list of W walk names ; offsets_ut : (W, 3) float, µT
+
+    Returns
+    -------
+    list of dict: ``walk``, ``offset_ut`` (3), ``deviation_ut`` (3),
+    ``limit_ut`` (3), one per outlying walk
+    """
+    off = np.asarray(offsets_ut, dtype=float).reshape(-1, 3)
+    if off.shape[0] < 4 or len(names) != off.shape[0]:
+        return []
+    dev = off - np.median(off, axis=0)
+    limit = np.maximum(k * 1.4826 * np.median(np.abs(dev), axis=0), min_ut)
+    out = []
+    for i in np.flatnonzero(np.any(np.abs(dev) > limit, axis=1)):
+        out.append({"walk": str(names[i]), "offset_ut": [round(float(v), 3) for v in off[i]],
+                    "deviation_ut": [round(float(v), 3) for v in dev[i]],
+                    "limit_ut": [round(float(v), 3) for v in limit]})
+    return out
+
+
 def build_floor_map(
     site,
     floor,
@@ -496,6 +530,9 @@ def build_floor_map(
     origin, mean, var, coverage, free = raster_map(model, plan, resolution_m=resolution_m, survey_xy=samples.xy)
     counts = np.bincount(samples.walk, minlength=len(samples.names))
     summary = model.summary()
+    offsets = {}
+    if hasattr(model, "walk_offsets"):
+        offsets = {samples.names[int(c)]: o for c, o in zip(model.walk_names_, model.walk_offsets())}
     meta = {
         "map_meta_version": MAP_META_VERSION,
         "floor": floor,
@@ -512,7 +549,12 @@ def build_floor_map(
         "kernel": kernel,
         "model": summary,
         "noise_sd_ut": [float(v) for v in np.sqrt(getattr(model, "noise_var_", np.zeros(3)))],
-        "survey_walks": [{"name": n, "samples": int(c)} for n, c in zip(samples.names, counts)],
+        "survey_walks": [
+            {"name": n, "samples": int(c),
+             "offset_ut": None if n not in offsets else [round(float(v), 3) for v in offsets[n]]}
+            for n, c in zip(samples.names, counts)
+        ],
+        "offset_outliers": outlying_walks(list(offsets), np.array(list(offsets.values())).reshape(-1, 3)),
         "skipped_walks": samples.info.get("skipped", []),
         "n_samples": samples.n,
         "build": {

@@ -326,6 +326,7 @@ class _ReducedRankGP(_Fitted):
         self.optim_info_ = info
         self.log_marginal_likelihood_ = log_ml
         self.walk_names_ = names
+        self.walk_codes_all_ = codes
         self.noise_var_ = np.array([hyper["noise_h_ut"] ** 2, hyper["noise_h_ut"] ** 2, hyper["noise_up_ut"] ** 2])
         self.between_walk_var_ = np.zeros(3)
         for p in parts:
@@ -812,6 +813,37 @@ class _ReducedRankGP(_Fitted):
             return mean
         var = np.maximum(var, 0.0) + self.between_walk_var_[None, None, :]
         return mean, var
+
+    def walk_offsets(self):
+        """Posterior mean device-frame offset of every survey walk.
+
+        Returns
+        -------
+        (W, 3) float, µT, in the order of ``walk_names_``, along the axes of
+        the samples' ``rotations`` (forward, left, up for heading-only
+        rotations); on a tiled map each tile's estimate weighted by the
+        walk's samples in it. Only the offsets relative to each other are
+        identified (their common part trades off against the constant
+        field). Empty (0, 3) when the fit had no walk labels.
+        """
+        self._check_fitted()
+        codes = self.walk_codes_all_
+        if codes is None:
+            return np.zeros((0, 3))
+        w = len(self.walk_names_)
+        total = np.zeros((w, 3))
+        weight = np.zeros(w)
+        for p in self.parts_:
+            est = getattr(p, "walk_offsets_ut_", None)
+            if est is None or p.walk_codes_ is None or est.shape[0] != p.walk_codes_.size:
+                continue
+            cnt = np.bincount(codes[p.sel_], minlength=w)[p.walk_codes_].astype(float)
+            total[p.walk_codes_] += cnt[:, None] * est
+            weight[p.walk_codes_] += cnt
+        out = np.zeros((w, 3))
+        ok = weight > 0
+        out[ok] = total[ok] / weight[ok, None]
+        return out
 
     def summary(self):
         """JSON-able hyperparameters and fit diagnostics."""

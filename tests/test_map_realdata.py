@@ -53,6 +53,10 @@ def test_build_map_command_writes_a_checked_map(b1_map):
     q = json.loads(b1_map.with_suffix(".quality.json").read_text())
     assert 0 < q["raster"]["covered_within_2m"] < 1
     assert b1_map.with_suffix(".quality.png").stat().st_size > 10_000
+    # every survey walk carries its fitted offset; the outlier list names survey walks only
+    offs = np.array([w["offset_ut"] for w in fmap.meta["survey_walks"]])
+    assert offs.shape == (len(split["survey"]), 3) and np.all(np.isfinite(offs))
+    assert {o["walk"] for o in fmap.meta["offset_outliers"]} <= set(split["survey"])
 
 
 def test_map_info_query_and_image(b1_map, tmp_path, capsys):

@@ -415,3 +415,37 @@ def test_no_refinement_when_the_basis_resolves_the_field(survey):
     assert len(one.parts_) == 1 and "refined_from" not in one.optim_info_
     assert one.hyper_["length_scale_m"] > 1.1 * one.optim_info_["length_scale_bounds_m"][0]
     np.testing.assert_allclose(one.predict(xy[:50], return_var=False), two.predict(xy[:50], return_var=False))
+
+
+def test_walk_offsets_find_the_walk_with_a_bad_calibration():
+    """One walk whose device z axis carries a 15 µT offset (a magnet near a
+    robot's sensor, say) among walks with ordinary residual offsets of
+    sd 1.5 µT: the fitted offsets recover the injected ones (relative to the
+    median walk) on one box and on tiles, and only that walk is flagged."""
+    from mapping.mapbuild import outlying_walks
+
+    rng = np.random.default_rng(8)
+    field = _potential_field(rng, n_bumps=40, box=(24.0, 10.0))
+    n_walks, per = 9, 80
+    xy = rng.uniform([0, 0], [24, 10], size=(n_walks * per, 2))
+    groups = np.repeat(np.arange(n_walks), per)
+    rot = Rotation.from_euler("z", rng.uniform(-np.pi, np.pi, (n_walks * per, 1))).as_matrix()
+    offsets = rng.normal(size=(n_walks, 3)) * 1.5
+    offsets[4, 2] += 15.0
+    b = field(xy) + np.einsum("nij,nj->ni", rot, offsets[groups]) + rng.normal(size=(n_walks * per, 3)) * 0.3
+    names = [f"walk_{i}" for i in range(n_walks)]
+    labels = np.array(names)[groups]
+    for tiles in ("never", "always"):
+        model = CurlFreeGP(n_basis=400, tiles=tiles, tile_m=12.0, tile_basis=300,
+                           between_walk=False, **HYPER).fit(xy, b, groups=labels, rotations=rot)
+        assert model.walk_names_ == names
+        est = model.walk_offsets()
+        assert est.shape == (n_walks, 3)
+        # only differences between walks are identified
+        np.testing.assert_allclose(est - np.median(est, 0), offsets - np.median(offsets, 0), atol=1.0)
+        flagged = outlying_walks(model.walk_names_, est)
+        assert [f["walk"] for f in flagged] == ["walk_4"], (tiles, flagged)
+        assert flagged[0]["deviation_ut"][2] == pytest.approx(15.0, abs=2.0)
+    # the ordinary walks alone: nothing stands out
+    assert outlying_walks(names[:4] + names[5:], np.delete(offsets, 4, axis=0)) == []
+    assert outlying_walks(names[:3], offsets[:3]) == []  # too few walks to judge

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sys
 import time
 
 from fingerprint.errors import ConfigError
@@ -81,6 +82,12 @@ def run(args):
         print("held-out walks (group k-fold): RMSE b_x,b_y,b_up = "
               + ", ".join(f"{v:.2f}" for v in cal["heldout_rmse_ut"]) + " µT; between-walk sd = "
               + ", ".join(f"{v:.2f}" for v in model.get("between_walk_sd_ut", [])) + " µT")
+    for o in fmap.meta.get("offset_outliers", []):
+        print(f"warning: survey walk {o['walk']}: device-frame offset "
+              + ", ".join(f"{v:+.1f}" for v in o["offset_ut"]) + " µT (forward, left, up) differs from the other walks' by "
+              + ", ".join(f"{v:+.1f}" for v in o["deviation_ut"]) + " µT, beyond "
+              + ", ".join(f"{v:.1f}" for v in o["limit_ut"]) + " µT; check its calibration or leave it out",
+              file=sys.stderr)
     print(f"earth_to_plan = {fmap.meta['frames']['alignment'].get('earth_to_plan_deg', 0.0):.2f} deg "
           f"({fmap.meta['frames']['alignment'].get('source')})")
     print(f"wrote {args.out} ({fmap.meta['build']['time_s']:.1f} s)")

@@ -65,7 +65,13 @@ def run(args):
     print(f"survey:           {len(walks)} walks, {meta.get('n_samples')} samples; seed {meta.get('seed')}")
     if args.walks:
         for w in walks:
-            print(f"  {w['name']}: {w['samples']} samples")
+            off = w.get("offset_ut")
+            extra = "" if not off else "; offset " + ", ".join(f"{v:+.1f}" for v in off) + " µT (forward, left, up)"
+            print(f"  {w['name']}: {w['samples']} samples{extra}")
+    outliers = meta.get("offset_outliers") or []
+    if outliers:
+        print(f"  {len(outliers)} walks with an outlying device-frame offset (check their calibration): "
+              + ", ".join(o["walk"] for o in outliers))
     r, g = q["raster"], q["graph"]
     print(f"coverage:         {100 * (r['covered_within_1m'] or 0):.1f} % of free space within 1 m of a survey sample, "
           f"{100 * (r['covered_within_2m'] or 0):.1f} % within 2 m; graph {100 * (g['fraction_covered'] or 0):.1f} % covered")
