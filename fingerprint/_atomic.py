@@ -13,6 +13,13 @@ from pathlib import Path
 __all__ = ["atomic_write", "write_text_atomic", "write_json_atomic"]
 
 
+def _umask():
+    """The process umask (read by setting and restoring it)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_write(path, mode="w", **open_kwargs):
     """Open a temporary file for writing; on success replace ``path`` by it.
@@ -27,6 +34,14 @@ def atomic_write(path, mode="w", **open_kwargs):
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    # mkstemp makes the file private (0600); give it the mode a plain open()
+    # would: that of the file it replaces, else 0666 less the umask
+    try:
+        os.chmod(tmp, path.stat().st_mode & 0o7777 if path.exists() else 0o666 & ~_umask())
+    except BaseException:
+        os.close(fd)
+        os.unlink(tmp)
+        raise
     if "b" not in mode:
         open_kwargs.setdefault("encoding", "utf-8")
         open_kwargs.setdefault("newline", "")
