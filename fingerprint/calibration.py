@@ -313,6 +313,16 @@ def turning_stretch(up_device, *, tilt_deg=20.0, min_samples=50, max_gap=150, pa
     return start, stop
 
 
+#: largest ratio of the fitted ellipsoid's longest to shortest axis taken
+#: as soft iron (real devices: a few per cent; common practice, no source)
+_MAX_AXIS_RATIO = 2.0
+
+
+#: shortest arc of the circle fallback (fraction of 36 bins of 10°) that
+#: still gives an offset; below it the fit refuses (common practice, no source)
+_MIN_ARC_FRACTION = 1.0 / 6.0
+
+
 def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, min_samples=50, up_device=None,
                     field_up_ut=None, planar_tilt_deg=20.0, field_total_ut=None, field_up_sign=-1.0,
                     use_turning_stretch=True):
@@ -410,6 +420,16 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         try:
             ctr, A, cond = ellipsoid_fit(m)
             report["condition_number"] = cond
+            ev = np.linalg.eigvalsh((A + A.T) / 2)
+            axis_ratio = float(np.sqrt(ev[-1] / ev[0])) if ev[0] > 0 else np.inf
+            if not axis_ratio <= _MAX_AXIS_RATIO:
+                # a phone's or robot's soft iron stretches the sphere by a few
+                # per cent; a strongly elongated fit is fitted noise on a patch
+                raise DataError(
+                    f"the ellipsoid fitted to the magnetometer readings is implausible (axis ratio "
+                    f"{axis_ratio:.1f}): the device did not turn enough to calibrate (turn it through at least "
+                    "one full circle, ideally in several orientations)"
+                )
             Wsym = linalg.sqrtm(A).real
             Wsym = (Wsym + Wsym.T) / 2
             if field_ut is not None:
@@ -477,6 +497,13 @@ def fit_calibration(mag_ut, *, field_ut=None, source="mag", planar_ratio=0.12, m
         else:
             message += "offset along the normal left at 0 and soft-iron left at identity (not identifiable)"
         report["vertical_offset_from"] = vertical
+        if report["arc_fraction"] < _MIN_ARC_FRACTION or not np.isfinite(report["condition_number"]):
+            # a circle through a short arc: its centre (the offset) is not determined
+            raise DataError(
+                f"the magnetometer readings cover only {report['arc_fraction']:.0%} of a circle: the device did "
+                "not turn enough to calibrate (turn it through at least one full circle, ideally in several "
+                "orientations)"
+            )
         if report["arc_fraction"] < 0.5:
             message += f"; the readings cover only {report['arc_fraction']:.0%} of the circle, so the offset is weakly determined"
 

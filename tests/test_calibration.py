@@ -4,6 +4,7 @@ against a geometric least-squares fit with scipy.optimize (reference
 library); the planar fallback; the calibration file."""
 
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -80,6 +81,25 @@ def test_planar_data_takes_circle_fallback_and_says_so():
     np.testing.assert_array_equal(cal.matrix, np.eye(3))
     assert rep["coverage"]["spread"][2] < 0.05
     assert rep["arc_fraction"] == 1.0
+
+
+def test_too_little_turning_is_refused(tmp_path):
+    """Readings from a 30° turn about the vertical: a circle through so short
+    an arc does not fix its centre (common practice, no source), so the fit
+    refuses instead of returning the field itself as the offset; the command
+    exits 2 naming the log and writes no calibration file."""
+    from fingerprint.errors import DataError
+
+    rng = np.random.default_rng(4)
+    yaw = rng.uniform(0, np.radians(30), 2000)
+    rot = Rotation.from_rotvec(np.column_stack([np.zeros_like(yaw), np.zeros_like(yaw), yaw]))
+    m = rot.inv().apply(B_EARTH) + O + rng.normal(0, 0.5, (2000, 3))
+    with pytest.raises(DataError, match="did not turn enough"):
+        fit_calibration(m)
+    out = tmp_path / "cal.json"
+    log = Path(__file__).parent / "data" / "malformed" / "valid.log.csv"  # a short log without turns
+    assert main(["calibrate", str(log), "--out", str(out)]) == 2
+    assert not out.exists()
 
 
 def test_circle_fit_against_three_point_circle():

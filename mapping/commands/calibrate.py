@@ -45,8 +45,14 @@ def run(args):
     if args.field_ut is not None and not (np.isfinite(args.field_ut) and args.field_ut > 0):
         raise ConfigError(f"--field-ut must be a positive number of µT, got {args.field_ut}")
     up = up_directions(log.t, log.acc) if log.n >= 16 else None
-    cal, rep = fit_calibration(data, field_ut=args.field_ut, source=src, up_device=up, field_up_ut=args.field_up_ut,
-                               field_total_ut=args.field_total_ut, field_up_sign=args.field_up_sign)
+    try:
+        cal, rep = fit_calibration(data, field_ut=args.field_ut, source=src, up_device=up,
+                                   field_up_ut=args.field_up_ut, field_total_ut=args.field_total_ut,
+                                   field_up_sign=args.field_up_sign)
+    except DataError as err:
+        if getattr(err, "path", None):
+            raise
+        raise DataError(str(err), path=args.log) from None
     cal.meta["log"] = str(args.log)
     cal.save(args.out)
     o = rep["offset_ut"]
@@ -58,7 +64,9 @@ def run(args):
     print("  matrix          " + "; ".join(" ".join(f"{v:.4f}" for v in row) for row in m))
     print(f"  coverage        {cov['sphere_fraction']:.0%} of sphere cells; direction spread "
           + " / ".join(f"{v:.3f}" for v in cov["spread"]))
-    print(f"  conditioning    {rep['condition_number']:.3g} (condition number of the fit's scatter matrix)")
+    cond = rep.get("condition_number")
+    print(f"  conditioning    {'n/a' if cond is None else format(cond, '.3g')} "
+          "(condition number of the fit's scatter matrix)")
     print(f"  |B| spread      {rep['b_spread_before_ut']:.2f} µT before, {rep['b_spread_after_ut']:.2f} µT after "
           f"(mean {rep['b_mean_before_ut']:.1f} -> {rep['b_mean_after_ut']:.1f} µT)")
     print(f"  wrote           {args.out}")
