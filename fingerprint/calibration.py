@@ -89,10 +89,12 @@ class Calibration:
     @classmethod
     def from_json(cls, obj, *, path=None):
         """From a dict made by :meth:`to_json` (or a path to such a file)."""
+        from .logio import read_text
+
         if isinstance(obj, (str, Path)):
             path = str(obj)
             try:
-                obj = json.loads(Path(obj).read_text(encoding="utf-8"))
+                obj = json.loads(read_text(obj))
             except json.JSONDecodeError as err:
                 raise FormatError(f"not valid JSON: {err.msg}", path=path, line=err.lineno, column=err.colno) from err
         if not isinstance(obj, dict) or obj.get("format") != FORMAT:

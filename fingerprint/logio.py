@@ -60,6 +60,7 @@ from .errors import DataError, FormatError
 from .records import Checkpoints, Track, WalkLog
 
 __all__ = [
+    "read_text",
     "read_walk_log",
     "read_checkpoints",
     "read_track",
@@ -91,6 +92,13 @@ _BOOL_WORDS = {"yes", "no", "true", "false", "1", "0"}
 # --------------------------------------------------------------------------
 # low-level text handling
 # --------------------------------------------------------------------------
+def read_text(path):
+    """The text of a UTF-8 file (gzip-compressed when its name ends in
+    ``.gz``); a byte that is not UTF-8 or a truncated gzip stream becomes a
+    FormatError naming the file, line and column."""
+    return _read_text(path)
+
+
 def _read_text(path):
     path = Path(path)
     if path.name.endswith(".gz"):

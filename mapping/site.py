@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from fingerprint.errors import ConfigError, FormatError
+from fingerprint.logio import read_text
 
 __all__ = ["Site", "load_site", "read_json_file"]
 
@@ -70,7 +71,7 @@ def read_json_file(path):
     """Parse a JSON file; a syntax error becomes a FormatError with the
     file, line and column (from :class:`json.JSONDecodeError`)."""
     path = Path(path)
-    text = path.read_text(encoding="utf-8")
+    text = read_text(path)  # not UTF-8: FormatError with line and column
     try:
         return json.loads(text)
     except json.JSONDecodeError as err:

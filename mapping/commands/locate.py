@@ -18,6 +18,8 @@ COLUMNS = ("t", "x", "y", "sigma_m", "confidence", "converged", "lost")
 
 
 def add_arguments(parser):
+    from fingerprint.pf.settings import FilterSettings
+
     parser.description = (
         "Localise a walk log on a floor's field map with the particle filter (steps or odometry "
         "moving particles along the floor graph, the live magnetic field weighing them). Writes a "
@@ -52,7 +54,7 @@ def add_arguments(parser):
                         help="feature set: vertical+horizontal (default), full or total")
     parser.add_argument("--likelihood", default=None, metavar="NAME", help="student-t (default) or gaussian")
     parser.add_argument("--temper", type=float, default=None, metavar="TAU",
-                        help="exponent on the field likelihood (default 0.1)")
+                        help=f"exponent on the field likelihood (default {FilterSettings().field_temper:g})")
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
                         help="any other FilterSettings field, e.g. --set heading_kappa=3 (repeatable)")
     parser.add_argument("--calibration", default=None, metavar="calibration.json",
@@ -175,8 +177,7 @@ def run(args):
     if args.calibration is not None:
         from fingerprint.calibration import Calibration
 
-        with open(args.calibration, encoding="utf-8") as fh:
-            calibration = Calibration.from_json(json.load(fh), path=args.calibration)
+        calibration = Calibration.from_json(args.calibration)  # FormatError with line and column
     walk = process_walk(log, calibration=calibration, step_constant=args.step_constant)
     t0 = time.perf_counter()
     track = localise(walk, fmap, settings=settings, start_xy=start_xy, start_sigma_m=sigma,

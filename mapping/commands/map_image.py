@@ -11,14 +11,17 @@ def add_arguments(parser):
     parser.add_argument("--kind", choices=("field", "quality"), default="field",
                         help="field: b_x, b_y, b_up, |B|, sd, coverage (default); quality: coverage, latent sd, "
                              "localisability and stretches to re-survey")
-    parser.add_argument("--dpi", type=int, default=130)
+    parser.add_argument("--dpi", type=int, default=130, metavar="N", help="image resolution, dots per inch (default 130)")
 
 
 def run(args):
+    from fingerprint.errors import ConfigError
     from fingerprint.mapfile import load_map
 
     from ..quality import field_image, quality_image
 
+    if args.dpi < 1:
+        raise ConfigError(f"--dpi must be a positive integer, got {args.dpi}")
     fmap = load_map(args.map_path)
     if args.kind == "field":
         field_image(fmap, args.out, dpi=args.dpi)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import io
+import io
 
 import numpy as np
 
@@ -30,8 +31,10 @@ def add_arguments(parser):
 def read_points(path):
     """(N, 2) float from a CSV with header columns x and y; FormatError with
     line and column on a bad cell."""
-    with open(path, encoding="utf-8", newline="") as fh:
-        rows = list(csv.reader(line for line in fh if not line.startswith("#")))
+    from fingerprint.logio import read_text
+
+    text = read_text(path)  # not UTF-8: FormatError with line and column
+    rows = list(csv.reader(line for line in io.StringIO(text, newline="") if not line.startswith("#")))
     if not rows:
         raise FormatError("empty points file; expected a header with columns x,y", path=path)
     header = [h.strip() for h in rows[0]]

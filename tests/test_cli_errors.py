@@ -1,0 +1,63 @@
+"""Bad input files on the command line: exit 2 and one line naming the file,
+line and column, never a traceback (the project's error rule). Inputs: a
+byte that is not UTF-8 (0xff never occurs in UTF-8, RFC 3629 section 3),
+a JSON file cut short, an impossible option value."""
+
+from pathlib import Path
+
+import pytest
+
+from fingerprint.mapfile import save_map
+from mapping.benchmarks.filter import synthetic_floor
+from mapping.cli import main
+
+REAL_LOG = Path(__file__).parent / "data" / "real" / "siteA" / "F1" / "walk_001.log.csv.gz"
+
+
+@pytest.fixture(scope="module")
+def small_map(tmp_path_factory):
+    p = tmp_path_factory.mktemp("cli") / "small.map"
+    save_map(p, synthetic_floor(nx=6, ny=5))
+    return p
+
+
+def _one_line_error(capsys, path, line, column):
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "Traceback" not in err[0], err
+    assert f"{path}, line {line}, column {column}" in err[0], err[0]
+    return err[0]
+
+
+def test_site_file_not_utf8(tmp_path, capsys):
+    site = tmp_path / "site.json"
+    site.write_bytes(b'{"name": "x\xff"}')
+    assert main(["build-map", "--site", str(site), "--floor", "G", "--out", str(tmp_path / "a.map"),
+                 str(tmp_path)]) == 2
+    assert "UTF-8" in _one_line_error(capsys, site, 1, 12)
+    assert not (tmp_path / "a.map").exists()
+
+
+def test_points_file_not_utf8(small_map, tmp_path, capsys):
+    pts = tmp_path / "p.csv"
+    pts.write_bytes(b"x,y\n1,2\n3,\xff\n")
+    out = tmp_path / "o.csv"
+    assert main(["map-query", str(small_map), str(pts), "--out", str(out)]) == 2
+    _one_line_error(capsys, pts, 3, 3)
+    assert not out.exists()
+
+
+def test_calibration_file_cut_short(small_map, tmp_path, capsys):
+    cal = tmp_path / "cal.json"
+    cal.write_text('{"format": \n')
+    out = tmp_path / "t.csv"
+    assert main(["locate", "--map", str(small_map), str(REAL_LOG), "--calibration", str(cal), "--out", str(out)]) == 2
+    assert "not valid JSON" in _one_line_error(capsys, cal, 2, 1)
+    assert not out.exists()
+
+
+def test_image_resolution_must_be_positive(small_map, tmp_path, capsys):
+    out = tmp_path / "x.png"
+    assert main(["map-image", str(small_map), "--out", str(out), "--dpi", "0"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--dpi" in err[0]
+    assert not out.exists()
