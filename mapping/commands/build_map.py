@@ -18,7 +18,7 @@ def add_arguments(parser):
         "is written to one checksummed file; with --quality a JSON summary and PNG beside it."
     )
     parser.add_argument("walks", nargs="+", metavar="WALK", help="survey walk log or folder of logs")
-    parser.add_argument("--site", required=True, metavar="SITE.json", help="site description (FORMATS.md section 5)")
+    parser.add_argument("--site", required=True, metavar="SITE.json", help="site description (README, 'Input files')")
     parser.add_argument("--floor", required=True, metavar="F", help="floor label in the site file")
     parser.add_argument("--out", required=True, metavar="FLOOR.map", help="output map file (written atomically)")
     parser.add_argument("--kernel", default="curl-free", metavar="NAME",
@@ -28,6 +28,9 @@ def add_arguments(parser):
                         help="walk distance averaged into one survey sample, metres (default 0.25)")
     parser.add_argument("--n-basis", type=int, default=None, metavar="N",
                         help="reduced-rank basis functions per block for the GP kernels (default 1024)")
+    parser.add_argument("--graph", default=None, metavar="GRAPH.geojson",
+                        help="hand-drawn floor graph instead of the one built from the plan: GeoJSON LineStrings "
+                             "with properties.kind 'path', plan metres (long lines are split every metre)")
     parser.add_argument("--tracks", choices=("use", "ignore"), default="use",
                         help="take survey positions from *.track.csv beside a log when there is one (default use)")
     parser.add_argument("--split", default=None, metavar="split.json", help="keep only the walks of one part of a split file")
@@ -53,6 +56,11 @@ def run(args):
         if args.kernel not in ("curl-free", "per-component"):
             raise ConfigError("--n-basis applies to the curl-free and per-component kernels only")
         params["n_basis"] = int(args.n_basis)
+    graph = None
+    if args.graph is not None:
+        from ..graphbuild import load_graph_geojson
+
+        graph = load_graph_geojson(args.graph)
     t0 = time.perf_counter()
     fmap = build_floor_map(
         site,
@@ -65,8 +73,10 @@ def run(args):
         use_track=args.tracks == "use",
         spacing_m=args.spacing,
         kernel_params=params or None,
+        graph=graph,
     )
     fmap.meta["build"]["command"] = "build-map"
+    fmap.meta["build"]["graph"] = "built from the plan" if args.graph is None else str(args.graph)
     fmap.meta["build"]["time_s"] = round(time.perf_counter() - t0, 3)
     save_map(args.out, fmap)
     model = fmap.meta.get("model", {})
