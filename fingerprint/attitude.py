@@ -128,7 +128,7 @@ __all__ = [
 
 #: Standard gravity, m/s² (CGPM 1901 conventional value).
 GRAVITY_M_S2 = 9.80665
-#: Device forward axis by platform (FORMATS.md device frames).
+#: Device forward axis by platform (the device frames of the README, "Input files").
 FORWARD_AXIS = {"handheld": np.array([0.0, 1.0, 0.0]), "robot": np.array([1.0, 0.0, 0.0])}
 
 #: Ways the complementary filter uses the magnetometer for heading.
@@ -593,7 +593,6 @@ def _robust_offset(d, wgt, *, passes, scale_rad, n_bins=72):
 
 
 def _madgwick_attitude(t, acc, gyro, mag, fwd, s, bias, still):
-    n = t.size
     dt = np.concatenate([[0.0], np.diff(t)])
     dt = np.where(dt > s.max_gap_s, 0.0, dt)
     up0 = _lowpass(acc, 1.0 / float(np.median(np.diff(t))), s.tilt_cutoff_hz)[0]

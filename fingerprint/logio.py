@@ -1,4 +1,4 @@
-"""Read and write walk logs, checkpoints and tracks (FORMATS.md §1-3).
+"""Read and write walk logs, checkpoints and tracks (formats: README, "Input files").
 
 Reading is strict: every problem raises :class:`~fingerprint.errors.FormatError`
 (the file does not follow the format) or :class:`~fingerprint.errors.DataError`

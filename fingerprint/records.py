@@ -15,7 +15,7 @@ __all__ = ["WalkLog", "Checkpoints", "Track", "Motion", "ProcessedWalk"]
 
 @dataclass(frozen=True, eq=False)
 class WalkLog:
-    """One walk log (FORMATS: ``*.log.csv``).
+    """One walk log (``*.log.csv``, README "Input files").
 
     Attributes
     ----------
@@ -63,7 +63,7 @@ class WalkLog:
 
 @dataclass(frozen=True, eq=False)
 class Checkpoints:
-    """Ground-truth or survey-anchor positions (FORMATS: ``*.checkpoints.csv``).
+    """Ground-truth or survey-anchor positions (``*.checkpoints.csv``, README "Input files").
 
     Attributes
     ----------
@@ -86,7 +86,7 @@ class Checkpoints:
 
 @dataclass(frozen=True, eq=False)
 class Track:
-    """Positions along a walk (FORMATS: ``*.track.csv``), true or estimated.
+    """Positions along a walk (``*.track.csv``, README "Input files"), true or estimated.
 
     Attributes
     ----------

@@ -12,7 +12,7 @@ MAD-based standard error (``1.2533 * 1.4826 * MAD / sqrt(n)``: the
 asymptotic standard error of a median of Gaussian data, with the MAD scaled
 to a standard deviation).
 
-Frame convention (APIS.md): with ``plan_rotation_deg`` = rho (clockwise from
+Frame convention: with ``plan_rotation_deg`` = rho (clockwise from
 true north to plan +y) and declination D (east positive),
 ``earth_to_plan = radians(rho - D)``. When the site gives latitude,
 longitude and date, D comes from the IGRF model

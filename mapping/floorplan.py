@@ -1,4 +1,4 @@
-"""Floor plans (FORMATS.md §4): GeoJSON in plan metres to shapely free space.
+"""Floor plans (README "Input files"): GeoJSON in plan metres to shapely free space.
 
 Free space is ``union(walkable) - union(obstacle)``. Invalid polygons are
 repaired with :func:`shapely.make_valid` when the repair is unambiguous (the

@@ -1,4 +1,4 @@
-"""The site description (FORMATS.md §5): a name, the floors with their plan
+"""The site description (``site.json``, README "Input files"): a name, the floors with their plan
 files, and what is known of where the building is and how its plans are
 turned against true north.
 

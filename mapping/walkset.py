@@ -94,7 +94,7 @@ def find_walks(paths, *, recursive=False, split=None, part=None) -> list:
             pattern = "**/*" if recursive else "*"
             logs = sorted(q for q in p.glob(pattern) if q.is_file() and walk_name(q))
             if not logs:
-                raise DataError(f"no walk logs (*.log.csv or *.log.csv.gz) in folder", path=p)
+                raise DataError("no walk logs (*.log.csv or *.log.csv.gz) in folder", path=p)
         elif p.is_file():
             if not walk_name(p):
                 raise DataError("not a walk log: expected a name ending in .log.csv or .log.csv.gz", path=p)

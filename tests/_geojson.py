@@ -1,4 +1,4 @@
-"""Small GeoJSON builders for plan tests (plan metres, FORMATS.md section 4)."""
+"""Small GeoJSON builders for plan tests (plan metres, README "Input files")."""
 
 
 def feat(kind, coords, gtype="Polygon"):

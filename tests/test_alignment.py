@@ -109,7 +109,7 @@ def test_frame_convention_worked_example():
 
 
 def test_declination_from_the_site_and_implied_plan_rotation():
-    pygeomag = pytest.importorskip("pygeomag")
+    import pygeomag
     site = Site(path=Path("site.json"), name="x", floors={}, latitude_deg=48.5, longitude_deg=-3.25,
                 date=dt.date(2025, 7, 1), plan_rotation_deg=12.0)
     ref = pygeomag.GeoMag().calculate(glat=48.5, glon=-3.25, alt=0, time=2025.5).d  # WMM, degrees east

@@ -17,10 +17,6 @@ import pytest
 from mapping.cli import main
 from mapping.metrics import SUMMARY_KEYS
 
-# the demo needs the map builder, the map file and the simulator command
-for _mod in ("mapping.mapbuild", "fingerprint.mapfile", "mapping.commands.simulate"):
-    pytest.importorskip(_mod)
-
 TINY = Path(__file__).parent / "data" / "tiny_site"
 
 

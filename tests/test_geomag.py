@@ -28,7 +28,7 @@ def test_igrf_matches_wmm(lat, lon):
     when = dt.date(2026, 3, 15)
     ours = background_field(lat, lon, when)
     ref = _wmm(lat, lon, when)
-    # Acceptance of the brief: total within 0.5 µT, declination within 0.5°.
+    # Project acceptance: total within 0.5 µT, declination within 0.5°.
     # IGRF-14 and WMM2025 are both fits to the same satellite era; their
     # published differences are tens of nT (from memory).
     assert abs(ours.total_ut - ref.f / 1000.0) < 0.5

@@ -17,7 +17,6 @@ import shapely
 from shapely.geometry import LineString
 
 from fingerprint.errors import ConfigError, DataError, FormatError
-from fingerprint.floorgraph import FloorGraph
 from mapping.floorplan import load_floor_plan, plan_from_geojson
 from mapping.graphbuild import (
     build_graph,

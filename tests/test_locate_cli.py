@@ -15,11 +15,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-mapfile = pytest.importorskip("fingerprint.mapfile")
-
-from fingerprint import FieldMap, FloorGraph  # noqa: E402
-from fingerprint.logio import read_checkpoints, read_track  # noqa: E402
-from mapping.cli import main  # noqa: E402
+from fingerprint import FieldMap, FloorGraph, mapfile
+from fingerprint.logio import read_checkpoints, read_track
+from mapping.cli import main
 
 DATA = Path(__file__).parent / "data" / "real" / "siteA" / "F1"
 WALK = "walk_020"
@@ -73,7 +71,7 @@ def test_writes_track_with_seed_and_columns(files, capsys):
     assert set(np.unique(tr.extra["converged"])) <= {0.0, 1.0}
     # first estimate near the given start (a couple of steps from it)
     assert np.hypot(*(tr.xy[0] - cps.xy[0])) < 5.0
-    shapely = pytest.importorskip("shapely")
+    import shapely
     doc = json.loads(geo.read_text())
     line = shapely.from_geojson(json.dumps(doc["features"][0]["geometry"]))
     assert line.geom_type == "LineString"

@@ -367,7 +367,7 @@ def _steel_field(rng, box, n=30, depth=0.9):
     """A field with sharp local anomalies: a uniform background plus
     vertical dipoles ``depth`` metres below the survey plane, summed by
     magpylib (https://magpylib.readthedocs.io, SI units: A·m², T)."""
-    magpy = pytest.importorskip("magpylib")
+    import magpylib as magpy
     pos = np.column_stack([rng.uniform([0, 0], box, size=(n, 2)), np.full(n, -depth)])
     mom = rng.normal(size=(n, 3)) * 60.0
     sources = [magpy.misc.Dipole(moment=m, position=p) for p, m in zip(pos, mom)]

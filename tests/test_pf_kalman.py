@@ -14,7 +14,6 @@ field-bias state equals a two-state Kalman filter [x, bias].
 import dataclasses
 
 import numpy as np
-import pytest
 from filterpy.kalman import KalmanFilter
 
 from fingerprint import FieldMap, FloorGraph

@@ -8,7 +8,7 @@ Bars (this sample has only 8 + 4 test walks, 16 + 8 survey walks, so the
 95th percentile is about the second-largest error and is not tested): the
 graph-constrained filter without the field must beat plain dead reckoning
 (the same steps integrated from the first checkpoint, rotated into the
-plan) on the median; its median must stay at most 2.5 m (the issue's bar is
+plan) on the median; its median must stay at most 2.5 m (the project's bar is
 2.0 m on the full floors, where this code gives about 1.6 m on F1 and 1.5 m
 on B1); the filter with the field must not lose more than 0.3 m of median
 against it. The full-floor comparison of field vs no-field needs maps of
@@ -22,11 +22,11 @@ import dataclasses
 import numpy as np
 import pytest
 
+from mapping import mapbuild
+
 pytestmark = pytest.mark.realdata
 
 DATA = Path(__file__).parent / "data" / "real" / "siteA"
-
-mapbuild = pytest.importorskip("mapping.mapbuild")
 
 
 def _walk(floor, name):

@@ -102,7 +102,7 @@ def _corridor_graph():
 
 # ---------------------------------------------------------------- field model
 def test_background_direction_in_plan(models, site, geo):
-    # Frame convention (APIS.md "Frame rotation", FORMATS.md §5): magnetic
+    # Frame convention (site.json plan_rotation_deg): magnetic
     # north points in the plan at CCW angle 90° + rho - D from plan +x.
     b = models["G"].background_ut
     angle = math.degrees(math.atan2(b[1], b[0]))
@@ -115,7 +115,7 @@ def test_background_direction_in_plan(models, site, geo):
 def test_field_model_matches_magpylib(models):
     # Reference: magpylib (SI units) summing the same dipoles; the
     # background is added on top. https://magpylib.readthedocs.io
-    magpy = pytest.importorskip("magpylib")
+    import magpylib as magpy
     fm = models["L1"]
     rng = np.random.default_rng(2)
     pts = np.column_stack([rng.uniform(5, 55, 60), rng.uniform(5, 35, 60), rng.uniform(0.3, 1.5, 60)])
@@ -233,7 +233,7 @@ def test_survey_routes_cover_every_segment(cover):
 
 
 def test_demo_survey_covers_every_aisle_twice(floors):
-    # Brief: survey walks cover every corridor and aisle at least twice.
+    # The demo survey design: walks cover every corridor and aisle at least twice.
     for f, (plan, free, graph) in floors.items():
         jobs = plan_floor(f, graph, seed=11, settings=DatasetSettings(platforms=("handheld",)))
         segs = graph_segments(graph)
@@ -291,7 +291,7 @@ def test_walks_stay_in_free_space_and_away_from_steel(small_walks, floors, model
     for f, job, w in small_walks:
         plan = floors[f][0]
         assert plan.contains(w.track.xy).all(), (f, job.name)
-        # brief: no dipole closer than ~0.8 m to where the sensors pass
+        # design rule of the demo steel: no dipole closer than ~0.8 m to where the sensors pass
         d = models[f].min_distance_m(np.column_stack([w.truth.xy, w.truth.z]))
         assert d.min() >= 0.8, (f, job.name, d.min())
 
@@ -561,8 +561,8 @@ def test_cli_robot_only_and_plan_graph(tmp_path):
 
 
 def test_calibrated_phone_residual_is_new_every_session(small_walks):
-    # FORMATS.md §1: even calibrated data keep residual errors that "differ
-    # between devices and sessions"; the same phone on two walks must not
+    # even calibrated data keep residual errors that differ
+    # between devices and sessions (common practice, no source); the same phone on two walks must not
     # carry the same offset (it would look like field to a map)
     by_phone = {}
     for f, j, w in small_walks:

@@ -1,4 +1,4 @@
-"""Site files (FORMATS.md §5) and walk-set discovery.
+"""Site files (README "Input files") and walk-set discovery.
 
 References: the real-data site file and split files described in
 shared/real_data/README.md (vendored copy under tests/data/real when

@@ -161,7 +161,7 @@ def test_resume_after_interruption_repeats_nothing(tmp_path):
 
 
 def test_dask_local_cluster(tmp_path):
-    distributed = pytest.importorskip("dask.distributed")
+    import dask.distributed as distributed
     tasks = make_tasks([{"n_particles": 100}, {"n_particles": 900}], ["a", "b", "c"], seeds=1, root_seed=5)
     store = RunStore(tmp_path / "runs")
     with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,

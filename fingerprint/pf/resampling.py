@@ -58,7 +58,6 @@ def systematic_resample(weights, rng=None, *, u=None):
     (N,) int64 indices, sorted
     """
     w = _check(weights)
-    n = w.size
     if u is None:
         u = rng.random()
     return _sorted_search(_cumulative(w), u)

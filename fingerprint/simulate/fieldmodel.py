@@ -23,7 +23,7 @@ def earth_to_plan_vector(enu_ut, plan_rotation_deg):
     """Rotate a true-north east/north/up vector into the plan frame.
 
     ``plan_rotation_deg`` (rho) is the clockwise angle from true north to
-    the plan's +y axis (FORMATS.md §5), so plan = R(+rho) @ (east, north).
+    the plan's +y axis (site.json), so plan = R(+rho) @ (east, north).
 
     Parameters
     ----------
@@ -149,7 +149,7 @@ def field_model_for_floor(steel_doc, floor, geofield, *, plan_rotation_deg=0.0):
     steel_doc : dict from :func:`fingerprint.simulate.building.load_steel`
     floor : str
     geofield : fingerprint.geomag.GeoField, background at the site
-    plan_rotation_deg : float, rho (FORMATS.md §5)
+    plan_rotation_deg : float, rho (site.json)
     """
     if floor not in steel_doc["floors"]:
         raise DataError(f"no steel described for floor {floor!r}; floors: {sorted(steel_doc['floors'])}")

@@ -117,7 +117,7 @@ class Device:
 
         A phone keeps re-running its own magnetometer calibration, so the
         offset it leaves in a calibrated field is new every session
-        (FORMATS.md: residual errors "differ between devices and sessions");
+        (calibrated devices keep residual errors that differ between devices and sessions);
         its soft iron and raw hard iron belong to the hardware and stay. A
         bare sensor (``calibrated`` False) is returned as it is.
 

@@ -11,7 +11,6 @@ unit test.
 
 from __future__ import annotations
 
-import dataclasses
 import json
 from pathlib import Path
 

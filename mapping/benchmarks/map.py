@@ -113,7 +113,7 @@ def synthetic_survey(n, rng, field, *, box=(60.0, 40.0), per_walk=2500, offset_s
 
 
 def _speed(args, log=print):
-    from ..mapfit import CurlFreeGP, PerComponentGP
+    from ..mapfit import CurlFreeGP
 
     rng = np.random.default_rng(args.seed)
     field = synthetic_field(rng)
@@ -348,8 +348,6 @@ def _height(args):
 
 
 def _truth(args, site, survey, log):
-    from pathlib import Path
-
     from fingerprint.simulate import FieldModel
 
     from ..mapbuild import build_floor_map

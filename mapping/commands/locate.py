@@ -26,7 +26,7 @@ def add_arguments(parser):
         "track CSV with columns " + ",".join(COLUMNS) + " (one row per filter update); the seed and "
         "settings are recorded in '#' comment lines at its top."
     )
-    parser.add_argument("log", metavar="LOG", help="walk log (.log.csv or .log.csv.gz, FORMATS.md section 1)")
+    parser.add_argument("log", metavar="LOG", help="walk log (.log.csv or .log.csv.gz; README, 'Input files')")
     parser.add_argument("--map", dest="map_path", metavar="FLOOR.map", required=True,
                         help="field map of the floor the walk is on (written by 'lodemap build-map')")
     parser.add_argument("--start", metavar="X,Y[,SIGMA]", default=None,

@@ -14,7 +14,6 @@ Output layout (per floor)::
 
 from __future__ import annotations
 
-import json
 import math
 import time
 from pathlib import Path
@@ -72,7 +71,6 @@ def _route_graph(plan_path, plan, mode):
 
 
 def run(args):
-    import numpy as np
     import shapely
     from tqdm import tqdm
 
