@@ -52,6 +52,12 @@ class WalkLog:
         return self.meta.get("platform", "handheld").strip().lower()
 
     @property
+    def floor(self) -> str | None:
+        """Floor label of the metadata key ``floor``, or None when absent."""
+        value = self.meta.get("floor", "").strip()
+        return value or None
+
+    @property
     def magnetometer_calibrated(self) -> bool:
         """Whether the device already removed its hard-iron offset."""
         return self.meta.get("magnetometer_calibrated", "no").strip().lower() in {"yes", "true", "1"}

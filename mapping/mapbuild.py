@@ -55,12 +55,15 @@ class SurveyWalk:
     walk : ProcessedWalk
     checkpoints : Checkpoints or None
     track : Track or None
+    floor : str or None, the floor the log or its checkpoints say it was
+        recorded on
     """
 
     name: str
     walk: object
     checkpoints: object = None
     track: object = None
+    floor: str | None = None
 
 
 @dataclass(eq=False)
@@ -133,10 +136,14 @@ def load_walks(walk_files, *, use_track=True, progress=True, desc="reading walks
         raise DataError("no survey walks given")
     out = []
     for wf in _tqdm(files, progress=progress, desc=desc, unit="walk"):
-        walk = process_walk(read_walk_log(wf.log))
+        log = read_walk_log(wf.log)
+        walk = process_walk(log)
         cps = read_checkpoints(wf.checkpoints) if wf.checkpoints is not None else None
         track = read_track(wf.track) if (use_track and wf.track is not None) else None
-        out.append(SurveyWalk(wf.name, walk, cps, track))
+        floor = log.floor
+        if floor is None and cps is not None and cps.floor is not None and cps.floor.size:
+            floor = str(cps.floor[0]).strip() or None
+        out.append(SurveyWalk(wf.name, walk, cps, track, floor))
     return out
 
 
@@ -554,6 +561,7 @@ def build_floor_map(
              "offset_ut": None if n not in offsets else [round(float(v), 3) for v in offsets[n]]}
             for n, c in zip(samples.names, counts)
         ],
+        "walks_marked_other_floor": [w.name for w in walks if w.floor is not None and w.floor != floor],
         "offset_outliers": outlying_walks(list(offsets), np.array(list(offsets.values())).reshape(-1, 3)),
         "skipped_walks": samples.info.get("skipped", []),
         "n_samples": samples.n,

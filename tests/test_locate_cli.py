@@ -113,6 +113,8 @@ def test_no_field_and_settings_are_recorded(files, capsys):
         (["--set", "bogus=1"], "unknown filter setting"),
         (["--features", "nope"], "feature_set"),
         (["--preset", "nope"], "preset"),
+        (["--start", "50000,50000"], "from the floor graph"),  # a start far off the floor
+        (["--start-time", "99999"], "after the last step"),  # nothing left to localise
     ],
 )
 def test_bad_options_give_one_line_and_exit_2(files, capsys, extra, needle):
@@ -137,3 +139,19 @@ def test_help_explains_every_option(capsys):
     for opt in ("--map", "--start", "--start-time", "--out", "--geojson", "--seed", "--particles", "--no-field",
                 "--preset", "--features", "--likelihood", "--temper", "--set", "--calibration", "--step-constant", "LOG"):
         assert opt in text
+
+
+def test_log_of_another_floor_gives_a_warning(files, capsys):
+    """The log says floor F1 (metadata key ``floor``); on a map of floor G the
+    command still runs but says so on stderr."""
+    tmp, mp, cps = files
+    other = mapfile.load_map(mp)
+    other = FieldMap("G", other.origin_xy, other.resolution_m, other.mean_ut, other.var_ut2, other.coverage_m,
+                     other.free, other.graph)
+    gp = tmp / "G.map"
+    mapfile.save_map(gp, other)
+    start = f"{cps.xy[0, 0]},{cps.xy[0, 1]},1.5"
+    code, _, err = _run(["--map", gp, DATA / f"{WALK}.log.csv.gz", "--start", start, "--out", tmp / "g.csv",
+                         "--no-field"], capsys)
+    assert code == 0
+    assert "marked as recorded on floor F1, the map is of floor G" in err

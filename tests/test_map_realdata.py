@@ -53,6 +53,7 @@ def test_build_map_command_writes_a_checked_map(b1_map):
     q = json.loads(b1_map.with_suffix(".quality.json").read_text())
     assert 0 < q["raster"]["covered_within_2m"] < 1
     assert b1_map.with_suffix(".quality.png").stat().st_size > 10_000
+    assert fmap.meta["walks_marked_other_floor"] == []  # the logs say floor B1
     # every survey walk carries its fitted offset; the outlier list names survey walks only
     offs = np.array([w["offset_ut"] for w in fmap.meta["survey_walks"]])
     assert offs.shape == (len(split["survey"]), 3) and np.all(np.isfinite(offs))
@@ -141,3 +142,18 @@ def test_heldout_walks_of_the_split_f1():
     assert gp["b_up"] < 1.05 * cst["b_up"]
     assert 0.55 < k["curl-free"]["within_1sd"]["b_up"] < 0.85
     assert res["test"]["samples"] > 1000
+
+
+def test_build_map_warns_about_walks_of_another_floor(tmp_path, capsys):
+    """The vendored B1 logs carry ``# floor: B1`` (data README); built as a
+    floor labelled otherwise they are listed, with a warning, not refused."""
+    site = tmp_path / "site.json"
+    site.write_text(json.dumps({"name": "relabelled", "floors": [
+        {"floor": "basement", "plan": str((DATA / "B1" / "floor.plan.geojson").resolve())}]}))
+    out = tmp_path / "basement.map"
+    walks = [str(DATA / "B1" / f"walk_00{i}.log.csv.gz") for i in (0, 1, 2, 3)]
+    assert main(["build-map", "--site", str(site), "--floor", "basement", "--out", str(out), "--resolution", "1.0",
+                 "--n-basis", "64", "--no-progress", *walks]) == 0
+    err = capsys.readouterr().err
+    assert "4 survey walks are marked as recorded on another floor than basement" in err
+    assert load_map(out).meta["walks_marked_other_floor"] == ["walk_000", "walk_001", "walk_002", "walk_003"]

@@ -92,6 +92,10 @@ def run(args):
         print("held-out walks (group k-fold): RMSE b_x,b_y,b_up = "
               + ", ".join(f"{v:.2f}" for v in cal["heldout_rmse_ut"]) + " µT; between-walk sd = "
               + ", ".join(f"{v:.2f}" for v in model.get("between_walk_sd_ut", [])) + " µT")
+    other = fmap.meta.get("walks_marked_other_floor", [])
+    if other:
+        print(f"warning: {len(other)} survey walks are marked as recorded on another floor than {fmap.floor}: "
+              + ", ".join(other[:10]) + (" ..." if len(other) > 10 else ""), file=sys.stderr)
     for o in fmap.meta.get("offset_outliers", []):
         print(f"warning: survey walk {o['walk']}: device-frame offset "
               + ", ".join(f"{v:+.1f}" for v in o["offset_ut"]) + " µT (forward, left, up) differs from the other walks' by "

@@ -6,6 +6,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import sys
 import time
 
 import numpy as np
@@ -178,7 +179,23 @@ def run(args):
         from fingerprint.calibration import Calibration
 
         calibration = Calibration.from_json(args.calibration)  # FormatError with line and column
+    if log.floor is not None and log.floor != fmap.floor:
+        print(f"warning: {args.log} is marked as recorded on floor {log.floor}, the map is of floor {fmap.floor}",
+              file=sys.stderr)
+    if start_xy is not None:
+        _, _, dist = fmap.graph.project(np.asarray(start_xy, dtype=float).reshape(1, 2))
+        if dist[0] > max(5.0, 3.0 * sigma):
+            x0, y0 = fmap.graph.nodes_xy.min(axis=0)
+            x1, y1 = fmap.graph.nodes_xy.max(axis=0)
+            raise ConfigError(
+                f"--start {start_xy[0]:g},{start_xy[1]:g} is {dist[0]:.1f} m from the floor graph of map "
+                f"{args.map_path} (its nodes span x {x0:.1f}..{x1:.1f}, y {y0:.1f}..{y1:.1f} m); expected a "
+                "point on the floor in plan metres"
+            )
     walk = process_walk(log, calibration=calibration, step_constant=args.step_constant)
+    if args.start_time is not None and walk.motion.n and not np.any(walk.motion.t > args.start_time):
+        raise ConfigError(f"--start-time {args.start_time:g} s is after the last step of {args.log} "
+                          f"(at {float(walk.motion.t[-1]):.1f} s): nothing left to localise")
     t0 = time.perf_counter()
     track = localise(walk, fmap, settings=settings, start_xy=start_xy, start_sigma_m=sigma,
                      start_time_s=args.start_time, rng=np.random.default_rng(args.seed))
