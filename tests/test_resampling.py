@@ -158,3 +158,9 @@ def test_ess_and_log_weight_normalisation():
     assert total == pytest.approx(700.0 + np.log(8.0))
     _, total = normalise_log_weights(np.full(4, -np.inf))
     assert total == -np.inf
+
+
+@pytest.mark.parametrize("name", sorted(RESAMPLERS))
+def test_no_generator_and_no_uniforms_is_a_clear_error(name):
+    with pytest.raises(ConfigError, match="numpy Generator"):
+        get_resampler(name)(np.array([0.2, 0.3, 0.5]))

@@ -37,6 +37,11 @@ def _check(weights):
     return w / total
 
 
+def _need_rng(rng):
+    if not isinstance(rng, np.random.Generator):
+        raise ConfigError(f"resampling needs a numpy Generator (rng) or its uniforms (u), got rng={rng!r}")
+
+
 def _cumulative(w):
     c = np.cumsum(w)
     c[-1] = 1.0  # guard against round-off: every position < 1 finds a bin
@@ -59,6 +64,7 @@ def systematic_resample(weights, rng=None, *, u=None):
     """
     w = _check(weights)
     if u is None:
+        _need_rng(rng)
         u = rng.random()
     return _sorted_search(_cumulative(w), u)
 
@@ -107,6 +113,7 @@ def stratified_resample(weights, rng=None, *, u=None):
     w = _check(weights)
     n = w.size
     if u is None:
+        _need_rng(rng)
         u = rng.random(n)
     positions = (np.asarray(u, dtype=float) + np.arange(n)) / n
     return np.searchsorted(_cumulative(w), positions, side="right").astype(np.int64)
@@ -120,6 +127,7 @@ def multinomial_resample(weights, rng=None, *, u=None):
     w = _check(weights)
     n = w.size
     if u is None:
+        _need_rng(rng)
         u = rng.random(n)
     return np.searchsorted(_cumulative(w), np.asarray(u, dtype=float), side="right").astype(np.int64)
 
@@ -139,6 +147,7 @@ def residual_resample(weights, rng=None, *, u=None):
         return fixed
     resid = n * w - copies
     if u is None:
+        _need_rng(rng)
         u = rng.random(r)
     extra = np.searchsorted(_cumulative(resid / resid.sum()), np.asarray(u, dtype=float), side="right")
     return np.sort(np.concatenate([fixed, extra])).astype(np.int64)
