@@ -49,7 +49,8 @@ def add_arguments(parser):
     parser.add_argument("--test", nargs="+", default=None, metavar="PATH", help="accuracy mode: test walks or folders")
     parser.add_argument("--split", default=None, metavar="split.json",
                         help="accuracy mode: take survey and test walks from this split of the --survey folders")
-    parser.add_argument("--kernels", default="curl-free,per-component,nearest,constant", metavar="K[,K...]")
+    parser.add_argument("--kernels", default="curl-free,per-component,nearest,constant", metavar="K[,K...]",
+                        help="map models to score on the held-out walks (default all four)")
     parser.add_argument("--truth", default=None, metavar="field_model.npz",
                         help="accuracy mode: also build the map and compare it with this true field on the graph")
     parser.add_argument("--height", type=float, default=None, metavar="M",

@@ -27,7 +27,8 @@ def add_arguments(parser):
     parser.add_argument("--seed", type=int, default=0, help="seed of the walks (default 0); recorded in every log")
     parser.add_argument("--walks", type=int, default=None, metavar="N",
                         help="test walks per floor and platform (default: 3 handheld, 2 robot, of about 2.5 min each)")
-    parser.add_argument("--platform", choices=("handheld", "robot", "both"), default="both")
+    parser.add_argument("--platform", choices=("handheld", "robot", "both"), default="both",
+                        help="platforms to simulate (their survey and test walks): people with phones, robots, or both (default)")
     parser.add_argument("--floors", nargs="+", default=None, metavar="FLOOR", help="only these floors")
     parser.add_argument("--routes", choices=("auto", "file", "plan"), default="auto",
                         help="route graph: the site's <floor>/routes.geojson ('file'), the graph built from the "
