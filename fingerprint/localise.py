@@ -57,7 +57,9 @@ class Localiser:
     start_xy : (2,) float or None; None = global mode (particles over the
         whole graph)
     start_sigma_m : float, spread of the start in tracking mode
-    rng : numpy.random.Generator or int seed or None
+    rng : numpy.random.Generator or int seed or None; None draws fresh
+        entropy from the operating system (numpy's convention), so two runs
+        differ: give a seed to repeat a run
     sensor_noise_ut : float, 1-sigma noise of one magnetometer sample (µT);
         ``settings.sensor_noise_ut`` wins when set; default (or NaN) 1.0
     """
@@ -243,7 +245,8 @@ def localise(walk, fmap, *, settings=None, start_xy=None, start_sigma_m=1.0, sta
     start_sigma_m : float, metres
     start_time_s : float, optional; samples and increments up to this time
         are skipped (the walker is at ``start_xy`` then)
-    rng : numpy.random.Generator or int seed or None
+    rng : numpy.random.Generator or int seed or None (None: fresh entropy,
+        not repeatable; see :class:`Localiser`)
 
     Returns
     -------
