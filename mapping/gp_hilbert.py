@@ -294,11 +294,16 @@ class BoxBasis:
         terms of every product ``j, k``: (dd, ds, sd, ss), ``d`` the
         difference and ``s`` the sum of mode numbers (x first)."""
         q = 2 * self.n_modes[1] + 1
-        da = np.abs(self.jx[:, None] - self.jx[None, :])
-        sa = self.jx[:, None] + self.jx[None, :]
-        db = np.abs(self.jy[:, None] - self.jy[None, :])
-        sb = self.jy[:, None] + self.jy[None, :]
-        return tuple((a * q + b).ravel() for a, b in ((da, db), (da, sb), (sa, db), (sa, sb)))
+        # int32 (the table is small) and the row factor q applied to the x
+        # terms once: five (m, m) passes less than forming each index whole
+        x, y = self.jx.astype(np.int32), self.jy.astype(np.int32)
+        da = np.abs(np.subtract.outer(x, x))
+        da *= q
+        sa = np.add.outer(x, x)
+        sa *= q
+        db = np.abs(np.subtract.outer(y, y))
+        sb = np.add.outer(y, y)
+        return tuple(np.add(a, b).ravel() for a, b in ((da, db), (da, sb), (sa, db), (sa, sb)))
 
     @staticmethod
     def _signs(kind):
