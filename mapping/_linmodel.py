@@ -374,7 +374,22 @@ class _Factor:
     def __init__(self, n, parts, blocks):
         self.n = n
         self.parts = parts
-        self.chols = [scipy.linalg.cho_factor(sb, lower=True, overwrite_a=True, check_finite=False) for sb in blocks]
+        # identical blocks (b_x and b_y of a per-component model share
+        # kernel, noise and samples) are factorised once; the diagonals are
+        # compared first, so different blocks cost O(size) to tell apart
+        twin = list(range(len(blocks)))
+        for i, a in enumerate(blocks):
+            for j in range(i):
+                b = blocks[j]
+                if (twin[j] == j and a.shape == b.shape and np.array_equal(np.diagonal(a), np.diagonal(b))
+                        and np.array_equal(a, b)):
+                    twin[i] = j
+                    break
+        chols = []
+        for i, sb in enumerate(blocks):
+            chols.append(chols[twin[i]] if twin[i] != i else
+                         scipy.linalg.cho_factor(sb, lower=True, overwrite_a=True, check_finite=False))
+        self.chols = chols
 
     def solve(self, rhs):
         out = np.empty_like(rhs, dtype=float)
@@ -387,7 +402,11 @@ class _Factor:
 
     def inverse_blocks(self):
         """The diagonal blocks of S^-1 (S^-1 is zero outside them)."""
-        return [_chol_inverse(c) for c in self.chols]
+        done = {}  # a shared factor is inverted once (callers only read the blocks)
+        for c in self.chols:
+            if id(c) not in done:
+                done[id(c)] = _chol_inverse(c)
+        return [done[id(c)] for c in self.chols]
 
     def inverse(self):
         if len(self.parts) == 1:

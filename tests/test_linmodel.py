@@ -36,10 +36,13 @@ def _dense(model, xy, b, groups, rot, prior, noise, offset_var):
         nv.append(np.full(n, noise[0 if c < 2 else 1]))
     a, y, nv = np.vstack(rows), np.concatenate(ys), np.concatenate(nv)
     pv = np.concatenate([prior, np.full(3 * w, offset_var)])
-    mu = np.linalg.solve(a.T @ (a / nv[:, None]) + np.diag(1 / pv), a.T @ (y / nv))
+    precision = a.T @ (a / nv[:, None]) + np.diag(1 / pv)
+    mu = np.linalg.solve(precision, a.T @ (y / nv))
     cov_y = (a * pv) @ a.T + np.diag(nv)
     lml = multivariate_normal(mean=np.zeros(y.size), cov=cov_y).logpdf(y)
-    return mu[: model.n_field_], mu[model.n_field_ :].reshape(w, 3), lml
+    m = model.n_field_
+    cov_f = np.linalg.inv(precision)[:m, :m]
+    return mu[:m], mu[m:].reshape(w, 3), lml, cov_f
 
 
 @pytest.mark.parametrize(
@@ -71,9 +74,44 @@ def test_block_posterior_equals_dense_solution(cls, walks, n_parts):
     prior = model._prior_var(model.hyper_)
     noise = np.array([0.25, 0.49])
     post = _linmodel.posterior(st, prior, noise, 1.5**2)
-    mu_f, mu_o, lml = _dense(model, xy, b, groups, rot, prior, noise, 1.5**2)
+    mu_f, mu_o, lml, cov_f = _dense(model, xy, b, groups, rot, prior, noise, 1.5**2)
+    if walks == "none":
+        # x and y have the same kernel, noise and samples: one factor serves both
+        assert post.factor.chols[0] is post.factor.chols[1] and post.factor.chols[2] is not post.factor.chols[0]
     np.testing.assert_allclose(post.mean_f, mu_f, rtol=1e-7, atol=1e-8)
+    np.testing.assert_allclose(post.cov_f, cov_f, rtol=1e-6, atol=1e-10)
     if groups is not None:
         np.testing.assert_allclose(post.mean_o, mu_o, rtol=1e-7, atol=1e-8)
     assert post.log_ml == pytest.approx(lml, rel=1e-9)
     assert _linmodel.log_marginal(st, prior, noise, 1.5**2) == pytest.approx(lml, rel=1e-9)
+
+
+def test_gradient_with_a_shared_factor_matches_finite_differences():
+    # x and y blocks identical (one Cholesky factor serves both): the analytic
+    # gradient (expectation identities, Bishop 2006 sec. 3.5) against central
+    # differences of the log marginal likelihood
+    rng = np.random.default_rng(5)
+    n = 200
+    xy = rng.uniform([0, 0], [10, 6], size=(n, 2))
+    b = rng.normal(size=(n, 3)) + [4, -2, 15]
+    model = PerComponentGP(n_basis=25, optimize=False, between_walk=False, tiles="never", magnitude_ut=2.0,
+                           length_scale_m=2.0, noise_h_ut=0.5, noise_up_ut=0.7, constant_ut=30.0).fit(xy, b)
+    st = _linmodel.accumulate_separable(model.basis_, model._kinds, model.idx_, xy, b,
+                                        blocks=model._blocks(model.basis_.n))
+    prior = model._prior_var(model.hyper_)
+    noise = np.array([0.25, 0.49])
+    val, dp, dn, _ = _linmodel.log_marginal_and_grad(st, prior, noise)
+    assert val == pytest.approx(_linmodel.log_marginal(st, prior, noise), rel=1e-10)
+    h = 1e-5
+    for k in rng.choice(prior.size, 6, replace=False):
+        e = np.zeros(prior.size)
+        e[k] = h
+        num = (_linmodel.log_marginal(st, prior * np.exp(e), noise)
+               - _linmodel.log_marginal(st, prior * np.exp(-e), noise)) / (2 * h)
+        assert dp[k] == pytest.approx(num, rel=1e-4, abs=1e-6)
+    for j in range(2):
+        e = np.zeros(2)
+        e[j] = h
+        num = (_linmodel.log_marginal(st, prior, noise * np.exp(e))
+               - _linmodel.log_marginal(st, prior, noise * np.exp(-e))) / (2 * h)
+        assert dn[j] == pytest.approx(num, rel=1e-5)
