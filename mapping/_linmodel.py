@@ -375,16 +375,17 @@ class _Factor:
         self.n = n
         self.parts = parts
         # identical blocks (b_x and b_y of a per-component model share
-        # kernel, noise and samples) are factorised once; the diagonals are
-        # compared first, so different blocks cost O(size) to tell apart
+        # kernel, noise and samples) are factorised once; blocks are keyed
+        # by their diagonal, so telling different ones apart costs O(size)
         twin = list(range(len(blocks)))
+        first = {}  # diagonal -> indices of the distinct blocks with it
         for i, a in enumerate(blocks):
-            for j in range(i):
-                b = blocks[j]
-                if (twin[j] == j and a.shape == b.shape and np.array_equal(np.diagonal(a), np.diagonal(b))
-                        and np.array_equal(a, b)):
-                    twin[i] = j
-                    break
+            same = first.setdefault((a.shape, np.diagonal(a).tobytes()), [])
+            j = next((j for j in same if np.array_equal(a, blocks[j])), None)
+            if j is None:
+                same.append(i)
+            else:
+                twin[i] = j
         chols = []
         for i, sb in enumerate(blocks):
             chols.append(chols[twin[i]] if twin[i] != i else
