@@ -340,9 +340,17 @@ class BoxBasis:
         """``sum_i f_j(x_i) f_k(x_i)`` (m, m) for basis functions of
         ``kind`` from :meth:`cos_table` of the samples."""
         flat = np.asarray(table, float).ravel()
-        g = sum(e * flat[ix] for e, ix in zip(self._signs(kind), self._pair_index))
+        # signs are +-1: add or subtract each gathered term in place (one
+        # (m, m) result and one temporary instead of a dozen)
+        signs, pairs = self._signs(kind), self._pair_index
+        g = flat[pairs[0]] if signs[0] > 0 else -flat[pairs[0]]
+        for e, ix in zip(signs[1:], pairs[1:]):
+            (np.add if e > 0 else np.subtract)(g, flat[ix], out=g)
+        g = g.reshape(self.n, self.n)
         c = self.coef(kind, sign)
-        return 0.25 * (c[:, None] * c[None, :]) * g.reshape(self.n, self.n)
+        g *= c[:, None]
+        g *= 0.25 * c[None, :]
+        return g
 
     def trig_tables(self, xy, weights, kinds):
         """Weighted sums ``sum_i w_ik X(a t_i) Y(b u_i)`` for the factor
