@@ -413,8 +413,8 @@ class _Factor:
         if len(self.parts) == 1:
             return _chol_inverse(self.chols[0])
         out = np.zeros((self.n, self.n))
-        for b, c in zip(self.parts, self.chols):
-            out[np.ix_(b, b)] = _chol_inverse(c)
+        for b, inv in zip(self.parts, self.inverse_blocks()):
+            out[np.ix_(b, b)] = inv
         return out
 
 

@@ -294,8 +294,8 @@ class BoxBasis:
         terms of every product ``j, k``: (dd, ds, sd, ss), ``d`` the
         difference and ``s`` the sum of mode numbers (x first)."""
         q = 2 * self.n_modes[1] + 1
-        # int32 (the table is small) and the row factor q applied to the x
-        # terms once: five (m, m) passes less than forming each index whole
+        # int32 (the table is small), and the row factor q applied to the two
+        # x terms once rather than to each of the four indices
         x, y = self.jx.astype(np.int32), self.jy.astype(np.int32)
         da = np.abs(np.subtract.outer(x, x))
         da *= q
@@ -340,10 +340,10 @@ class BoxBasis:
         """``sum_i f_j(x_i) f_k(x_i)`` (m, m) for basis functions of
         ``kind`` from :meth:`cos_table` of the samples."""
         flat = np.asarray(table, float).ravel()
-        # signs are +-1: add or subtract each gathered term in place (one
-        # (m, m) result and one temporary instead of a dozen)
+        # signs are +-1 and the first is +1 (:meth:`_signs`): add or subtract
+        # each gathered term in place (one (m, m) result and one temporary)
         signs, pairs = self._signs(kind), self._pair_index
-        g = flat[pairs[0]] if signs[0] > 0 else -flat[pairs[0]]
+        g = flat[pairs[0]]
         for e, ix in zip(signs[1:], pairs[1:]):
             (np.add if e > 0 else np.subtract)(g, flat[ix], out=g)
         g = g.reshape(self.n, self.n)
