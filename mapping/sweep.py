@@ -11,6 +11,7 @@ A sweep is described by a TOML file (read with :mod:`tomllib`)::
     seeds = 2                  # seeds per (settings, walk)
     seed = 0                   # root seed; run seeds are SeedSequence(seed).spawn(seeds)
     metric = "median_error_m"  # what the ranking sorts by (lower is better)
+    folds = 0                  # K >= 2: K-fold cross-validation over the survey walks
 
     [data]                     # paths relative to this file
     walks = ["sim/G/test"]     # walks to score (files or folders)
@@ -32,6 +33,13 @@ choose how the map is built; ``noise_mag_ut`` (extra white noise on the measured
 ``noise_heading_deg`` (a constant heading error added to every step) and
 ``noise_step_scale`` (step lengths multiplied by it) perturb the input;
 every other name is a field of ``fingerprint.localise.FilterSettings``.
+
+Cross-validation (``folds = K``, K >= 2) chooses settings on the survey
+walks alone, leaving the test walks untouched for the final score: the
+survey walks are dealt into K folds (a permutation seeded by ``seed``,
+:func:`fold_assignment`), one map per fold and map setting is built from
+the survey walks of the other folds, and every scored walk (each must be a
+survey walk) is localised on the map that did not see it.
 
 Every finished run is written at once as ``OUT/runs/<key>.json``
 (atomically), ``key`` a hash of its settings, walk, seed, mode and data;
@@ -76,6 +84,7 @@ __all__ = [
     "perturb_walk",
     "evaluation_run",
     "prepare_maps",
+    "fold_assignment",
     "run_sweep",
     "MAP_SETTINGS",
     "NOISE_SETTINGS",
@@ -88,7 +97,7 @@ MAP_SETTINGS = ("map_resolution_m", "map_kernel", "map_n_basis")
 #: settings that perturb the input walk
 NOISE_SETTINGS = ("noise_mag_ut", "noise_heading_deg", "noise_step_scale")
 _SEARCHES = ("grid", "random")
-_SWEEP_KEYS = {"mode", "search", "samples", "seeds", "seed", "metric", "preset"}
+_SWEEP_KEYS = {"mode", "search", "samples", "seeds", "seed", "metric", "preset", "folds"}
 _DATA_KEYS = {"walks", "map", "site", "floor", "survey", "split", "use"}
 
 
@@ -103,6 +112,7 @@ class SweepConfig:
     seed: int = 0
     metric: str = "median_error_m"
     preset: str = "default"
+    folds: int = 0
     walks: list = field(default_factory=list)
     map: Path | None = None
     site: Path | None = None
@@ -116,7 +126,7 @@ class SweepConfig:
 
     def data_identity(self):
         """JSON-able description of the data (part of every run key)."""
-        return {
+        ident = {
             "map": None if self.map is None else str(self.map),
             "site": None if self.site is None else str(self.site),
             "floor": self.floor,
@@ -124,6 +134,9 @@ class SweepConfig:
             "split": None if self.split is None else str(self.split),
             "use": self.use if self.split is not None else None,
         }
+        if self.folds:
+            ident["folds"] = self.folds
+        return ident
 
 
 def load_sweep_config(path):
@@ -168,6 +181,10 @@ def parse_sweep_config(raw, *, base=".", path="<sweep>"):
         if not isinstance(v, int) or isinstance(v, bool) or v < (0 if name == "seed" else 1):
             raise ConfigError(f"{path}: [sweep] {name} must be an integer >= {0 if name == 'seed' else 1}, got {v!r}")
         setattr(cfg, name, v)
+    folds = sw.get("folds", 0)
+    if not isinstance(folds, int) or isinstance(folds, bool) or folds < 0 or folds == 1:
+        raise ConfigError(f"{path}: [sweep] folds must be 0 (no cross-validation) or an integer >= 2, got {folds!r}")
+    cfg.folds = folds
     cfg.metric = str(sw.get("metric", cfg.metric))
     cfg.preset = str(sw.get("preset", cfg.preset))
 
@@ -220,6 +237,10 @@ def parse_sweep_config(raw, *, base=".", path="<sweep>"):
                 f"{path}: map settings {sorted(names & set(MAP_SETTINGS))} need [data] site, floor and survey "
                 "(the maps are built from them)"
             )
+    elif cfg.folds and (cfg.site is None or cfg.floor is None or not cfg.survey):
+        raise ConfigError(f"{path}: folds = {cfg.folds} needs [data] site, floor and survey (one map is built per fold)")
+    if cfg.folds and cfg.map is not None:
+        raise ConfigError(f"{path}: folds = {cfg.folds} builds one map per fold from the survey walks; remove [data] map")
     elif cfg.map is None and (cfg.site is None or cfg.floor is None or not cfg.survey):
         raise ConfigError(f"{path}: [data] needs either map = FILE or site, floor and survey to build one")
     return cfg
@@ -338,6 +359,7 @@ def _record(task, result):
         "seed": task["seed"],
         "seed_index": task["seed_index"],
         "mode": task.get("mode"),
+        **({"fold": task["fold"]} if "fold" in task else {}),
         "result": result,
     }
 
@@ -411,10 +433,11 @@ def tidy_rows(records):
     scalar result. Returns (columns, rows)."""
     set_cols = sorted({k for r in records for k in r["settings"]})
     res_cols = sorted({k for r in records for k, v in r["result"].items() if not isinstance(v, (list, dict))})
-    cols = ["key", "walk", "seed_index", "mode"] + set_cols + res_cols
+    folds = any("fold" in r for r in records)
+    cols = ["key", "walk", "seed_index", "mode"] + (["fold"] if folds else []) + set_cols + res_cols
     rows = []
     for r in sorted(records, key=lambda r: (json.dumps(r["settings"], sort_keys=True), str(r["walk"]), r["seed_index"])):
-        row = [r["key"], r["walk"], r["seed_index"], r.get("mode")]
+        row = [r["key"], r["walk"], r["seed_index"], r.get("mode")] + ([r.get("fold")] if folds else [])
         row += [_flat(r["settings"].get(k)) for k in set_cols]
         row += [r["result"].get(k) for k in res_cols]
         rows.append(row)
@@ -594,47 +617,69 @@ def evaluation_run(task):
     }
 
 
-def _map_key(cfg, map_settings):
+def _map_key(cfg, map_settings, fold=None):
     ident = {"data": cfg.data_identity(), "map": map_settings, "seed": cfg.seed}
+    if fold is not None:
+        ident["fold"] = int(fold)
     return hashlib.sha256(json.dumps(ident, sort_keys=True, default=str).encode()).hexdigest()[:16]
 
 
-def prepare_maps(cfg, settings_list, out_dir, *, progress=True):
+def fold_assignment(names, folds, seed):
+    """Deal walk names into ``folds`` folds of sizes differing by at most
+    one: fold ``i`` of the ``i``-th name in a permutation of the sorted
+    names drawn with ``default_rng(seed)``. Returns dict name -> fold."""
+    names = sorted(set(names))
+    order = np.random.default_rng(int(seed)).permutation(len(names))
+    return {names[j]: int(i % folds) for i, j in enumerate(order)}
+
+
+def _survey_walks(cfg):
+    from .walkset import find_walks
+
+    return find_walks(cfg.survey, split=cfg.split, part="survey" if cfg.split else None)
+
+
+def prepare_maps(cfg, settings_list, out_dir, *, progress=True, fold_of=None):
     """Build (or reuse from ``out_dir/maps``) one map per distinct map
-    setting. Returns dict: json of map settings -> map path."""
-    out = {}
-    distinct = []
+    setting, and with ``fold_of`` (dict survey walk name -> fold) one per
+    setting and fold, from the survey walks outside that fold.
+
+    Returns
+    -------
+    dict: (json of map settings, fold or None) -> map path
+    """
+    distinct = {}
     for s in settings_list:
         m, _, _ = split_settings(s)
-        k = json.dumps(m, sort_keys=True)
-        if k not in out:
-            out[k] = None
-            distinct.append(m)
-    for m in distinct:
-        k = json.dumps(m, sort_keys=True)
-        if not m and cfg.map is not None:
-            out[k] = cfg.map
-            continue
-        path = Path(out_dir) / "maps" / f"{_map_key(cfg, m)}.map"
-        if not path.exists():
-            from fingerprint.mapfile import save_map
+        distinct.setdefault(json.dumps(m, sort_keys=True), m)
+    folds = sorted(set(fold_of.values())) if fold_of else [None]
+    out = {}
+    survey = None
+    for k, m in distinct.items():
+        for fold in folds:
+            if not m and cfg.map is not None and fold is None:
+                out[(k, None)] = cfg.map
+                continue
+            path = Path(out_dir) / "maps" / f"{_map_key(cfg, m, fold)}.map"
+            if not path.exists():
+                from fingerprint.mapfile import save_map
 
-            from .mapbuild import build_floor_map
-            from .site import load_site
-            from .walkset import find_walks
+                from .mapbuild import build_floor_map
+                from .site import load_site
 
-            site = load_site(cfg.site)
-            survey = find_walks(cfg.survey, split=cfg.split, part="survey" if cfg.split else None)
-            kw = {}
-            if "map_resolution_m" in m:
-                kw["resolution_m"] = float(m["map_resolution_m"])
-            if "map_kernel" in m:
-                kw["kernel"] = str(m["map_kernel"])
-            if "map_n_basis" in m:
-                kw["kernel_params"] = {"n_basis": int(m["map_n_basis"])}
-            fmap = build_floor_map(site, cfg.floor, survey, seed=cfg.seed, progress=progress, **kw)
-            save_map(path, fmap)
-        out[k] = path
+                if survey is None:
+                    survey = _survey_walks(cfg)
+                train = survey if fold is None else [w for w in survey if fold_of[w.name] != fold]
+                kw = {}
+                if "map_resolution_m" in m:
+                    kw["resolution_m"] = float(m["map_resolution_m"])
+                if "map_kernel" in m:
+                    kw["kernel"] = str(m["map_kernel"])
+                if "map_n_basis" in m:
+                    kw["kernel_params"] = {"n_basis": int(m["map_n_basis"])}
+                fmap = build_floor_map(load_site(cfg.site), cfg.floor, train, seed=cfg.seed, progress=progress, **kw)
+                save_map(path, fmap)
+            out[(k, fold)] = path
     return out
 
 
@@ -662,7 +707,16 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     dup = sorted({n for n in names if names.count(n) > 1})
     if dup:
         raise ConfigError(f"{cfg.path}: walks with the same name in different folders: {dup}")
-    maps = prepare_maps(cfg, settings_list, out, progress=progress)
+    fold_of = None
+    if cfg.folds:
+        fold_of = fold_assignment([w.name for w in _survey_walks(cfg)], cfg.folds, cfg.seed)
+        outside = sorted(set(names) - set(fold_of))
+        if outside:
+            raise ConfigError(f"{cfg.path}: folds = {cfg.folds} scores survey walks only (each on the map built "
+                              f"without it); not survey walks: {outside[:5]}{' ...' if len(outside) > 5 else ''}")
+        if len(fold_of) < cfg.folds:
+            raise ConfigError(f"{cfg.path}: folds = {cfg.folds} but only {len(fold_of)} survey walks")
+    maps = prepare_maps(cfg, settings_list, out, progress=progress, fold_of=fold_of)
     by_name = {w.name: w for w in walks}
     data = cfg.data_identity()
     if cfg.preset != "default":
@@ -672,7 +726,10 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     for t in tasks:
         m, _, _ = split_settings(t["settings"])
         w = by_name[t["walk"]]
-        t["map_path"] = str(maps[json.dumps(m, sort_keys=True)])
+        fold = None if fold_of is None else fold_of[t["walk"]]
+        if fold is not None:
+            t["fold"] = fold
+        t["map_path"] = str(maps[(json.dumps(m, sort_keys=True), fold)])
         t["walk_files"] = {"name": w.name, "log": str(w.log),
                            "checkpoints": None if w.checkpoints is None else str(w.checkpoints),
                            "track": None if w.track is None else str(w.track)}
@@ -687,7 +744,9 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     write_json_atomic(out / "sweep.json", {
         "config": cfg.path, "mode": cfg.mode, "search": cfg.search, "seed": cfg.seed, "seeds": cfg.seeds,
         "metric": cfg.metric, "settings": settings_list, "walks": names, "counts": counts,
-        "maps": {k: str(v) for k, v in maps.items()}, "ranking": ranking,
+        "folds": cfg.folds, "fold_of": fold_of,
+        "maps": [{"map_settings": json.loads(k), "fold": f, "path": str(v)} for (k, f), v in maps.items()],
+        "ranking": ranking,
     })
     _sweep_report(out / "report.html", cfg, ranking, records, counts)
     return {"counts": counts, "ranking": ranking,
@@ -717,7 +776,10 @@ def _sweep_report(path, cfg, ranking, records, counts):
         secs.append(R.Section("Settings compared", R.img_tag(R.figure_to_base64(fig), "ranking")))
     secs.append(R.Section("Sweep", R.html_table(["item", "value"], [
         ["config", cfg.path], ["mode", cfg.mode], ["search", cfg.search], ["root seed", cfg.seed],
-        ["seeds per settings and walk", cfg.seeds], ["runs done now / already stored / total",
+        ["seeds per settings and walk", cfg.seeds],
+        ["cross-validation", f"{cfg.folds} folds of the survey walks (each scored on the map built without it)"
+         if cfg.folds else "no (one map for every walk)"],
+        ["runs done now / already stored / total",
                                                       f"{counts['done']} / {counts['skipped']} / {counts['total']}"],
         ["runs in this table", len(records)]])))
     secs.append(R.Section("Cautions", "<ul><li>The intervals resample runs (walks x seeds) with replacement; runs of "

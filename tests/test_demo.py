@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from fingerprint.errors import ConfigError
 from mapping.cli import main
 from mapping.metrics import SUMMARY_KEYS
 
@@ -172,6 +173,53 @@ def test_sweep_cli_on_the_demo_map_and_resume(demo, tmp_path, capsys):
     assert all(float(r["median_error_m"]) >= 0 for r in rows)
     rc = main(["sweep", str(cfg), "--out", str(tmp_path / "sw"), "--no-progress"])
     assert rc == 0 and "0 done now, 4 already stored" in capsys.readouterr().out
+
+
+def test_sweep_cross_validation_scores_each_survey_walk_on_a_map_without_it(demo, tmp_path):
+    """folds = 2 on the demo's survey walks: one map per fold, built from
+    the other fold's walks only, and every walk scored on its fold's map."""
+    from mapping.sweep import load_sweep_config, run_sweep
+
+    out, _ = demo
+    survey = out / "sim" / "T" / "survey"
+    cfg = tmp_path / "cv.toml"
+    cfg.write_text(textwrap.dedent(f"""
+        [sweep]
+        seeds = 1
+        seed = 2
+        folds = 2
+        [data]
+        walks = ["{survey}"]
+        site = "{TINY / 'site.json'}"
+        floor = "T"
+        survey = ["{survey}"]
+        [grid]
+        use_field = [true, false]
+        n_particles = [300]
+    """), encoding="utf-8")
+    res = run_sweep(load_sweep_config(cfg), tmp_path / "cv", progress=False)
+    names = sorted(p.name.split(".")[0] for p in survey.glob("*.log.csv*"))
+    assert res["counts"]["total"] == 2 * len(names)
+    info = json.loads((tmp_path / "cv" / "sweep.json").read_text())
+    fold_of = info["fold_of"]
+    assert sorted(fold_of) == names and set(fold_of.values()) == {0, 1}
+    assert len(info["maps"]) == 2 and sorted(m["fold"] for m in info["maps"]) == [0, 1]
+    from fingerprint.mapfile import load_map
+
+    for m in info["maps"]:
+        built_from = sorted(w["name"] for w in load_map(m["path"]).meta["survey_walks"])
+        assert built_from == sorted(n for n in names if fold_of[n] != m["fold"])
+    with open(tmp_path / "cv" / "results.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 2 * len(names)
+    assert all(int(r["fold"]) == fold_of[r["walk"]] for r in rows)
+    assert all(float(r["median_error_m"]) >= 0 for r in rows)
+    # a test walk cannot be scored by cross-validation over the survey walks
+    test_walk = sorted((out / "sim" / "T" / "test").glob("*.log.csv*"))[0]
+    bad = tmp_path / "bad.toml"
+    bad.write_text(cfg.read_text().replace(f'walks = ["{survey}"]', f'walks = ["{test_walk}"]'), encoding="utf-8")
+    with pytest.raises(ConfigError, match="survey walks only"):
+        run_sweep(load_sweep_config(bad), tmp_path / "bad", progress=False)
 
 
 def test_evaluate_bad_walk_stops_or_is_skipped(demo, tmp_path, capsys):

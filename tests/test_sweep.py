@@ -107,6 +107,27 @@ def test_config_errors(tmp_path):
     with pytest.raises(ConfigError, match="low must be"):
         parse_sweep_config({"data": {"walks": ["w"], "map": "m"}, "sweep": {"search": "random"},
                             "random": {"x": {"low": 2, "high": 1}}})
+    # cross-validation: K >= 2, maps built per fold (so no fixed map)
+    for bad in (1, -2, 2.5, True):
+        with pytest.raises(ConfigError, match="folds must be"):
+            parse_sweep_config({"data": {"walks": ["w"], "map": "m"}, "sweep": {"folds": bad}})
+    with pytest.raises(ConfigError, match="needs \\[data\\] site, floor and survey"):
+        parse_sweep_config({"data": {"walks": ["w"], "map": "m"}, "sweep": {"folds": 3}})
+    with pytest.raises(ConfigError, match="remove \\[data\\] map"):
+        parse_sweep_config({"data": {"walks": ["w"], "map": "m", "site": "s.json", "floor": "F", "survey": ["w"]},
+                            "sweep": {"folds": 3}})
+
+
+def test_fold_assignment_balanced_seeded_and_order_free():
+    from mapping.sweep import fold_assignment
+
+    names = [f"walk_{i:03d}" for i in range(23)]
+    a = fold_assignment(names, 4, seed=5)
+    assert set(a) == set(names)
+    sizes = np.bincount(list(a.values()), minlength=4)
+    assert sizes.max() - sizes.min() <= 1 and sizes.sum() == 23  # 6, 6, 6, 5
+    assert fold_assignment(names[::-1], 4, seed=5) == a  # input order does not matter
+    assert fold_assignment(names, 4, seed=6) != a  # the seed does
 
 
 def test_tasks_keys_and_spawned_seeds():

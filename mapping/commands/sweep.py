@@ -14,6 +14,8 @@ CONFIG.toml (paths relative to it):
   search = "grid"          # grid | random (with samples = N)
   seeds = 2                # seeds per settings and walk
   seed = 0                 # root seed (runs get SeedSequence(seed).spawn(seeds))
+  folds = 0                # K >= 2: cross-validate on the survey walks (needs site, floor,
+                           # survey; each survey walk scored on a map built without its fold)
   [data]
   walks = ["sim/G/test"]
   map = "G.map"            # or site = ..., floor = ..., survey = [...] to build maps
