@@ -482,15 +482,21 @@ def rank_settings(records, *, metric="median_error_m", n_boot=2000, level=0.95, 
     -------
     list of dict, best first: ``rank``, ``settings`` (label), ``runs``,
     ``mean``, ``ci_low``, ``ci_high``, ``best_overlap`` (whether the CI
-    overlaps that of the best)
+    overlaps that of the best), and over every scored checkpoint of every
+    run (the ``errors_m`` lists; None where runs have none)
+    ``checkpoints``, ``pooled_median_m``, ``pooled_p95_m``: the figures
+    ``lodemap evaluate`` reports for one run
     """
     rng = np.random.default_rng(0) if rng is None else rng
     groups = {}
+    errors = {}
     for r in records:
         v = r["result"].get(metric)
         if v is None or not np.isfinite(v):
             continue
-        groups.setdefault(json.dumps(r["settings"], sort_keys=True), []).append(float(v))
+        skey = json.dumps(r["settings"], sort_keys=True)
+        groups.setdefault(skey, []).append(float(v))
+        errors.setdefault(skey, []).extend(r["result"].get("errors_m") or [])
     if records and not groups:
         raise ConfigError(f"no run has a finite value of {metric!r} to rank by")
     out = []
@@ -500,13 +506,19 @@ def rank_settings(records, *, metric="median_error_m", n_boot=2000, level=0.95, 
         idx = rng.integers(0, vals.size, size=(int(n_boot), vals.size))
         boots = vals[idx].mean(axis=1)
         lo, hi = np.quantile(boots, [a, 1 - a])
+        e = np.asarray(errors[skey], float)
+        e = e[np.isfinite(e)]
+        pooled = (float(np.median(e)), float(np.percentile(e, 95))) if e.size else (None, None)
         out.append({"settings": settings_label(json.loads(skey)), "runs": int(vals.size), "mean": float(vals.mean()),
-                    "ci_low": float(lo), "ci_high": float(hi)})
+                    "ci_low": float(lo), "ci_high": float(hi), "checkpoints": int(e.size),
+                    "pooled_median_m": pooled[0], "pooled_p95_m": pooled[1]})
     out.sort(key=lambda d: d["mean"])
     for i, d in enumerate(out):
         d["rank"] = i + 1
         d["best_overlap"] = bool(d["ci_low"] <= out[0]["ci_high"])
-    return [{k: d[k] for k in ("rank", "settings", "runs", "mean", "ci_low", "ci_high", "best_overlap")} for d in out]
+    keys = ("rank", "settings", "runs", "mean", "ci_low", "ci_high", "best_overlap", "checkpoints",
+            "pooled_median_m", "pooled_p95_m")
+    return [{k: d[k] for k in keys} for d in out]
 
 
 # -- the real runs: localisation of one walk with one settings -------------------
@@ -739,7 +751,8 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     records = [store.load(k) for k in store.keys() if k in wanted]
     write_tidy_csv(out / "results.csv", records)
     ranking = rank_settings(records, metric=cfg.metric, rng=np.random.default_rng(cfg.seed))
-    cols = ["rank", "settings", "runs", "mean", "ci_low", "ci_high", "best_overlap"]
+    cols = ["rank", "settings", "runs", "mean", "ci_low", "ci_high", "best_overlap", "checkpoints", "pooled_median_m",
+            "pooled_p95_m"]
     write_text_atomic(out / "ranking.csv", _csv_text(cols, [[r[c] for c in cols] for r in ranking]))
     write_json_atomic(out / "sweep.json", {
         "config": cfg.path, "mode": cfg.mode, "search": cfg.search, "seed": cfg.seed, "seeds": cfg.seeds,
@@ -757,8 +770,10 @@ def _sweep_report(path, cfg, ranking, records, counts):
     from . import report as R
 
     secs = [R.Section("Ranking", R.html_table(
-        ["rank", "settings", "runs", f"mean {cfg.metric}", "95 % CI low", "95 % CI high", "CI overlaps best"],
-        [[r["rank"], r["settings"], r["runs"], r["mean"], r["ci_low"], r["ci_high"], r["best_overlap"]]
+        ["rank", "settings", "runs", f"mean {cfg.metric}", "95 % CI low", "95 % CI high", "CI overlaps best",
+         "checkpoints", "median of all (m)", "p95 of all (m)"],
+        [[r["rank"], r["settings"], r["runs"], r["mean"], r["ci_low"], r["ci_high"], r["best_overlap"],
+          r["checkpoints"], r["pooled_median_m"], r["pooled_p95_m"]]
          for r in ranking]))]
     if ranking:
         fig = R._new_figure((8.0, 1.2 + 0.35 * len(ranking)))

@@ -226,6 +226,22 @@ def test_tidy_csv_and_ranking(tmp_path):
     json.dumps(rank)
 
 
+def test_ranking_pools_every_checkpoint_error():
+    # two runs of one setting with 3 and 2 scored checkpoints; hand-worked:
+    # all five errors sorted 0.2 0.5 1.0 2.0 4.0 -> median 1.0; p95 with
+    # linear interpolation (numpy's default) at rank 0.95 * 4 = 3.8:
+    # 2.0 + 0.8 * (4.0 - 2.0) = 3.6
+    recs = [{"settings": {"n_particles": 10}, "result": {"median_error_m": 1.0, "errors_m": [0.5, 1.0, 4.0]}},
+            {"settings": {"n_particles": 10}, "result": {"median_error_m": 1.1, "errors_m": [0.2, 2.0]}},
+            {"settings": {"n_particles": 20}, "result": {"median_error_m": 0.3}}]
+    rank = {r["settings"]: r for r in rank_settings(recs, rng=np.random.default_rng(0))}
+    r = rank["n_particles=10"]
+    assert r["checkpoints"] == 5 and r["pooled_median_m"] == pytest.approx(1.0)
+    assert r["pooled_p95_m"] == pytest.approx(3.6)
+    none = rank["n_particles=20"]  # a run without error lists has no pooled figures
+    assert none["checkpoints"] == 0 and none["pooled_median_m"] is None and none["pooled_p95_m"] is None
+
+
 def test_run_sweep_end_to_end_with_a_fake_run(tmp_path):
     from mapping.sweep import run_sweep
 
