@@ -50,7 +50,9 @@ scale ends on the lower bound that the basis can resolve (about
 ``3 / omega_max``), the data ask for finer detail than the basis holds; the
 fit is then done once more on tiles of ``fine_tile_basis`` functions,
 starting from the coarse optimum (``optim_info_["refined_from"]`` records
-the coarse fit). Near steel the field changes by tens of µT within a metre,
+the coarse fit), unless its statistics would need more than
+``refine_max_gb`` of memory (a floor of hundreds of metres is hundreds of
+fine tiles). Near steel the field changes by tens of µT within a metre,
 which one 1024-function box over a 60 m floor cannot follow. The tiles'
 factorisations run on ``n_jobs`` threads (default: one per core).
 
@@ -172,6 +174,7 @@ class _ReducedRankGP(_Fitted):
         "tile_basis",
         "refine",
         "fine_tile_basis",
+        "refine_max_gb",
         "n_jobs",
     )
 
@@ -201,6 +204,7 @@ class _ReducedRankGP(_Fitted):
         tile_basis=256,
         refine=True,
         fine_tile_basis=1024,
+        refine_max_gb=4.0,
         n_jobs=None,
     ):
         self.n_basis = n_basis
@@ -223,6 +227,7 @@ class _ReducedRankGP(_Fitted):
         self.tile_basis = tile_basis
         self.refine = refine
         self.fine_tile_basis = fine_tile_basis
+        self.refine_max_gb = refine_max_gb
         self.n_jobs = n_jobs
 
     # -- to be provided by subclasses ----------------------------------------
@@ -298,6 +303,8 @@ class _ReducedRankGP(_Fitted):
             if self.optimize:
                 hyper, info = self._optimise(parts, hyper)
                 fine = self._refined_boxes(lo, hi, parts, hyper, info)
+                if fine is not None:
+                    fine = self._within_budget(fine, xy, b, codes, rotations, n_walks, fold, info)
                 if fine is not None:
                     # the data ask for finer detail than the basis resolves:
                     # again with finer tiles, from the coarse optimum
@@ -387,6 +394,35 @@ class _ReducedRankGP(_Fitted):
         if self._length_bounds(tb)[0] * 1.2 > lo_l:
             return None
         return boxes
+
+    def _within_budget(self, boxes, xy, b, codes, rotations, n_walks, fold, info):
+        """``boxes``, or None when the refined fit would need more than
+        ``refine_max_gb`` of memory (then ``info["refine_skipped"]`` says
+        why). The estimate: the statistics of the fullest fine tile, built
+        and measured, times the number of tiles holding samples, times 1.5
+        for the factors kept beside them. A large floor (a 300 x 230 m
+        shopping-centre level is 300 tiles of 16 m) would otherwise need
+        tens of GB."""
+        counts = [int(np.all((xy >= elo) & (xy <= ehi), axis=1).sum()) for elo, ehi in boxes]
+        used = [i for i, c in enumerate(counts) if c >= 20]
+        if not used:
+            return boxes
+        i = max(used, key=lambda i: counts[i])
+        probe = type(self)(**{k: getattr(self, k) for k in self._param_names})
+        probe.tiles = "never"
+        elo, ehi = boxes[i]
+        sel = np.all((xy >= elo) & (xy <= ehi), axis=1)
+        tb = BoxBasis.covering(elo, ehi, margin_m=float(self.margin_m), n_basis=int(self.fine_tile_basis))
+        probe._setup_part(tb, xy, b, codes, rotations, n_walks, sel, (elo, ehi), fold)
+        per_tile = sum(_stats_nbytes(st) for st in [probe.stats_] + list(probe.fold_stats_ or []))
+        del probe
+        need_gb = 1.5 * per_tile * len(used) / 1e9
+        if need_gb <= float(self.refine_max_gb):
+            return boxes
+        info["refine_skipped"] = {
+            "reason": "memory", "estimated_gb": float(f"{need_gb:.4g}"), "budget_gb": float(self.refine_max_gb),
+            "tiles": len(used), "fine_tile_basis": int(self.fine_tile_basis)}
+        return None
 
     # Posterior covariance of the weights: formed from the Cholesky factor
     # on first use (a fit followed only by mean predictions never needs it).
@@ -864,6 +900,12 @@ class _ReducedRankGP(_Fitted):
         }
 
 
+def _stats_nbytes(st):
+    """Bytes held by the arrays of one SufficientStats."""
+    arrays = [st.gff, st.bf, st.gfo, st.goo, st.bo, st.yy, st.n] + list(st.gff_blocks or [])
+    return int(sum(a.nbytes for a in arrays if a is not None))
+
+
 class CurlFreeGP(_ReducedRankGP):
     """Reduced-rank curl-free GP (see module docstring).
 
@@ -885,6 +927,13 @@ class CurlFreeGP(_ReducedRankGP):
     tiles : {"auto", "never", "always"}, split a large floor into tiles
     tile_m, tile_overlap_m : float, tile core size and overlap each side
     tile_basis : int, basis functions per block in each tile
+    refine : bool, refit on finer tiles when the length scale ends on the
+        bound the basis resolves (module docstring)
+    fine_tile_basis : int, basis functions per block of those finer tiles
+    refine_max_gb : float, no refinement when its statistics would need
+        more memory than this (estimated from the fullest fine tile;
+        ``optim_info_["refine_skipped"]`` then records it)
+    n_jobs : int or None, threads for the tiles (None: one per core)
     """
 
     name = "curl-free"

@@ -406,6 +406,34 @@ def test_refinement_resolves_what_the_coarse_basis_cannot():
     assert fine.summary()["basis"]["n_basis_per_tile"] == 400
 
 
+def test_refinement_skipped_over_its_memory_budget():
+    """The refinement of the test above, with a memory budget it exceeds:
+    the coarse fit is kept (the same map as refine=False) and the skip is
+    recorded. The estimate (fullest fine tile's statistics times tiles,
+    times 1.5) bounds what the refined fit really holds in statistics and
+    is within a factor 2 of it (tiles of similar fill; common practice, no
+    source)."""
+    from mapping.mapfit import _stats_nbytes
+
+    rng = np.random.default_rng(21)
+    box = (24.0, 16.0)
+    field = _steel_field(rng, box)
+    xy = rng.uniform([0, 0], box, size=(4000, 2))
+    b = field(xy) + rng.normal(size=(4000, 3)) * 0.3
+    kw = dict(n_basis=144, tile_m=8.0, tile_overlap_m=2.0, fine_tile_basis=400, domain=((0, 0), box),
+              between_walk=False)
+    coarse = CurlFreeGP(refine=False, **kw).fit(xy, b)
+    capped = CurlFreeGP(refine_max_gb=1e-3, **kw).fit(xy, b)
+    fine = CurlFreeGP(**kw).fit(xy, b)
+    skip = capped.optim_info_["refine_skipped"]
+    assert "refined_from" not in capped.optim_info_ and "refined_from" in fine.optim_info_
+    assert skip["reason"] == "memory" and skip["estimated_gb"] > skip["budget_gb"] == 1e-3
+    assert skip["tiles"] == len(fine.parts_) == 6
+    np.testing.assert_allclose(capped.predict(xy[:100], return_var=False), coarse.predict(xy[:100], return_var=False))
+    held = sum(_stats_nbytes(p.stats_) for p in fine.parts_) / 1e9
+    assert held <= skip["estimated_gb"] / 1.5 * 1.001 and held >= 0.5 * skip["estimated_gb"] / 1.5
+
+
 def test_no_refinement_when_the_basis_resolves_the_field(survey):
     """A smooth field whose length scale the box resolves keeps one box;
     n_jobs does not change the result."""

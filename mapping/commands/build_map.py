@@ -92,6 +92,11 @@ def run(args):
         print("held-out walks (group k-fold): RMSE b_x,b_y,b_up = "
               + ", ".join(f"{v:.2f}" for v in cal["heldout_rmse_ut"]) + " µT; between-walk sd = "
               + ", ".join(f"{v:.2f}" for v in model.get("between_walk_sd_ut", [])) + " µT")
+    skipped = (model.get("optimisation") or {}).get("refine_skipped")
+    if skipped:
+        print(f"note: the fitted length scale ends on the shortest the basis resolves; a refit on "
+              f"{skipped['tiles']} finer tiles would need about {skipped['estimated_gb']:g} GB (budget "
+              f"{skipped['budget_gb']:g} GB), so the map keeps the coarser basis", file=sys.stderr)
     other = fmap.meta.get("walks_marked_other_floor", [])
     if other:
         print(f"warning: {len(other)} survey walks are marked as recorded on another floor than {fmap.floor}: "

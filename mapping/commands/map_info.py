@@ -52,6 +52,10 @@ def run(args):
         rf = opt["refined_from"]
         line += (f" (refined: the fit on {rf['tiles']} part(s) ended on its bound, "
                  f"{rf['length_scale_bounds_m'][0]:.2f} m)")
+    if line and opt.get("refine_skipped"):
+        rs = opt["refine_skipped"]
+        line += (f" (the fit ended on this bound; not refined: {rs['tiles']} finer tiles would need about "
+                 f"{rs['estimated_gb']:g} GB, over the {rs['budget_gb']:g} GB budget)")
     if line:
         print(f"  basis                 {line}")
     if model.get("between_walk_sd_ut"):
