@@ -94,6 +94,15 @@ def test_map_info_query_and_image(b1_map, tmp_path, capsys):
     basis = load_map(b1_map).meta["model"]["basis"]
     assert f"{basis['tiles']} tiles of" in text and "shortest length scale it resolves" in text
     fmap = load_map(b1_map)
+    # a fit whose refinement was skipped for memory says so
+    from fingerprint.mapfile import save_map
+
+    skipped = load_map(b1_map)
+    skipped.meta["model"]["optimisation"]["refine_skipped"] = {
+        "reason": "memory", "estimated_gb": 22.69, "budget_gb": 4.0, "tiles": 88, "fine_tile_basis": 1024}
+    save_map(tmp_path / "skipped.map", skipped)
+    assert main(["map-info", str(tmp_path / "skipped.map")]) == 0
+    assert "not refined: 88 finer tiles would need about 22.69 GB, over the 4 GB budget" in capsys.readouterr().out
     pts = tmp_path / "pts.csv"
     xy = np.array([[50.0, 60.0], [120.5, 80.25], [-500.0, 0.0]])
     pts.write_text("x,y,label\n" + "".join(f"{x},{y},p\n" for x, y in xy))
