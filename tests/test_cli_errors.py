@@ -61,3 +61,23 @@ def test_image_resolution_must_be_positive(small_map, tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "--dpi" in err[0]
     assert not out.exists()
+
+
+@pytest.mark.parametrize("item, words", [
+    ("feld=1", "unknown filter settings ['feld']"),
+    ("field_temper=abc", "field_temper: expected a number > 0"),
+    ("field_temper", "expected NAME=VALUE"),
+])
+def test_bench_real_set_checked_before_any_work(tmp_path, capsys, item, words):
+    # checked before the site folder is even looked at (it does not exist)
+    assert main(["bench", "filter", "--real", str(tmp_path / "nowhere"), "--real-set", item]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and words in err[0], err
+
+
+def test_settings_changes_read_as_json_where_they_parse():
+    from mapping.benchmarks.filter import parse_settings_changes
+
+    got = parse_settings_changes(["field_temper=0.1", "use_field=false", "feature_set=full", "field_gate=null"],
+                                 option="--x")
+    assert got == {"field_temper": 0.1, "use_field": False, "feature_set": "full", "field_gate": None}

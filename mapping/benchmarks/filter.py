@@ -42,6 +42,29 @@ def add_arguments(parser):
     parser.add_argument("--real-cache", default=None, metavar="DIR",
                         help="where --real keeps its maps (default SITE_DIR/.lodemap_cache)")
     parser.add_argument("--real-floors", default=None, metavar="F[,F...]", help="floors for --real (default all)")
+    parser.add_argument("--real-set", action="append", default=[], metavar="NAME=VALUE",
+                        help="for --real: change a filter setting of the field variant (repeatable; e.g. "
+                             "field_temper=0.1, feature_set=full; a FilterSettings field name); the no-field "
+                             "variant is unchanged")
+
+
+def parse_settings_changes(items, *, option):
+    """``["name=value", ...]`` -> dict; values read as JSON where they parse
+    (numbers, true/false, null), else kept as text."""
+    import json
+
+    from fingerprint.errors import ConfigError
+
+    out = {}
+    for item in items:
+        name, sep, value = str(item).partition("=")
+        if not sep or not name.strip():
+            raise ConfigError(f"{option}: expected NAME=VALUE, got {item!r}")
+        try:
+            out[name.strip()] = json.loads(value)
+        except json.JSONDecodeError:
+            out[name.strip()] = value
+    return out
 
 
 def synthetic_floor(*, nx=61, ny=41, spacing_m=1.0, seed=0):
@@ -144,7 +167,11 @@ def run(args):
         except ValueError:
             raise ConfigError(f"--real-seeds: expected comma-separated integers, got {args.real_seeds!r}") from None
         floors = None if not args.real_floors else [f.strip() for f in args.real_floors.split(",") if f.strip()]
-        run_real(args.real, floors=floors, seeds=seeds or (0,), cache_dir=args.real_cache)
+        changes = parse_settings_changes(args.real_set, option="--real-set")
+        FilterSettings.from_dict({**FilterSettings().to_dict(), **changes})  # names and values checked up front
+        label = "field" + "".join(f", {k}={v}" for k, v in changes.items())
+        variants = {"no-field": {"use_field": False}, label: changes}
+        run_real(args.real, floors=floors, seeds=seeds or (0,), cache_dir=args.real_cache, variants=variants)
         return 0
     try:
         counts = [int(x) for x in str(args.particles).split(",") if x.strip()]
