@@ -204,7 +204,7 @@ class _ReducedRankGP(_Fitted):
         tile_basis=256,
         refine=True,
         fine_tile_basis=1024,
-        refine_max_gb=4.0,
+        refine_max_gb=6.0,
         n_jobs=None,
     ):
         self.n_basis = n_basis
