@@ -29,7 +29,7 @@ sum of four terms ``cos(p t) cos(q u)`` with ``p = |j_x - j_x'|`` or
 
 - ``sum_i f_j(x_i) f_k(x_i)`` over many samples needs only the table
   ``sum_i cos(p t_i) cos(q u_i)`` for ``p <= 2 J_x, q <= 2 J_y``
-  (:meth:`BoxBasis.cos_table`, ``O(N J_x J_y)``), then a gather
+  (:meth:`BoxBasis.cos_table`, ``O(N J_x J_y)``), then gathers
   (:meth:`BoxBasis.gram`, ``O(m^2)``), instead of ``O(N m^2)``;
 - weighted sums ``sum_i w_i f_j(x_i)`` need ``sum_i w_i X(a t_i) Y(b u_i)``
   (:meth:`BoxBasis.trig_tables`);
@@ -292,7 +292,9 @@ class BoxBasis:
     def _pair_index(self):
         """Flat indices into a (2 J_x + 1, 2 J_y + 1) table of the four
         terms of every product ``j, k``: (dd, ds, sd, ss), ``d`` the
-        difference and ``s`` the sum of mode numbers (x first)."""
+        difference and ``s`` the sum of mode numbers (x first). Built on
+        first use by :meth:`collapse_quadratic` (map variance); the Gram
+        does without it."""
         q = 2 * self.n_modes[1] + 1
         # int32 (the table is small), and the row factor q applied to the two
         # x terms once rather than to each of the four indices
@@ -336,17 +338,44 @@ class BoxBasis:
             out += h.cx.T @ h.cy
         return out
 
+    @cached_property
+    def _x_groups(self):
+        """Basis functions grouped by x mode number: for each ``a = 1 ..
+        J_x`` the indices of the functions with ``j_x = a`` (possibly none),
+        and each function's flat position ``(j_x - 1) J_y + j_y - 1`` in
+        the full (J_x, J_y) grid of modes."""
+        jx, jy = self.n_modes
+        order = np.argsort(self.jx, kind="stable")
+        cut = np.searchsorted(self.jx[order], np.arange(1, jx + 2))
+        rows = [order[cut[a]:cut[a + 1]] for a in range(jx)]
+        return rows, (self.jx - 1) * jy + (self.jy - 1)
+
     def gram(self, table, kind, sign=1.0):
         """``sum_i f_j(x_i) f_k(x_i)`` (m, m) for basis functions of
-        ``kind`` from :meth:`cos_table` of the samples."""
-        flat = np.asarray(table, float).ravel()
-        # signs are +-1 and the first is +1 (:meth:`_signs`): add or subtract
-        # each gathered term in place (one (m, m) result and one temporary)
-        signs, pairs = self._signs(kind), self._pair_index
-        g = flat[pairs[0]]
-        for e, ix in zip(signs[1:], pairs[1:]):
-            (np.add if e > 0 else np.subtract)(g, flat[ix], out=g)
-        g = g.reshape(self.n, self.n)
+        ``kind`` from :meth:`cos_table` of the samples.
+
+        Product to sum along y first: ``H[p, b, b'] = T[p, |b - b'|] +- T[p,
+        b + b']`` for every row ``p`` of the table (small: (2 J_x + 1, J_y,
+        J_y)); then along x, one block of rows per x mode ``a``:
+        ``G[j, k] = H[|a - a_k|, b_j, b_k] +- H[a + a_k, b_j, b_k]``, each
+        block gathered from whole (J_y)-rows of ``H`` and its columns picked
+        once. No (m, m) index array is built."""
+        t = np.asarray(table, float)
+        ex, ey = (-1.0 if k == "s" else 1.0 for k in KINDS[kind])
+        jx, jy = self.n_modes
+        b = np.arange(jy)
+        h = t[:, np.abs(b[:, None] - b[None, :])]
+        (np.add if ey > 0 else np.subtract)(h, t[:, b[:, None] + b[None, :] + 2], out=h)
+        a = np.arange(jx)
+        groups, colpos = self._x_groups
+        g = np.empty((self.n, self.n))
+        for i, rows in enumerate(groups):
+            if rows.size == 0:
+                continue
+            bj = self.jy[rows] - 1
+            d = h[np.abs(i - a)][:, bj, :]  # (J_x, rows, J_y): a_k, b_j, b_k
+            (np.add if ex > 0 else np.subtract)(d, h[i + a + 2][:, bj, :], out=d)
+            g[rows] = d.transpose(1, 0, 2).reshape(rows.size, jx * jy)[:, colpos]
         c = self.coef(kind, sign)
         g *= c[:, None]
         g *= 0.25 * c[None, :]
