@@ -239,10 +239,10 @@ def parse_sweep_config(raw, *, base=".", path="<sweep>"):
             )
     elif cfg.folds and (cfg.site is None or cfg.floor is None or not cfg.survey):
         raise ConfigError(f"{path}: folds = {cfg.folds} needs [data] site, floor and survey (one map is built per fold)")
-    if cfg.folds and cfg.map is not None:
-        raise ConfigError(f"{path}: folds = {cfg.folds} builds one map per fold from the survey walks; remove [data] map")
     elif cfg.map is None and (cfg.site is None or cfg.floor is None or not cfg.survey):
         raise ConfigError(f"{path}: [data] needs either map = FILE or site, floor and survey to build one")
+    if cfg.folds and cfg.map is not None:
+        raise ConfigError(f"{path}: folds = {cfg.folds} builds one map per fold from the survey walks; remove [data] map")
     return cfg
 
 
