@@ -361,7 +361,7 @@ class BoxBasis:
         block gathered from whole (J_y)-rows of ``H`` and its columns picked
         once. No (m, m) index array is built."""
         t = np.asarray(table, float)
-        ex, ey = (-1.0 if k == "s" else 1.0 for k in KINDS[kind])
+        _, ey, ex, _ = self._signs(kind)
         jx, jy = self.n_modes
         b = np.arange(jy)
         h = t[:, np.abs(b[:, None] - b[None, :])]
@@ -372,9 +372,9 @@ class BoxBasis:
         for i, rows in enumerate(groups):
             if rows.size == 0:
                 continue
-            bj = self.jy[rows] - 1
-            d = h[np.abs(i - a)][:, bj, :]  # (J_x, rows, J_y): a_k, b_j, b_k
-            (np.add if ex > 0 else np.subtract)(d, h[i + a + 2][:, bj, :], out=d)
+            bj = (self.jy[rows] - 1)[None, :]
+            d = h[np.abs(i - a)[:, None], bj]  # (J_x, rows, J_y): a_k, b_j, b_k
+            (np.add if ex > 0 else np.subtract)(d, h[(i + a + 2)[:, None], bj], out=d)
             g[rows] = d.transpose(1, 0, 2).reshape(rows.size, jx * jy)[:, colpos]
         c = self.coef(kind, sign)
         g *= c[:, None]
