@@ -54,6 +54,20 @@ def test_values_and_gradients_are_the_eigenfunctions(setup):
 
 
 @pytest.mark.parametrize("kind", ["phi", "dx", "dy"])
+def test_gram_of_a_tall_box_and_a_single_function(kind):
+    """The Gram, computed block by x mode, on a box taller than wide (more
+    modes along y than x) and on a basis of one function, against the
+    explicit product F^T F (definition of the Gram matrix)."""
+    rng = np.random.default_rng(3)
+    for hi, n in (((6.0, 30.0), 90), ((5.0, 5.0), 1)):
+        basis = BoxBasis.covering((0.0, 0.0), hi, margin_m=1.0, n_basis=n)
+        xy = rng.uniform([0, 0], hi, size=(700, 2))
+        f = _explicit(basis, xy)[kind]
+        np.testing.assert_allclose(basis.gram(basis.cos_table(xy), kind), f.T @ f, rtol=0,
+                                   atol=1e-12 * np.abs(f).max() ** 2 * xy.shape[0])
+
+
+@pytest.mark.parametrize("kind", ["phi", "dx", "dy"])
 @pytest.mark.parametrize("sign", [1.0, -1.0])
 def test_separable_sums_equal_explicit_products(setup, kind, sign):
     basis, xy, f, rng = setup
