@@ -115,3 +115,44 @@ def test_gradient_with_a_shared_factor_matches_finite_differences():
         num = (_linmodel.log_marginal(st, prior, noise * np.exp(e))
                - _linmodel.log_marginal(st, prior, noise * np.exp(-e))) / (2 * h)
         assert dn[j] == pytest.approx(num, rel=1e-5)
+
+
+def test_gradient_with_walk_offsets_on_single_group_blocks_matches_finite_differences():
+    # curl-free model, walk offsets in a device frame turned about the
+    # vertical only: the horizontal and vertical blocks stay apart, each with
+    # one noise group, so the gradient takes the diagonal-of-the-inverse path
+    # (the trace identity in log_marginal_and_grad); against central
+    # differences of the log marginal likelihood (Bishop 2006 sec. 3.5)
+    rng = np.random.default_rng(11)
+    n = 240
+    xy = rng.uniform([0, 0], [9, 7], size=(n, 2))
+    g = rng.integers(0, 4, n)
+    rot = Rotation.from_euler("z", rng.uniform(-np.pi, np.pi, (n, 1))).as_matrix()
+    b = rng.normal(size=(n, 3)) * 2 + [10, -5, 30]
+    model = CurlFreeGP(n_basis=36, optimize=False, between_walk=False, tiles="never", magnitude_ut=3.0,
+                       length_scale_m=1.5, noise_h_ut=0.6, noise_up_ut=0.8, constant_ut=40.0, offset_ut=1.0).fit(
+        xy, b, groups=g, rotations=rot)
+    st = _linmodel.accumulate_separable(model.basis_, model._kinds, model.idx_, xy, b, groups=g, rotations=rot,
+                                        n_walks=4, blocks=model._blocks(model.basis_.n))
+    parts, gffb = _linmodel._structure(st)
+    assert len(parts) == 2 and all(len(gb) == 1 for gb in gffb)  # the premise: two single-group blocks
+    prior = model._prior_var(model.hyper_)
+    noise = np.array([0.36, 0.64])
+    val, dp, dn, do = _linmodel.log_marginal_and_grad(st, prior, noise, 1.7)
+    assert val == pytest.approx(_linmodel.log_marginal(st, prior, noise, 1.7), rel=1e-10)
+    h = 1e-5
+    for k in rng.choice(prior.size, 8, replace=False):
+        e = np.zeros(prior.size)
+        e[k] = h
+        num = (_linmodel.log_marginal(st, prior * np.exp(e), noise, 1.7)
+               - _linmodel.log_marginal(st, prior * np.exp(-e), noise, 1.7)) / (2 * h)
+        assert dp[k] == pytest.approx(num, rel=1e-4, abs=1e-6)
+    for j in range(2):
+        e = np.zeros(2)
+        e[j] = h
+        num = (_linmodel.log_marginal(st, prior, noise * np.exp(e), 1.7)
+               - _linmodel.log_marginal(st, prior, noise * np.exp(-e), 1.7)) / (2 * h)
+        assert dn[j] == pytest.approx(num, rel=1e-5)
+    num = (_linmodel.log_marginal(st, prior, noise, 1.7 * np.exp(h))
+           - _linmodel.log_marginal(st, prior, noise, 1.7 * np.exp(-h))) / (2 * h)
+    assert do == pytest.approx(num, rel=1e-5)
