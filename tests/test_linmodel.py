@@ -14,6 +14,8 @@ import pytest
 from scipy.spatial.transform import Rotation
 from scipy.stats import multivariate_normal
 
+from _gradcheck import check_marginal_gradient
+
 from mapping import _linmodel
 from mapping.mapfit import CurlFreeGP, PerComponentGP
 
@@ -100,21 +102,7 @@ def test_gradient_with_a_shared_factor_matches_finite_differences():
                                         blocks=model._blocks(model.basis_.n))
     prior = model._prior_var(model.hyper_)
     noise = np.array([0.25, 0.49])
-    val, dp, dn, _ = _linmodel.log_marginal_and_grad(st, prior, noise)
-    assert val == pytest.approx(_linmodel.log_marginal(st, prior, noise), rel=1e-10)
-    h = 1e-5
-    for k in rng.choice(prior.size, 6, replace=False):
-        e = np.zeros(prior.size)
-        e[k] = h
-        num = (_linmodel.log_marginal(st, prior * np.exp(e), noise)
-               - _linmodel.log_marginal(st, prior * np.exp(-e), noise)) / (2 * h)
-        assert dp[k] == pytest.approx(num, rel=1e-4, abs=1e-6)
-    for j in range(2):
-        e = np.zeros(2)
-        e[j] = h
-        num = (_linmodel.log_marginal(st, prior, noise * np.exp(e))
-               - _linmodel.log_marginal(st, prior, noise * np.exp(-e))) / (2 * h)
-        assert dn[j] == pytest.approx(num, rel=1e-5)
+    check_marginal_gradient(st, prior, noise, 1.0, rng)
 
 
 def test_gradient_with_walk_offsets_on_single_group_blocks_matches_finite_differences():
@@ -138,21 +126,4 @@ def test_gradient_with_walk_offsets_on_single_group_blocks_matches_finite_differ
     assert len(parts) == 2 and all(len(gb) == 1 for gb in gffb)  # the premise: two single-group blocks
     prior = model._prior_var(model.hyper_)
     noise = np.array([0.36, 0.64])
-    val, dp, dn, do = _linmodel.log_marginal_and_grad(st, prior, noise, 1.7)
-    assert val == pytest.approx(_linmodel.log_marginal(st, prior, noise, 1.7), rel=1e-10)
-    h = 1e-5
-    for k in rng.choice(prior.size, 8, replace=False):
-        e = np.zeros(prior.size)
-        e[k] = h
-        num = (_linmodel.log_marginal(st, prior * np.exp(e), noise, 1.7)
-               - _linmodel.log_marginal(st, prior * np.exp(-e), noise, 1.7)) / (2 * h)
-        assert dp[k] == pytest.approx(num, rel=1e-4, abs=1e-6)
-    for j in range(2):
-        e = np.zeros(2)
-        e[j] = h
-        num = (_linmodel.log_marginal(st, prior, noise * np.exp(e), 1.7)
-               - _linmodel.log_marginal(st, prior, noise * np.exp(-e), 1.7)) / (2 * h)
-        assert dn[j] == pytest.approx(num, rel=1e-5)
-    num = (_linmodel.log_marginal(st, prior, noise, 1.7 * np.exp(h))
-           - _linmodel.log_marginal(st, prior, noise, 1.7 * np.exp(-h))) / (2 * h)
-    assert do == pytest.approx(num, rel=1e-5)
+    check_marginal_gradient(st, prior, noise, 1.7, rng, n_prior=8)
