@@ -401,27 +401,29 @@ class _Factor:
     def logdet(self):
         return float(sum(2.0 * np.sum(np.log(np.diag(c[0]))) for c in self.chols))
 
-    def inverse_blocks(self):
-        """The diagonal blocks of S^-1 (S^-1 is zero outside them)."""
+    def inverse_blocks(self, only=None):
+        """The diagonal blocks of S^-1 (S^-1 is zero outside them); with
+        ``only`` (one bool per block) None for the blocks not asked for."""
         done = {}  # a shared factor is inverted once (callers only read the blocks)
-        for c in self.chols:
-            if id(c) not in done:
+        for i, c in enumerate(self.chols):
+            if (only is None or only[i]) and id(c) not in done:
                 done[id(c)] = _chol_inverse(c)
-        return [done[id(c)] for c in self.chols]
+        return [done.get(id(c)) if only is None or only[i] else None for i, c in enumerate(self.chols)]
 
-    def inverse_diagonals(self):
+    def inverse_diagonals(self, only=None):
         """The diagonals of the blocks of S^-1, from the inverse of each
         Cholesky factor alone (``diag(S^-1)_j = sum_i (L^-1)_ij^2``; LAPACK
-        ``dtrtri``, half the work of the full inverse)."""
+        ``dtrtri``, half the work of the full inverse); ``only`` as in
+        :meth:`inverse_blocks`."""
         done = {}
-        for c in self.chols:
-            if id(c) not in done:
+        for i, c in enumerate(self.chols):
+            if (only is None or only[i]) and id(c) not in done:
                 li, info = scipy.linalg.lapack.dtrtri(c[0], lower=1)
                 if info != 0:
                     raise np.linalg.LinAlgError(f"dtrtri failed with info={info}")
                 li = np.tril(li)
                 done[id(c)] = np.einsum("ij,ij->j", li, li)
-        return [done[id(c)] for c in self.chols]
+        return [done.get(id(c)) if only is None or only[i] else None for i, c in enumerate(self.chols)]
 
     def solve_block(self, i, rhs):
         """S_i^-1 rhs for block ``i`` alone."""
@@ -671,8 +673,8 @@ def log_marginal_and_grad(st, prior_var_f, noise_var, offset_var=1.0):
     # the full inverse.
     blocks, gffb = _structure(st)
     single = [len(gb) == 1 for gb in gffb]
-    full = fac.inverse_blocks() if not all(single) else [None] * len(blocks)
-    diags = fac.inverse_diagonals() if any(single) else None
+    full = fac.inverse_blocks(only=[not x for x in single])
+    diags = fac.inverse_diagonals(only=single)
     diag_f = np.empty(st.n_field)
     for i, b in enumerate(blocks):
         diag_f[b] = diags[i] if single[i] else np.diag(full[i])
