@@ -366,6 +366,16 @@ def _chol_inverse(chol):
     return inv + np.tril(inv, -1).T
 
 
+def _chol_inverse_diagonal(chol):
+    """Diagonal of the inverse from the lower Cholesky factor: column sums
+    of squares of ``L^-1`` (LAPACK ``dtrtri``)."""
+    li, info = scipy.linalg.lapack.dtrtri(chol[0], lower=1)
+    if info != 0:
+        raise np.linalg.LinAlgError(f"dtrtri failed with info={info}")
+    li = np.tril(li)
+    return np.einsum("ij,ij->j", li, li)
+
+
 class _Factor:
     """Cholesky factorisation of a symmetric positive-definite S given as
     its diagonal blocks ``blocks`` (list of square arrays, overwritten) on
@@ -401,29 +411,30 @@ class _Factor:
     def logdet(self):
         return float(sum(2.0 * np.sum(np.log(np.diag(c[0]))) for c in self.chols))
 
-    def inverse_blocks(self, only=None):
-        """The diagonal blocks of S^-1 (S^-1 is zero outside them); with
-        ``only`` (one bool per block) None for the blocks not asked for."""
-        done = {}  # a shared factor is inverted once (callers only read the blocks)
+    def _per_factor(self, fn, only):
+        """``[fn(factor of block i)]``, each shared factor done once (callers
+        only read the results); None for the blocks ``only`` (one bool per
+        block, default all) leaves out."""
+        done = {}
+        out = []
         for i, c in enumerate(self.chols):
-            if (only is None or only[i]) and id(c) not in done:
-                done[id(c)] = _chol_inverse(c)
-        return [done.get(id(c)) if only is None or only[i] else None for i, c in enumerate(self.chols)]
+            if only is not None and not only[i]:
+                out.append(None)
+                continue
+            if id(c) not in done:
+                done[id(c)] = fn(c)
+            out.append(done[id(c)])
+        return out
+
+    def inverse_blocks(self, only=None):
+        """The diagonal blocks of S^-1 (S^-1 is zero outside them)."""
+        return self._per_factor(_chol_inverse, only)
 
     def inverse_diagonals(self, only=None):
         """The diagonals of the blocks of S^-1, from the inverse of each
         Cholesky factor alone (``diag(S^-1)_j = sum_i (L^-1)_ij^2``; LAPACK
-        ``dtrtri``, half the work of the full inverse); ``only`` as in
-        :meth:`inverse_blocks`."""
-        done = {}
-        for i, c in enumerate(self.chols):
-            if (only is None or only[i]) and id(c) not in done:
-                li, info = scipy.linalg.lapack.dtrtri(c[0], lower=1)
-                if info != 0:
-                    raise np.linalg.LinAlgError(f"dtrtri failed with info={info}")
-                li = np.tril(li)
-                done[id(c)] = np.einsum("ij,ij->j", li, li)
-        return [done.get(id(c)) if only is None or only[i] else None for i, c in enumerate(self.chols)]
+        ``dtrtri``, half the work of the full inverse)."""
+        return self._per_factor(_chol_inverse_diagonal, only)
 
     def solve_block(self, i, rhs):
         """S_i^-1 rhs for block ``i`` alone."""
