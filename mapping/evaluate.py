@@ -502,15 +502,8 @@ _SUMMARY_HELP = {
 def _bootstrap_median_ci(ev, rng, n_boot=1000):
     """95 % CI of the pooled median, walks resampled with replacement."""
     main = MODES[ev.mode]
-    per = [w.results[main].scored_errors_m for w in ev.walks]
-    per = [p for p in per if p.size]
-    if len(per) < 2:
-        return None
-    meds = np.empty(n_boot)
-    for b in range(n_boot):  # small loop over resamples of walks
-        pick = rng.integers(0, len(per), size=len(per))
-        meds[b] = np.median(np.concatenate([per[i] for i in pick]))
-    return tuple(np.quantile(meds, [0.025, 0.975]))
+    per = [(w.results[main].scored_errors_m,) for w in ev.walks]
+    return M.walk_bootstrap_ci([p for p in per if p[0].size], np.median, n_boot=n_boot, rng=rng)
 
 
 def summary_table_html(summary, *, ci=None):

@@ -36,6 +36,7 @@ __all__ = [
     "summarise",
     "distance_walked_m",
     "json_number",
+    "walk_bootstrap_ci",
 ]
 
 #: A walk is converged once its error stays under this many metres.
@@ -160,6 +161,39 @@ def error_stats(errors_m):
         "max": float(e.max()),
         "n": int(e.size),
     }
+
+
+def walk_bootstrap_ci(groups, statistic, *, n_boot=2000, level=0.95, rng=None):
+    """Percentile-bootstrap interval of a statistic of pooled errors, whole
+    walks resampled with replacement (the errors of one walk are correlated,
+    so the walk is the unit; Efron & Tibshirani 1993, ch. 13, the percentile
+    interval; resampling clusters, Davison & Hinkley 1997, sec. 3.8).
+
+    Parameters
+    ----------
+    groups : list of tuples of arrays, one tuple per walk, one array per
+        method in the tuple (a paired comparison keeps a walk's arrays
+        together)
+    statistic : callable, one pooled array per method -> float
+        (e.g. ``lambda a, b: np.median(b) - np.median(a)``)
+    rng : numpy.random.Generator (default ``default_rng(0)``)
+
+    Returns
+    -------
+    (low, high) floats, or None with fewer than two walks
+    """
+    rng = np.random.default_rng(0) if rng is None else rng
+    groups = [tuple(np.asarray(a, dtype=float).ravel() for a in g) for g in groups]
+    if len(groups) < 2:
+        return None
+    k = len(groups[0])
+    vals = np.empty(int(n_boot))
+    for b in range(vals.size):  # a loop over resamples of a few dozen walks
+        pick = rng.integers(0, len(groups), size=len(groups))
+        vals[b] = statistic(*(np.concatenate([groups[i][j] for i in pick]) for j in range(k)))
+    a = (1.0 - level) / 2.0
+    lo, hi = np.quantile(vals, [a, 1.0 - a])
+    return float(lo), float(hi)
 
 
 def json_number(x, digits=4):

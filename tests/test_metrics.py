@@ -17,6 +17,7 @@ from mapping.metrics import (
     error_stats,
     scored_mask,
     summarise,
+    walk_bootstrap_ci,
 )
 
 
@@ -153,3 +154,48 @@ def test_summary_without_baselines_or_convergence_is_json_clean():
     assert s["no_field_median_error_m"] is None
     assert s["realtime_factor"] is None
     json.dumps(s, allow_nan=False)
+
+
+def test_walk_bootstrap_one_error_per_walk_matches_scipy():
+    # with one error per walk, resampling walks is the ordinary bootstrap:
+    # the percentile interval of the mean against scipy.stats.bootstrap
+    # (percentile method), within Monte-Carlo noise
+    from scipy.stats import bootstrap
+
+    e = np.random.default_rng(3).gamma(2.0, 1.0, size=30)
+    lo, hi = walk_bootstrap_ci([(v,) for v in e], np.mean, n_boot=4000, rng=np.random.default_rng(0))
+    ref = bootstrap((e,), np.mean, n_resamples=4000, method="percentile", rng=np.random.default_rng(1))
+    width = ref.confidence_interval.high - ref.confidence_interval.low
+    assert lo == pytest.approx(ref.confidence_interval.low, abs=0.15 * width)
+    assert hi == pytest.approx(ref.confidence_interval.high, abs=0.15 * width)
+    assert walk_bootstrap_ci([(e[:1],)], np.mean) is None  # one walk: no interval
+
+
+def test_walk_bootstrap_keeps_pairs_and_walks_together():
+    rng = np.random.default_rng(4)
+    walks = [rng.gamma(2.0, 1.0, size=rng.integers(1, 6)) for _ in range(12)]
+    # the second method is the first plus 0.5 m at every checkpoint: in every
+    # paired resample the median moves by exactly 0.5 (hand-worked: a shift
+    # moves every order statistic), so the interval is a point
+    lo, hi = walk_bootstrap_ci([(w, w + 0.5) for w in walks], lambda a, b: np.median(b) - np.median(a), n_boot=300)
+    assert lo == pytest.approx(0.5) and hi == pytest.approx(0.5)
+    # resampling whole walks: a walk-constant error gives the same interval
+    # as one error per walk, whatever the number of checkpoints in each walk
+    # (the mean over equal-sized walks is the mean of walk levels)
+    levels = rng.normal(size=10)
+    per_walk = [(np.full(4, v),) for v in levels]
+    one_each = [(np.array([v]),) for v in levels]
+    assert walk_bootstrap_ci(per_walk, np.mean, rng=np.random.default_rng(5)) == pytest.approx(
+        walk_bootstrap_ci(one_each, np.mean, rng=np.random.default_rng(5)))
+
+
+def test_paired_difference_of_real_bench_is_exact_for_a_shift():
+    from mapping.benchmarks.filter_real import paired_difference_ci
+
+    rng = np.random.default_rng(6)
+    ref = {f"w{i}": rng.gamma(2.0, 1.0, size=(3, 4)) for i in range(8)}
+    # hand-worked: a constant 0.25 m better everywhere moves both the median
+    # and the 95th percentile by -0.25, in every resample
+    d = paired_difference_ci({k: v - 0.25 for k, v in ref.items()}, ref, n_boot=200)
+    for key in ("median", "p95"):
+        assert d[key] == pytest.approx((-0.25, -0.25, -0.25))
