@@ -110,8 +110,12 @@ def test_recovers_from_wrong_start_and_flags_it(floor):
     g, fm = floor
     w, t, xy = make_walk(g, 5, n_legs=40)
     wrong = xy[0] + np.array([15.0, 9.0]) if xy[0, 0] < 15 else xy[0] - np.array([15.0, 9.0])
-    # a Gaussian likelihood collapses clearly when the cloud is far off
-    s = FilterSettings(n_particles=3000, recovery_warmup=3, likelihood="gaussian", field_temper=0.2)
+    # a Gaussian likelihood collapses clearly when the cloud is far off; a
+    # constant per-walk bias (an autoregressive bias follows the mismatch of
+    # a wrong place and hides the collapse: measured, no seed of five flags
+    # it with bias_corr_updates 5, 10 or 20; see FilterSettings)
+    s = FilterSettings(n_particles=3000, recovery_warmup=3, likelihood="gaussian", field_temper=0.2,
+                       bias_corr_updates=None)
     # recovery is random: over five seeds every run flags the loss and at
     # least four settle back under 1 m (measured: 9 of 10 seeds do)
     settled = 0
