@@ -21,8 +21,8 @@ A sweep is described by a TOML file (read with :mod:`tomllib`)::
     # ... or maps built once per distinct map setting and cached in OUT/maps:
     # site = "demo_building/site.json"; floor = "G"; survey = ["sim/G/survey"]
 
-    [grid]                     # every key a list of values (grid search)
-    n_particles = [300, 1000]
+    [grid]                     # every key a list of values (grid search);
+    n_particles = [300, 1000]  # the text "none" stands for None
     map_resolution_m = [0.25, 0.5]
 
     [random]                   # random search: {choices = [...]} or
@@ -214,10 +214,13 @@ def parse_sweep_config(raw, *, base=".", path="<sweep>"):
     for k, v in grid.items():
         if not isinstance(v, list) or not v:
             raise ConfigError(f"{path}: [grid] {k} must be a non-empty list of values, got {v!r}")
+        grid[k] = [_none_word(x) for x in v]
     rnd = raw.get("random", {})
     for k, v in rnd.items():
         if isinstance(v, list):
             rnd[k] = v = {"choices": v}
+        if isinstance(v, dict) and isinstance(v.get("choices"), list):
+            v["choices"] = [_none_word(x) for x in v["choices"]]
         if not isinstance(v, dict) or not ({"choices"} <= set(v) or {"low", "high"} <= set(v)):
             raise ConfigError(
                 f"{path}: [random] {k} must be {{choices = [...]}} or {{low = .., high = .., log = bool, "
@@ -244,6 +247,12 @@ def parse_sweep_config(raw, *, base=".", path="<sweep>"):
     if cfg.folds and cfg.map is not None:
         raise ConfigError(f"{path}: folds = {cfg.folds} builds one map per fold from the survey walks; remove [data] map")
     return cfg
+
+
+def _none_word(value):
+    """TOML has no null: the text "none" stands for None (settings such as
+    ``bias_corr_updates`` or ``field_gate`` where None switches a part off)."""
+    return None if isinstance(value, str) and value.strip().lower() == "none" else value
 
 
 def expand_settings(cfg, *, rng=None):
@@ -286,11 +295,13 @@ def expand_settings(cfg, *, rng=None):
 def run_key(task):
     """Hash (16 hex digits) of a task's settings, walk, seed, mode and data."""
     ident = {k: task.get(k) for k in ("settings", "walk", "seed", "mode", "data")}
+    if task.get("filter") is not None:  # every filter setting, defaults included
+        ident["filter"] = task["filter"]
     text = json.dumps(ident, sort_keys=True, separators=(",", ":"), default=str)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
 
-def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=None, extra=None):
+def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=None, extra=None, resolve=None):
     """settings x walks x seeds as a list of task dicts.
 
     The run seeds are ``numpy.random.SeedSequence(root_seed).spawn(seeds)``;
@@ -304,6 +315,10 @@ def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=
     settings_list : list of dict
     walks : list of str (walk names or paths; JSON-able)
     extra : dict, optional, merged into every task (not part of the key)
+    resolve : callable, optional, settings dict -> the JSON-able dict of
+        every filter setting it stands for (defaults included); stored as
+        the task's ``filter`` and part of its key, so that a run stored
+        under other defaults (an older version) is not taken for this one
     """
     children = np.random.SeedSequence(int(root_seed)).spawn(int(seeds))
     tasks = []
@@ -317,6 +332,8 @@ def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=
             "mode": mode,
             "data": data,
         }
+        if resolve is not None:
+            task["filter"] = resolve(s)
         task["key"] = run_key(task)
         if extra:
             task.update(extra)
@@ -734,7 +751,8 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     if cfg.preset != "default":
         data["preset"] = cfg.preset  # part of every run key
     tasks = make_tasks(settings_list, names, seeds=cfg.seeds, root_seed=cfg.seed, mode=cfg.mode, data=data,
-                       extra={"preset": cfg.preset})
+                       extra={"preset": cfg.preset},
+                       resolve=lambda st: filter_settings(split_settings(st)[2], preset_name=cfg.preset).to_dict())
     for t in tasks:
         m, _, _ = split_settings(t["settings"])
         w = by_name[t["walk"]]

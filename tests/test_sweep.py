@@ -73,6 +73,16 @@ def test_grid_expansion_is_the_cartesian_product(tmp_path):
     assert cfg.walks[0] == (tmp_path / "walks").resolve()  # relative to the config file
 
 
+def test_none_word_in_a_grid_is_none_and_valid_settings(tmp_path):
+    # TOML (tomllib, the standard library's reader) has no null: "none" is None
+    from mapping.sweep import filter_settings
+
+    cfg = _cfg(tmp_path, BASE + '[grid]\nbias_corr_updates = [5.0, "none"]\n')
+    s = expand_settings(cfg)
+    assert [d["bias_corr_updates"] for d in s] == [5.0, None]
+    assert filter_settings(s[1]).bias_corr_updates is None
+
+
 def test_random_expansion_seeded_and_within_bounds(tmp_path):
     body = BASE.replace("seeds = 2", 'seeds = 2\nsearch = "random"\nsamples = 30') + (
         "[random]\nn_particles = {low = 100, high = 10000, log = true, integer = true}\n"
@@ -148,6 +158,18 @@ def test_tasks_keys_and_spawned_seeds():
     # a different root seed changes the keys
     other = make_tasks(settings, ["w1"], seeds=1, root_seed=8)
     assert other[0]["key"] != tasks[0]["key"]
+    # the resolved filter settings are part of the key: the same changes on
+    # other defaults (a run stored by an older version) are another run
+    import dataclasses
+
+    from mapping.sweep import filter_settings
+
+    now = make_tasks(settings, ["w1"], seeds=1, root_seed=7, resolve=lambda st: filter_settings(st).to_dict())
+    older = make_tasks(settings, ["w1"], seeds=1, root_seed=7,
+                       resolve=lambda st: dataclasses.replace(filter_settings(st), bias_corr_updates=None).to_dict())
+    assert now[0]["filter"]["n_particles"] == 100
+    assert now[0]["key"] != older[0]["key"] != tasks[0]["key"]
+    assert run_key(now[0]) == now[0]["key"]
 
 
 def test_joblib_two_processes_store_every_run(tmp_path):

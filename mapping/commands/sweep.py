@@ -24,7 +24,8 @@ CONFIG.toml (paths relative to it):
   n_particles = [500, 2000]
   field_temper = [0.1, 0.2]
   # map_resolution_m, map_kernel, map_n_basis (maps built once each, cached in OUT/maps),
-  # noise_mag_ut, noise_heading_deg, noise_step_scale, any FilterSettings field
+  # noise_mag_ut, noise_heading_deg, noise_step_scale, any FilterSettings field;
+  # the text "none" stands for None (e.g. bias_corr_updates = [5.0, "none"])
   [random]                 # with search = "random"
   n_particles = {low = 200, high = 5000, log = true, integer = true}
 
