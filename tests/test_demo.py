@@ -117,12 +117,16 @@ def test_evaluate_cli_json_matches_files(demo, tmp_path, capsys):
     out, _ = demo
     res = tmp_path / "ev"
     rc = main(["evaluate", "--map", str(out / "maps" / "T.map"), str(out / "sim" / "T" / "test"), "--out", str(res),
-               "--mode", "dead-reckoning", "--baselines", "none", "--json", "--seed", "5", "--no-progress"])
+               "--mode", "dead-reckoning", "--baselines", "none", "--json", "--seed", "5", "--no-progress",
+               "--set", "bias_corr_updates=none", "--set", "heading_kappa=3"])
     assert rc == 0
     printed = json.loads(capsys.readouterr().out)
     assert printed == json.loads((res / "summary.json").read_text())
     assert tuple(printed) == SUMMARY_KEYS
-    assert json.loads((res / "run.json").read_text())["seed"] == 5
+    run = json.loads((res / "run.json").read_text())
+    assert run["seed"] == 5
+    # --set changes reach the recorded settings (the int 3 as the float setting it is)
+    assert run["settings"]["bias_corr_updates"] is None and run["settings"]["heading_kappa"] == 3.0
     # the headline figures follow from the per-checkpoint table (recomputed here)
     with open(res / "checkpoints.csv", newline="") as fh:
         rows = [r for r in csv.DictReader(fh) if r["scored"] == "True"]
@@ -146,6 +150,10 @@ def test_evaluate_cli_errors(demo, tmp_path, capsys):
     rc = main(["evaluate", "--map", str(out / "maps" / "T.map"), str(out / "sim" / "T" / "test"),
                "--out", str(tmp_path / "z"), "--preset", "bogus"])
     assert rc == 2 and "bogus" in capsys.readouterr().err
+    rc = main(["evaluate", "--map", str(out / "maps" / "T.map"), str(out / "sim" / "T" / "test"),
+               "--out", str(tmp_path / "w"), "--set", "feld=1"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert rc == 2 and len(err) == 1 and "unknown filter setting 'feld'" in err[0]
 
 
 def test_sweep_cli_on_the_demo_map_and_resume(demo, tmp_path, capsys):

@@ -43,6 +43,9 @@ def add_arguments(parser):
                              "(simulator walks) (default: default)")
     parser.add_argument("--particles", type=int, metavar="N",
                         help="particles of the filter (tracking and global; default: the filter's own defaults)")
+    parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
+                        help="change any FilterSettings field of the preset, e.g. --set bias_corr_updates=none "
+                             "(repeatable; `lodemap locate --help` lists the common ones)")
     parser.add_argument("--start-sigma", type=float, default=1.0, metavar="M",
                         help="spread of the start around the first checkpoint in metres (default: 1.0)")
     parser.add_argument("--baselines", default="dead-reckoning,no-field,dtw", metavar="LIST",
@@ -97,7 +100,9 @@ def run(args):
     baselines = parse_baselines(args.baselines)
     from fingerprint.localise import preset
 
-    settings = preset(args.preset)
+    from .locate import parse_set_options, with_changes
+
+    settings = with_changes(preset(args.preset), parse_set_options(args.set))
     fmap = load_map(args.map)
     walks = find_walks(args.walks, split=args.split, part=args.use if args.split else None)
     ev = evaluate_walks(fmap, walks, mode=args.mode, settings=settings, n_particles=args.particles, seed=args.seed,

@@ -98,18 +98,9 @@ def _parse_value(text):
 
 def build_settings(args, *, global_mode):
     """FilterSettings from the command-line options."""
-    from fingerprint.localise import FilterSettings, preset
+    from fingerprint.localise import preset
 
-    valid = {f.name for f in dataclasses.fields(FilterSettings)}
-    changes = {}
-    for item in args.set:
-        if "=" not in item:
-            raise ConfigError(f"--set: expected NAME=VALUE, got {item!r}")
-        name, value = item.split("=", 1)
-        name = name.strip()
-        if name not in valid:
-            raise ConfigError(f"--set: unknown filter setting {name!r}; valid: {sorted(valid)}")
-        changes[name] = _parse_value(value)
+    changes = parse_set_options(args.set)
     if args.particles is not None:
         if args.particles < 1:
             raise ConfigError(f"--particles must be >= 1, got {args.particles}")
@@ -122,7 +113,31 @@ def build_settings(args, *, global_mode):
         changes["likelihood"] = args.likelihood
     if args.temper is not None:
         changes["field_temper"] = args.temper
-    base = preset(getattr(args, "preset", "default"))
+    return with_changes(preset(getattr(args, "preset", "default")), changes)
+
+
+def parse_set_options(items):
+    """``--set NAME=VALUE`` items -> dict of FilterSettings changes (values:
+    true/false, none, numbers, else text); unknown names list the valid ones."""
+    from fingerprint.localise import FilterSettings
+
+    valid = {f.name for f in dataclasses.fields(FilterSettings)}
+    changes = {}
+    for item in items:
+        if "=" not in item:
+            raise ConfigError(f"--set: expected NAME=VALUE, got {item!r}")
+        name, value = item.split("=", 1)
+        name = name.strip()
+        if name not in valid:
+            raise ConfigError(f"--set: unknown filter setting {name!r}; valid: {sorted(valid)}")
+        changes[name] = _parse_value(value)
+    return changes
+
+
+def with_changes(base, changes):
+    """``base`` FilterSettings with ``changes`` (an integer given for a float
+    setting becomes a float)."""
+    changes = dict(changes)
     for name, value in changes.items():
         if isinstance(getattr(base, name), float) and isinstance(value, int) and not isinstance(value, bool):
             changes[name] = float(value)
