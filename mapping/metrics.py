@@ -167,7 +167,8 @@ def walk_bootstrap_ci(groups, statistic, *, n_boot=2000, level=0.95, rng=None):
     """Percentile-bootstrap interval of a statistic of pooled errors, whole
     walks resampled with replacement (the errors of one walk are correlated,
     so the walk is the unit; Efron & Tibshirani 1993, ch. 13, the percentile
-    interval; resampling clusters, Davison & Hinkley 1997, sec. 3.8).
+    interval; resampling clusters: Davison & Hinkley 1997, ch. 3, hierarchical
+    data, chapter from memory).
 
     Parameters
     ----------
