@@ -506,6 +506,14 @@ def _bootstrap_median_ci(ev, rng, n_boot=1000):
     return M.walk_bootstrap_ci([p for p in per if p[0].size], np.median, n_boot=n_boot, rng=rng)
 
 
+def percentile_cell(d):
+    """``(difference, low, high)`` as table text."""
+    diff, lo, hi = d
+    if not np.isfinite(lo):
+        return f"{diff:+.2f}"
+    return f"{diff:+.2f} [{lo:+.2f}, {hi:+.2f}]"
+
+
 def summary_table_html(summary, *, ci=None):
     from .report import html_table
 
@@ -630,6 +638,20 @@ def report_sections(ev, fmap, *, extra_cautions=(), tracks_body=None, extra_meth
              "with its field updates off, so it keeps only the graph and dead reckoning; DTW matches the field "
              "sequence (vertical and horizontal magnitude, per metre walked) against candidate graph paths that "
              "follow the dead-reckoned turns.</p>")
+    drows = []
+    for m in METHODS:
+        pairs = [(w.results[m].scored_errors_m, w.results[main].scored_errors_m) for w in ev.walks
+                 if m != main and m in w.results and main in w.results]
+        pairs = [pr for pr in pairs if pr[0].size and pr[1].size]
+        if len(pairs) >= 2:
+            cells = [percentile_cell(M.percentile_difference(pairs, q, n_boot=1000, rng=np.random.default_rng(ev.seed)))
+                     for q in (50, 95)]
+            drows.append([method_label(m), len(pairs), *cells])
+    if drows:
+        body += R.html_table(["against", "walks", "median difference (m)", "p95 difference (m)"], drows)
+        body += ("<p>The method under test minus each baseline (negative: the method under test is better), with "
+                 "a 95 % interval from resampling whole walks (a walk's checkpoints share its errors). An interval "
+                 "that contains 0 means these walks cannot tell the two apart.</p>")
     sections.append(R.Section("Baselines", body))
 
     # cautions

@@ -37,6 +37,7 @@ __all__ = [
     "distance_walked_m",
     "json_number",
     "walk_bootstrap_ci",
+    "percentile_difference",
 ]
 
 #: A walk is converged once its error stays under this many metres.
@@ -195,6 +196,31 @@ def walk_bootstrap_ci(groups, statistic, *, n_boot=2000, level=0.95, rng=None):
     a = (1.0 - level) / 2.0
     lo, hi = np.quantile(vals, [a, 1.0 - a])
     return float(lo), float(hi)
+
+
+def percentile_difference(pairs, q, *, n_boot=2000, rng=None):
+    """Difference ``B - A`` of the ``q``-th percentile of pooled errors, with
+    its 95 % interval from resampling walks (:func:`walk_bootstrap_ci`).
+
+    Parameters
+    ----------
+    pairs : list of (errors A, errors B), one pair per walk (any shapes)
+    q : float, percentile (50 = median)
+
+    Returns
+    -------
+    (difference, low, high); low and high NaN with fewer than two walks
+    """
+    pairs = [(np.ravel(a), np.ravel(b)) for a, b in pairs]
+
+    def stat(a, b):
+        return float(np.percentile(b, q) - np.percentile(a, q))
+
+    if not pairs:
+        return math.nan, math.nan, math.nan
+    d = stat(np.concatenate([a for a, _ in pairs]), np.concatenate([b for _, b in pairs]))
+    ci = walk_bootstrap_ci(pairs, stat, n_boot=n_boot, rng=np.random.default_rng(0) if rng is None else rng)
+    return (d, *(ci if ci is not None else (math.nan, math.nan)))
 
 
 def json_number(x, digits=4):

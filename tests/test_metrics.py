@@ -199,3 +199,13 @@ def test_paired_difference_of_real_bench_is_exact_for_a_shift():
     d = paired_difference_ci({k: v - 0.25 for k, v in ref.items()}, ref, n_boot=200)
     for key in ("median", "p95"):
         assert d[key] == pytest.approx((-0.25, -0.25, -0.25))
+
+
+def test_percentile_difference_hand_worked():
+    from mapping.metrics import percentile_difference
+
+    # one walk: A = 1, 2, 3 (median 2), B = 2, 3, 5 (median 3): difference
+    # 1.0; no interval from a single walk
+    d, lo, hi = percentile_difference([(np.array([1.0, 2.0, 3.0]), np.array([2.0, 3.0, 5.0]))], 50)
+    assert d == pytest.approx(1.0) and math.isnan(lo) and math.isnan(hi)
+    assert all(math.isnan(v) for v in percentile_difference([], 50))

@@ -119,3 +119,15 @@ def test_html_escapes_text():
     html = build_html("a <b> & c", [Section("S <1>", html_table(["x<"], [["<script>"]]))])
     assert "<script>" not in html and "&lt;script&gt;" in html
     assert "<title>a &lt;b&gt; &amp; c</title>" in html
+
+
+def test_report_baselines_give_the_paired_difference(written):
+    # the method under test minus DTW, pooled over the two walks, recomputed
+    # here from the per-walk errors with numpy's percentile
+    out, _, ev = written
+    text = (out / "report.html").read_text(encoding="utf-8")
+    assert "median difference (m)" in text and "p95 difference (m)" in text
+    main = np.concatenate([w.results["dead-reckoning"].scored_errors_m for w in ev.walks])
+    dtw = np.concatenate([w.results["dtw"].scored_errors_m for w in ev.walks])
+    d50 = np.percentile(main, 50) - np.percentile(dtw, 50)
+    assert f"{d50:+.2f} [" in text

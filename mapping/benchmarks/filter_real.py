@@ -86,19 +86,11 @@ def paired_difference_ci(errs, ref, *, n_boot=2000, rng=None):
     -------
     dict ``median``/``p95`` -> (difference, low, high), metres
     """
-    from mapping.metrics import walk_bootstrap_ci
+    from mapping.metrics import percentile_difference
 
     names = sorted(set(errs) & set(ref))
-    groups = [(ref[k], errs[k]) for k in names]
-    out = {}
-    for key, q in (("median", 50), ("p95", 95)):
-        def stat(a, b, q=q):
-            return float(np.percentile(b, q) - np.percentile(a, q))
-
-        d = stat(np.concatenate([np.ravel(g[0]) for g in groups]), np.concatenate([np.ravel(g[1]) for g in groups]))
-        ci = walk_bootstrap_ci(groups, stat, n_boot=n_boot, rng=np.random.default_rng(0) if rng is None else rng)
-        out[key] = (d, *(ci if ci is not None else (np.nan, np.nan)))
-    return out
+    pairs = [(ref[k], errs[k]) for k in names]
+    return {key: percentile_difference(pairs, q, n_boot=n_boot, rng=rng) for key, q in (("median", 50), ("p95", 95))}
 
 
 def _stats(errs):
