@@ -137,7 +137,9 @@ def run_real(site_dir, *, floors=None, variants=None, seeds=(0, 1, 2), cache_dir
             cells = []
             for f in [*floors, "pooled"]:
                 d = paired_difference_ci(all_errs[name, f], all_errs["no-field", f])
-                table[name][f"{f}_vs_no_field"] = d
+                # JSON has no NaN: an interval from fewer than two walks is null
+                table[name][f"{f}_vs_no_field"] = {k: [None if not np.isfinite(v) else v for v in t]
+                                                   for k, t in d.items()}
                 cells.append(f"{f} median {d['median'][0]:+.3f} [{d['median'][1]:+.2f}, {d['median'][2]:+.2f}]"
                              f" p95 {d['p95'][0]:+.3f} [{d['p95'][1]:+.2f}, {d['p95'][2]:+.2f}]")
             print(f"  {name}: " + "; ".join(cells), flush=True)
