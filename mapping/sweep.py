@@ -322,7 +322,9 @@ def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=
     """
     children = np.random.SeedSequence(int(root_seed)).spawn(int(seeds))
     tasks = []
-    for s, w, i in itertools.product(settings_list, walks, range(int(seeds))):
+    # resolved once per settings (not per walk and seed)
+    resolved = [None if resolve is None else resolve(s) for s in settings_list]
+    for (j, s), w, i in itertools.product(enumerate(settings_list), walks, range(int(seeds))):
         ss = children[i]
         task = {
             "settings": dict(s),
@@ -332,8 +334,8 @@ def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=
             "mode": mode,
             "data": data,
         }
-        if resolve is not None:
-            task["filter"] = resolve(s)
+        if resolved[j] is not None:
+            task["filter"] = resolved[j]
         task["key"] = run_key(task)
         if extra:
             task.update(extra)
