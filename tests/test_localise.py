@@ -110,12 +110,13 @@ def test_recovers_from_wrong_start_and_flags_it(floor):
     g, fm = floor
     w, t, xy = make_walk(g, 5, n_legs=40)
     wrong = xy[0] + np.array([15.0, 9.0]) if xy[0, 0] < 15 else xy[0] - np.array([15.0, 9.0])
-    # a Gaussian likelihood collapses clearly when the cloud is far off; a
-    # constant per-walk bias (an autoregressive bias follows the mismatch of
-    # a wrong place and hides the collapse: measured, no seed of five flags
-    # it with bias_corr_updates 5, 10 or 20; see FilterSettings)
+    # the likelihood-drop detector alone (recovery_chi2 off): a Gaussian
+    # likelihood collapses clearly when the cloud is far off; a constant
+    # per-walk bias (an autoregressive bias follows the mismatch of a wrong
+    # place and hides the collapse: measured, no seed of five flags it with
+    # bias_corr_updates 5, 10 or 20; the next test covers that case)
     s = FilterSettings(n_particles=3000, recovery_warmup=3, likelihood="gaussian", field_temper=0.2,
-                       bias_corr_updates=None)
+                       bias_corr_updates=None, recovery_chi2=None)
     # recovery is random: over five seeds every run flags the loss and at
     # least four settle back under 1 m (measured: 9 of 10 seeds do)
     settled = 0
@@ -128,6 +129,70 @@ def test_recovers_from_wrong_start_and_flags_it(floor):
     off = localise(w, fm, settings=dataclasses.replace(s, recovery=False), start_xy=wrong, start_sigma_m=1.0, rng=3)
     assert not off.extra["lost"].any()
     assert np.median(S.errors(off, t, xy)[-20:]) > np.median(e[-20:])
+
+
+def test_kidnap_under_a_drifting_bias_is_found_by_the_innovation_level(floor):
+    # with the default autoregressive field bias the likelihood of a wrong
+    # place does not collapse (the bias follows the mismatch), but the
+    # cloud's normalised squared innovation stays high: the consistency
+    # check of a filter by its normalised innovation squared (Bar-Shalom,
+    # Li & Kirubarajan 2001, "Estimation with Applications to Tracking and
+    # Navigation", sec. 5.4; from memory), watched by recovery_chi2.
+    g, fm = floor
+    w, t, xy = make_walk(g, 5, n_legs=40)
+    wrong = xy[0] + np.array([15.0, 9.0]) if xy[0, 0] < 15 else xy[0] - np.array([15.0, 9.0])
+    s = FilterSettings(n_particles=3000, bias_corr_updates=5.0, recovery_chi2=16.0)
+    # measured: every seed of five flags the loss and settles back near
+    # 0.4 m; none flags anything when started at the right place
+    settled = 0
+    for seed in range(5):
+        tr = localise(w, fm, settings=s, start_xy=wrong, start_sigma_m=1.0, rng=seed)
+        assert tr.extra["lost"].any()
+        settled += np.median(S.errors(tr, t, xy)[-20:]) < 1.0
+        right = localise(w, fm, settings=s, start_xy=xy[0], start_sigma_m=1.0, rng=seed)
+        assert not right.extra["lost"].any()
+        assert np.median(S.errors(right, t, xy)) < 1.0
+    assert settled >= 4
+    # without it the same drifting bias hides the loss: no flag, still lost
+    off = localise(w, fm, settings=dataclasses.replace(s, recovery_chi2=None), start_xy=wrong, start_sigma_m=1.0,
+                   rng=0)
+    assert not off.extra["lost"].any()
+    assert np.median(S.errors(off, t, xy)[-20:]) > 5.0
+
+
+def test_innovation_level_flags_after_warmup_and_restarts_after_a_loss(floor):
+    # a field 60 µT off the map gives a large normalised innovation; the
+    # level is smoothed by recovery_rate, flags only after recovery_warmup
+    # updates, and starts afresh after the loss. The first alarm trusts the
+    # map again (the walker may be elsewhere on it); a repeated alarm while
+    # the field has not followed the map since leaves the walk-level check
+    # at no less than its prior (the map may explain this field nowhere).
+    # Common practice, no source.
+    _, fm = floor
+    s = FilterSettings(n_particles=500, recovery_chi2=16.0, recovery_warmup=3, recovery_rate=0.5,
+                       field_valid_prior=0.6)
+    far = window_observation(np.array([[70.0, 75.0, 20.0]] * 5), np.zeros(5))
+    _, tr, info = _gate_step(fm, s, far, RecoveryTracker(chi2_level=1.0, chi2_count=1, p_field=0.2))
+    assert not info["lost"] and tr.chi2_count == 2 and tr.chi2_level > 16.0
+    _, tr, info = _gate_step(fm, s, far, RecoveryTracker(chi2_level=1.0, chi2_count=2, p_field=0.2))
+    assert info["lost"]
+    assert tr.chi2_count == 0 and np.isnan(tr.chi2_level) and tr.chi2_alarms == 1
+    assert tr.p_field > 0.99
+    _, tr, info = _gate_step(fm, s, far, RecoveryTracker(chi2_level=30.0, chi2_count=2, p_field=0.2, chi2_alarms=1))
+    assert info["lost"] and tr.chi2_alarms == 2
+    assert tr.p_field == pytest.approx(0.6)
+    # a level well under the threshold ends the episode
+    mean, _, _ = fm.lookup(np.array([[9.0, 6.0]]))
+    c, sn = np.cos(-E2P), np.sin(-E2P)  # plan -> earth
+    near = window_observation(np.array([[c * mean[0, 0] - sn * mean[0, 1], sn * mean[0, 0] + c * mean[0, 1],
+                                         mean[0, 2]]] * 5), np.zeros(5))
+    _, tr, info = _gate_step(fm, s, near, RecoveryTracker(chi2_level=0.5, chi2_count=5, chi2_alarms=2))
+    assert not info["lost"] and tr.chi2_alarms == 0
+    _, tr, info = _gate_step(fm, dataclasses.replace(s, recovery_chi2=None), far,
+                             RecoveryTracker(chi2_level=1.0, chi2_count=2))
+    assert not info["lost"] and tr.chi2_count == 2  # off: not watched
+    with pytest.raises(ConfigError, match="recovery_chi2"):
+        FilterSettings(recovery_chi2=0.0)
 
 
 def test_no_coverage_equals_no_field(floor):

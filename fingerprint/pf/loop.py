@@ -56,6 +56,13 @@ class RecoveryTracker:
     level: float = 0.0
     count: int = 0
     outliers: int = 0  # consecutive updates with an outlying field innovation
+    #: running level of the cloud's normalised squared field innovation and
+    #: the updates it has seen since the start or the last collapse
+    #: (``FilterSettings.recovery_chi2``)
+    chi2_level: float = float("nan")
+    chi2_count: int = 0
+    #: collapses that level flagged since it was last below the threshold
+    chi2_alarms: int = 0
     #: probability that the map explains this walk's field (NaN = not yet
     #: updated; see ``FilterSettings.field_valid_prior``)
     p_field: float = float("nan")
@@ -248,14 +255,20 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
         psi = np.add(arrays["heading_offset_rad"], obs.heading_rad + ctx.earth_to_plan_rad, dtype=np.float32)
         bias, bias_var = _predict_bias(state, s)
         gate = s.field_gate is not None
+        watch_chi2 = s.recovery and s.recovery_chi2 is not None
         out = field_log_likelihood(
             obs, xy_t.T, psi, bias, bias_var, state.log_w,
-            lookup=ctx.table.lookup, settings=s, sensor_noise_ut=ctx.sensor_noise_ut, return_chi2=gate,
+            lookup=ctx.table.lookup, settings=s, sensor_noise_ut=ctx.sensor_noise_ut,
+            return_chi2=gate or watch_chi2,
         )
         llf, bias, bias_var = out[:3]
+        chi2 = out[3] if len(out) > 3 else math.nan
+        if watch_chi2 and math.isfinite(chi2):
+            level = chi2 if tracker.chi2_count == 0 else (
+                (1 - s.recovery_rate) * tracker.chi2_level + s.recovery_rate * chi2)
+            tracker = dataclasses.replace(tracker, chi2_level=float(level), chi2_count=tracker.chi2_count + 1)
         gated = False
         if gate:
-            chi2 = out[3]
             outliers = tracker.outliers + 1 if chi2 > s.field_gate else 0
             tracker = dataclasses.replace(tracker, outliers=outliers)
             gated = outliers >= s.field_gate_after
@@ -303,6 +316,15 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
         value = max(watched, tracker.level - s.recovery_drop) if tracker.count else watched
         level = value if tracker.count == 0 else (1 - s.recovery_rate) * tracker.level + s.recovery_rate * value
         tracker = dataclasses.replace(tracker, level=float(level), count=tracker.count + 1)
+    # the innovation level: a second collapse detector, which a drifting
+    # bias cannot hide (FilterSettings.recovery_chi2)
+    chi2_lost = False
+    if s.recovery and s.recovery_chi2 is not None and tracker.chi2_count >= max(s.recovery_warmup, 1):
+        if tracker.chi2_level > s.recovery_chi2:
+            chi2_lost = not lost
+            lost = True
+        elif tracker.chi2_alarms and tracker.chi2_level < 0.25 * s.recovery_chi2:
+            tracker = dataclasses.replace(tracker, chi2_alarms=0)  # the field follows the map again
     resampled = ess < s.ess_threshold * n
     if resampled:
         state = _resample(arrays, ctx, rng, e)
@@ -310,8 +332,16 @@ def filter_step(state, length_m, heading_rad, obs, ctx, rng, tracker):
         state = ParticleState(**arrays, log_w=log_w)
     if lost and s.recovery:
         # the evidence against the map came from a lost cloud: trust the map
-        # again while the re-seeded particles look for the walker
-        tracker = dataclasses.replace(tracker, p_field=_P_FIELD_AFTER_LOSS)
+        # again while the re-seeded particles look for the walker. A large
+        # innovation alone may also mean that the map does not explain this
+        # walk's field anywhere (a wrong map, a broken calibration), which
+        # re-seeding cannot mend: then the walk-level check restarts from
+        # no less than its prior rather than from near certainty
+        p_new = _P_FIELD_AFTER_LOSS
+        if chi2_lost and tracker.chi2_alarms and s.field_valid_prior is not None:
+            p_new = max(tracker.p_field, s.field_valid_prior) if math.isfinite(tracker.p_field) else s.field_valid_prior
+        tracker = dataclasses.replace(tracker, p_field=p_new, chi2_level=math.nan, chi2_count=0,
+                                      chi2_alarms=tracker.chi2_alarms + chi2_lost)
         m = int(round(s.recovery_fraction * state.n))
         if m:
             state = reseed(state, rng.choice(state.n, size=m, replace=False), ctx, rng)

@@ -276,10 +276,18 @@ def field_log_likelihood(obs, xy, psi_rad, bias_ut, bias_var_ut2, log_w, *, look
         ll = np.where(covered, ll, neutral)
     if return_chi2:
         chi2 = np.nan
-        if np.any(covered):
-            wc = np.where(covered, np.exp(log_w - log_w.max()), 0.0)
-            d2 = np.sum(r * r / s2, axis=0) * (1.0 / k)
-            chi2 = float(wc @ np.where(covered, d2, 0.0) / wc.sum())
+        if all_covered or np.any(covered):
+            d2 = r * r  # (k, N)
+            d2 /= s2
+            if k > 1:
+                d2 = np.sum(d2, axis=0)
+            else:
+                d2 = d2[0]
+            wc = np.exp(log_w - log_w.max())
+            if not all_covered:
+                wc *= covered
+                d2 = np.where(covered, d2, 0.0)
+            chi2 = float(wc @ d2) / (k * float(np.sum(wc)))
         return ll, new_b, new_p, chi2
     return ll, new_b, new_p
 
