@@ -7,6 +7,7 @@ from pathlib import Path
 
 import pytest
 
+from fingerprint.errors import ConfigError
 from fingerprint.mapfile import save_map
 from mapping.benchmarks.filter import synthetic_floor
 from mapping.cli import main
@@ -64,7 +65,7 @@ def test_image_resolution_must_be_positive(small_map, tmp_path, capsys):
 
 
 @pytest.mark.parametrize("item, words", [
-    ("feld=1", "unknown filter settings ['feld']"),
+    ("feld=1", "--real-set: unknown filter setting 'feld'"),
     ("field_temper=abc", "field_temper: expected a number > 0"),
     ("field_temper", "expected NAME=VALUE"),
 ])
@@ -75,9 +76,14 @@ def test_bench_real_set_checked_before_any_work(tmp_path, capsys, item, words):
     assert len(err) == 1 and words in err[0], err
 
 
-def test_settings_changes_read_as_json_where_they_parse():
-    from mapping.benchmarks.filter import parse_settings_changes
+def test_settings_changes_are_read_alike_by_every_option():
+    # --set (locate, evaluate) and --real-set (bench filter) share one reader
+    from mapping.commands.locate import parse_set_options
 
-    got = parse_settings_changes(["field_temper=0.1", "use_field=false", "feature_set=full", "field_gate=null"],
-                                 option="--x")
-    assert got == {"field_temper": 0.1, "use_field": False, "feature_set": "full", "field_gate": None}
+    items = ["field_temper=0.1", "use_field=false", "feature_set=full", "field_gate=null",
+             "bias_corr_updates=none", "n_particles=500"]
+    got = parse_set_options(items, option="--x")
+    assert got == {"field_temper": 0.1, "use_field": False, "feature_set": "full", "field_gate": None,
+                   "bias_corr_updates": None, "n_particles": 500}
+    with pytest.raises(ConfigError, match="^--x: expected NAME=VALUE"):
+        parse_set_options(["=1"], option="--x")

@@ -48,25 +48,6 @@ def add_arguments(parser):
                              "variant is unchanged")
 
 
-def parse_settings_changes(items, *, option):
-    """``["name=value", ...]`` -> dict; values read as JSON where they parse
-    (numbers, true/false, null), else kept as text."""
-    import json
-
-    from fingerprint.errors import ConfigError
-
-    out = {}
-    for item in items:
-        name, sep, value = str(item).partition("=")
-        if not sep or not name.strip():
-            raise ConfigError(f"{option}: expected NAME=VALUE, got {item!r}")
-        try:
-            out[name.strip()] = json.loads(value)
-        except json.JSONDecodeError:
-            out[name.strip()] = value
-    return out
-
-
 def synthetic_floor(*, nx=61, ny=41, spacing_m=1.0, seed=0):
     """A lattice floor (nx * ny nodes, 4-connected) with a smooth synthetic
     field (background plus Gaussian bumps) on a 0.25 m raster."""
@@ -160,6 +141,7 @@ def run(args):
     from fingerprint.localise import FilterSettings, localise
 
     if getattr(args, "real", None):
+        from ..commands.locate import parse_set_options, with_changes
         from .filter_real import run_real
 
         try:
@@ -167,8 +149,8 @@ def run(args):
         except ValueError:
             raise ConfigError(f"--real-seeds: expected comma-separated integers, got {args.real_seeds!r}") from None
         floors = None if not args.real_floors else [f.strip() for f in args.real_floors.split(",") if f.strip()]
-        changes = parse_settings_changes(args.real_set, option="--real-set")
-        FilterSettings.from_dict({**FilterSettings().to_dict(), **changes})  # names and values checked up front
+        changes = parse_set_options(args.real_set, option="--real-set")
+        with_changes(FilterSettings(), changes)  # names and values checked up front
         label = "field" + "".join(f", {k}={v}" for k, v in changes.items())
         variants = {"no-field": {"use_field": False}, label: changes}
         run_real(args.real, floors=floors, seeds=seeds or (0,), cache_dir=args.real_cache, variants=variants)

@@ -116,20 +116,21 @@ def build_settings(args, *, global_mode):
     return with_changes(preset(getattr(args, "preset", "default")), changes)
 
 
-def parse_set_options(items):
-    """``--set NAME=VALUE`` items -> dict of FilterSettings changes (values:
-    true/false, none, numbers, else text); unknown names list the valid ones."""
+def parse_set_options(items, *, option="--set"):
+    """``NAME=VALUE`` items of the command-line ``option`` -> dict of
+    FilterSettings changes (values: true/false, none/null, numbers, else
+    text); unknown names list the valid ones."""
     from fingerprint.localise import FilterSettings
 
     valid = {f.name for f in dataclasses.fields(FilterSettings)}
     changes = {}
     for item in items:
-        if "=" not in item:
-            raise ConfigError(f"--set: expected NAME=VALUE, got {item!r}")
-        name, value = item.split("=", 1)
+        name, sep, value = str(item).partition("=")
         name = name.strip()
+        if not sep or not name:
+            raise ConfigError(f"{option}: expected NAME=VALUE, got {item!r}")
         if name not in valid:
-            raise ConfigError(f"--set: unknown filter setting {name!r}; valid: {sorted(valid)}")
+            raise ConfigError(f"{option}: unknown filter setting {name!r}; valid: {sorted(valid)}")
         changes[name] = _parse_value(value)
     return changes
 
