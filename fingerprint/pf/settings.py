@@ -80,7 +80,7 @@ class FilterSettings:
         survey walks of both real floors, among None, 5, 10 and 20 (README,
         "Choosing the field's settings"). A bias that can follow the
         mismatch also follows the mismatch of a wrong place, so a kidnapped
-        walker's likelihood no longer collapses; ``recovery_chi2`` watches
+        walker's likelihood no longer collapses; ``recovery_chi2`` can watch
         the innovation instead
     field_gate : None = no gate; a number G = skip the field update (walls
         only) while the weighted mean normalised squared innovation
@@ -121,9 +121,11 @@ class FilterSettings:
         innovation stays large. The first alarm trusts the map again
         (``field_valid_prior``); a repeated one, before the level has come
         back under c / 4, leaves that check at no less than its prior (the
-        map may explain the walk's field nowhere). The default 16 is the
-        smallest of 8, 12, 16, 24 that raised no false alarm in
-        cross-validation on the real survey walks (README)
+        map may explain the walk's field nowhere). Off by default: on the
+        demo building it flags few kidnaps and flags a robot with a large
+        vertical offset as lost all along a walk it tracks well (README).
+        When on, 16 is the smallest of 8, 12, 16, 24 that raised no false
+        alarm in cross-validation on the real survey walks
 
     Estimate (``fingerprint.pf.estimate``)
     --------------------------------------
@@ -177,7 +179,7 @@ class FilterSettings:
     recovery_fraction: float = 0.1
     recovery_warmup: int = 10
     recovery_rate: float = 0.1
-    recovery_chi2: float | None = 16.0
+    recovery_chi2: float | None = None
     # estimate
     cluster_radius_m: float = 3.0
     converge_sigma_m: float = 2.0
