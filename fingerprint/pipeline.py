@@ -210,7 +210,7 @@ def wheels_still(t, odom, *, window_s=1.0, tol=1e-9):
 
 
 def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_constant=None, settings=None,
-                 expected_total_ut=None):
+                 expected_total_ut=None, expected_up_ut=None):
     """Turn a walk log into a processed walk.
 
     Parameters
@@ -224,6 +224,11 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
     expected_total_ut : float, optional
         Expected field magnitude at the site (µT); overrides
         ``settings.expected_total_ut`` (see :class:`PipelineSettings`).
+    expected_up_ut : float, optional
+        Expected mean vertical field along the walk (µT, up positive), e.g.
+        a floor map's mean along its graph; overrides
+        ``settings.field_up_ut``. Only a planar self-calibration (a robot
+        turning about z alone, which cannot see the offset along z) uses it.
 
     Returns
     -------
@@ -232,10 +237,13 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         ``step_constant``, ``n_steps`` (handheld), ``mag_noise_ut``.
     """
     s = settings or PipelineSettings()
-    if expected_total_ut is not None:
+    if expected_total_ut is not None or expected_up_ut is not None:
         from dataclasses import replace as _replace
 
-        s = _replace(s, expected_total_ut=float(expected_total_ut))
+        if expected_total_ut is not None:
+            s = _replace(s, expected_total_ut=float(expected_total_ut))
+        if expected_up_ut is not None:
+            s = _replace(s, field_up_ut=float(expected_up_ut))
     if log.n < 10:
         raise DataError(f"a walk needs at least 10 samples to process, got {log.n}", path=log.path)
     t = log.t

@@ -156,7 +156,7 @@ def run_demo(out, *, quick=False, seed=0, site_dir=None, progress=True, jobs=1, 
     for floor, fmap in fmaps.items():
         info = {"floor": floor, "path": str(out / "maps" / f"{floor}.map"), "resolution_m": resolution,
                 "kernel": fmap.meta.get("kernel", "?")}
-        loaded = E.load_walks(find_walks(out / "sim" / floor / "test"))
+        loaded = E.load_walks(find_walks(out / "sim" / floor / "test"), fmap=fmap)
         log(f"[3/3] floor {floor}: tracking with its baselines on {len(loaded)} test walks ...")
         tr = E.evaluate_walks(fmap, loaded, mode="tracking", settings=settings, seed=mode_seeds["tracking"],
                               baselines=("dead-reckoning", "no-field", "dtw"), jobs=jobs, progress=progress,

@@ -49,6 +49,7 @@ __all__ = [
     "evaluate_walks",
     "load_walk",
     "load_walks",
+    "map_vertical_ut",
     "LoadedWalk",
     "derive",
     "write_outputs",
@@ -228,8 +229,20 @@ def evaluate_walk(name, walk, checkpoints, fmap, *, mode="tracking", settings=No
                           convergence_distance_m=cdist, truth=truth)
 
 
-def load_walk(walk_files):
-    """Read and process one walk (a ``mapping.walkset.WalkFiles``).
+def map_vertical_ut(fmap):
+    """Mean vertical field of ``fmap`` along its graph (µT, up positive,
+    every metre of graph counted alike): the vertical field a walk on the
+    floor is expected to measure on average, for the offset along z that a
+    planar self-calibration (a robot turning about z alone) cannot see
+    (``process_walk(expected_up_ut=...)``)."""
+    from fingerprint.pf.measurement import floor_background
+
+    return float(floor_background(fmap).mean_ut[2])
+
+
+def load_walk(walk_files, *, expected_up_ut=None):
+    """Read and process one walk (a ``mapping.walkset.WalkFiles``);
+    ``expected_up_ut``: see :func:`map_vertical_ut`.
 
     Returns
     -------
@@ -239,7 +252,7 @@ def load_walk(walk_files):
     from fingerprint.pipeline import process_walk
 
     log = read_walk_log(walk_files.log)
-    walk = process_walk(log)
+    walk = process_walk(log, expected_up_ut=expected_up_ut)
     cps = read_checkpoints(walk_files.checkpoints) if walk_files.checkpoints else None
     truth = read_track(walk_files.track) if getattr(walk_files, "track", None) else None
     return walk, cps, truth
@@ -255,11 +268,14 @@ class LoadedWalk:
     truth: object = None
 
 
-def load_walks(walk_files):
-    """Read and process walks once: list of :class:`LoadedWalk`."""
+def load_walks(walk_files, *, fmap=None):
+    """Read and process walks once: list of :class:`LoadedWalk`; with the
+    floor's map ``fmap``, a planar self-calibration takes its vertical
+    offset from the map (:func:`map_vertical_ut`)."""
+    up = None if fmap is None else map_vertical_ut(fmap)
     out = []
     for wf in walk_files:
-        walk, cps, truth = load_walk(wf)
+        walk, cps, truth = load_walk(wf, expected_up_ut=up)
         out.append(LoadedWalk(wf.name, walk, cps, truth))
     return out
 
@@ -273,14 +289,14 @@ def derive(we, main, results):
     return dataclasses.replace(we, main=main, results=dict(results), converged=conv, convergence_distance_m=cdist)
 
 
-def _one(wf, fmap, mode, settings, seed, baselines, start_sigma_m, on_error="raise"):
+def _one(wf, fmap, mode, settings, seed, baselines, start_sigma_m, on_error="raise", expected_up_ut=None):
     from fingerprint.errors import LodemapError
 
     if isinstance(wf, LoadedWalk):
         walk, cps, truth = wf.walk, wf.checkpoints, wf.truth
     else:
         try:
-            walk, cps, truth = load_walk(wf)
+            walk, cps, truth = load_walk(wf, expected_up_ut=expected_up_ut)
         except LodemapError as err:
             if on_error == "skip":
                 return wf.name, f"unreadable: {err}"
@@ -303,7 +319,9 @@ def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_partic
     ----------
     fmap : FieldMap
     walk_files : list of ``mapping.walkset.WalkFiles`` (name, log,
-        checkpoints, track) or of :class:`LoadedWalk`
+        checkpoints, track), read here (a planar self-calibration takes its
+        vertical offset from ``fmap``, :func:`map_vertical_ut`), or of
+        :class:`LoadedWalk`
     settings : FilterSettings or None; ``n_particles`` overrides its particle
         counts (tracking and global)
     seed : int, root seed; walk ``i`` gets ``SeedSequence(seed).spawn(n)[i]``
@@ -327,18 +345,19 @@ def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_partic
     s = _settings(settings, n_particles) if needs_filter else settings
     t_start = time.perf_counter()
     seeds = np.random.SeedSequence(int(seed)).spawn(max(1, len(walk_files)))
+    up = map_vertical_ut(fmap) if any(not isinstance(wf, LoadedWalk) for wf in walk_files) else None
     from tqdm.auto import tqdm
 
     if jobs and int(jobs) != 1 and len(walk_files) > 1:
         from joblib import Parallel, delayed
 
         outs = Parallel(n_jobs=int(jobs))(
-            delayed(_one)(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error)
+            delayed(_one)(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error, up)
             for i, wf in enumerate(walk_files)
         )
     else:
         outs = [
-            _one(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error)
+            _one(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error, up)
             for i, wf in enumerate(tqdm(walk_files, desc=f"evaluate ({mode})", unit="walk", disable=not progress))
         ]
     walks = [o for o in outs if isinstance(o, WalkEvaluation)]

@@ -605,6 +605,20 @@ def _load_map_cached(path):
     return _MAP_CACHE[key]
 
 
+_MAP_UP_CACHE = {}
+
+
+def _map_vertical_cached(path):
+    from .evaluate import map_vertical_ut
+
+    key = str(path)
+    if key not in _MAP_UP_CACHE:
+        if len(_MAP_UP_CACHE) > 4:
+            _MAP_UP_CACHE.clear()
+        _MAP_UP_CACHE[key] = map_vertical_ut(_load_map_cached(path))
+    return _MAP_UP_CACHE[key]
+
+
 def evaluation_run(task):
     """One sweep run: localise ``task["walk_files"]`` on ``task["map_path"]``
     with ``task["settings"]`` and the task's seed; returns its scores.
@@ -624,11 +638,11 @@ def evaluation_run(task):
     s = filter_settings(filt, preset_name=task.get("preset", "default"))
     ss = np.random.SeedSequence(task["seed"]["entropy"], spawn_key=tuple(task["seed"]["spawn_key"]))
     noise_ss, run_ss = ss.spawn(2)
-    walk, cps, truth = load_walk(wf)
+    fmap = _load_map_cached(task["map_path"])
+    walk, cps, truth = load_walk(wf, expected_up_ut=_map_vertical_cached(task["map_path"]))
     if cps is None:
         raise ConfigError(f"walk {wf.name} has no checkpoints file beside {wf.log}")
     walk = perturb_walk(walk, noise, np.random.default_rng(noise_ss))
-    fmap = _load_map_cached(task["map_path"])
     we = evaluate_walk(wf.name, walk, cps, fmap, mode=task["mode"], settings=s, seed=run_ss, baselines=())
     r = we.main_result
     st = M.error_stats(r.scored_errors_m)

@@ -191,3 +191,42 @@ def test_global_mode_scores_all_and_records_convergence():
     k = int(np.flatnonzero(r.errors_m >= 3.0).max()) + 1 if np.any(r.errors_m >= 3.0) else 0
     assert we.convergence_distance_m == pytest.approx(we.distance_m[k])
     assert np.all(r.errors_m[k:] < 3.0)
+
+
+# -- the vertical offset a robot's planar self-calibration cannot see ----------
+def test_map_vertical_field_is_the_mean_along_the_graph():
+    # reference: points drawn uniformly along the graph with
+    # FloorGraph.sample_uniform (an independent sampler)
+    import _pf_synth as S
+    from mapping.evaluate import map_vertical_ut
+
+    g = S.grid_graph()
+    fm = S.field_map(g)
+    e, off = g.sample_uniform(200_000, np.random.default_rng(0))
+    m, _, _ = fm.lookup(g.point(e, off))
+    assert map_vertical_ut(fm) == pytest.approx(m[:, 2].mean(), abs=0.05)
+
+
+def test_walks_read_for_a_map_take_the_robot_vertical_offset_from_it(tmp_path):
+    # a bare robot magnetometer turning about z only, 55 µT of vertical
+    # hard-iron offset (the construction's truth), on a floor whose mapped
+    # vertical field is -41 µT everywhere: read for that map, the walk's
+    # vertical field comes back to -41 µT; read without it, 55 µT stay in
+    # (the offset along the turning axis is not observable: common
+    # practice, no source)
+    import _pf_synth as S
+    from fingerprint.logio import write_walk_log
+    from mapping.evaluate import load_walks
+    from mapping.walkset import WalkFiles
+    from test_pipeline import _robot_log
+
+    log, _, _ = _robot_log(offset=(30.0, -80.0, 55.0))
+    path = tmp_path / "rb.log.csv"
+    write_walk_log(path, log)
+    g = S.grid_graph()
+    fm = S.field_map(g, field=lambda xy: np.broadcast_to([0.0, 22.0, -41.0], xy.shape[:-1] + (3,)).copy())
+    wf = [WalkFiles(name="rb", log=path, checkpoints=None, track=None)]
+    (with_map,) = load_walks(wf, fmap=fm)
+    (plain,) = load_walks(wf)
+    assert np.mean(with_map.walk.mag_earth_ut[:, 2]) == pytest.approx(-41.0, abs=0.5)
+    assert np.mean(plain.walk.mag_earth_ut[:, 2]) > -41.0 + 40.0

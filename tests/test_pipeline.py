@@ -146,6 +146,24 @@ def test_robot_vertical_offset_from_expected_total_field():
     np.testing.assert_allclose(w2.mag_earth_ut, w.mag_earth_ut)
 
 
+def test_robot_vertical_offset_from_expected_vertical_field():
+    """The same bare robot with the expected mean vertical field given (a
+    floor map's mean along its graph, mapping.evaluate.map_vertical_ut):
+    the offset along z, which turning about z alone cannot show (common
+    practice, no source), comes back to the construction's 55 µT; a log
+    whose magnetometer the device calibrated is left alone."""
+    log, rot, _ = _robot_log(offset=(30.0, -80.0, 55.0))
+    w = process_walk(log, expected_up_ut=B_ENU[2])
+    cal = w.meta["calibration"]
+    assert cal["vertical_offset_from"] == "field_up"
+    np.testing.assert_allclose(cal["offset_ut"], [30.0, -80.0, 55.0], atol=0.7)
+    assert np.mean(w.mag_earth_ut[:, 2]) == pytest.approx(B_ENU[2], abs=0.5)
+    done = WalkLog(t=log.t, acc=log.acc, gyro=log.gyro, mag=log.mag - [30.0, -80.0, 55.0], odom=log.odom,
+                   meta={"platform": "robot", "magnetometer_calibrated": "yes"})
+    np.testing.assert_array_equal(process_walk(done, expected_up_ut=-10.0).mag_earth_ut,
+                                  process_walk(done).mag_earth_ut)
+
+
 def test_expected_total_from_geomag_background(tmp_path):
     """The site's IGRF total (fingerprint.geomag, ppigrf) as the expected
     field: a robot log synthesised in that background field gets its

@@ -177,9 +177,10 @@ def run(args):
         from fingerprint.pipeline import process_walk
 
         from ..commands.locate import parse_start
+        from ..evaluate import map_vertical_ut
 
         dmap = load_map(args.map_path)
-        walk = process_walk(read_walk_log(args.log))
+        walk = process_walk(read_walk_log(args.log), expected_up_ut=map_vertical_ut(dmap))
         start, sigma = (None, 1.0) if args.start is None else parse_start(args.start)
         label = f"walk {args.log}"
     else:

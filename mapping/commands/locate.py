@@ -208,7 +208,11 @@ def run(args):
                 f"{args.map_path} (its nodes span x {x0:.1f}..{x1:.1f}, y {y0:.1f}..{y1:.1f} m); expected a "
                 "point on the floor in plan metres"
             )
-    walk = process_walk(log, calibration=calibration, step_constant=args.step_constant)
+    from ..evaluate import map_vertical_ut
+
+    # a robot's planar self-calibration takes the offset along z from the map
+    walk = process_walk(log, calibration=calibration, step_constant=args.step_constant,
+                        expected_up_ut=map_vertical_ut(fmap))
     if args.start_time is not None and walk.motion.n and not np.any(walk.motion.t > args.start_time):
         raise ConfigError(f"--start-time {args.start_time:g} s is after the last step of {args.log} "
                           f"(at {float(walk.motion.t[-1]):.1f} s): nothing left to localise")
