@@ -594,29 +594,29 @@ def perturb_walk(walk, noise, rng):
 _MAP_CACHE = {}
 
 
-def _load_map_cached(path):
+def _map_entry(path):
+    """[FieldMap, its mean vertical field or None] of ``path``, cached per process."""
     from fingerprint.mapfile import load_map
 
     key = str(path)
     if key not in _MAP_CACHE:
         if len(_MAP_CACHE) > 4:
             _MAP_CACHE.clear()
-        _MAP_CACHE[key] = load_map(path)
+        _MAP_CACHE[key] = [load_map(path), None]
     return _MAP_CACHE[key]
 
 
-_MAP_UP_CACHE = {}
+def _load_map_cached(path):
+    return _map_entry(path)[0]
 
 
 def _map_vertical_cached(path):
     from .evaluate import map_vertical_ut
 
-    key = str(path)
-    if key not in _MAP_UP_CACHE:
-        if len(_MAP_UP_CACHE) > 4:
-            _MAP_UP_CACHE.clear()
-        _MAP_UP_CACHE[key] = map_vertical_ut(_load_map_cached(path))
-    return _MAP_UP_CACHE[key]
+    entry = _map_entry(path)
+    if entry[1] is None:
+        entry[1] = map_vertical_ut(entry[0])
+    return entry[1]
 
 
 def evaluation_run(task):
