@@ -237,13 +237,12 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         ``step_constant``, ``n_steps`` (handheld), ``mag_noise_ut``.
     """
     s = settings or PipelineSettings()
-    if expected_total_ut is not None or expected_up_ut is not None:
+    given = {k: float(v) for k, v in (("expected_total_ut", expected_total_ut), ("field_up_ut", expected_up_ut))
+             if v is not None}
+    if given:
         from dataclasses import replace as _replace
 
-        if expected_total_ut is not None:
-            s = _replace(s, expected_total_ut=float(expected_total_ut))
-        if expected_up_ut is not None:
-            s = _replace(s, field_up_ut=float(expected_up_ut))
+        s = _replace(s, **given)
     if log.n < 10:
         raise DataError(f"a walk needs at least 10 samples to process, got {log.n}", path=log.path)
     t = log.t
