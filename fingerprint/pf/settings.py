@@ -122,10 +122,11 @@ class FilterSettings:
         (``field_valid_prior``); a repeated one, before the level has come
         back under c / 4, leaves that check at no less than its prior (the
         map may explain the walk's field nowhere). Off by default: on the
-        demo building it flags few kidnaps and flags a robot with a large
-        vertical offset as lost all along a walk it tracks well (README).
-        When on, 16 is the smallest of 8, 12, 16, 24 that raised no false
-        alarm in cross-validation on the real survey walks
+        demo building it flags none of ten kidnapped walks, and an offset
+        beyond the bias prior (a robot's uncorrected vertical hard-iron)
+        sets it off all along a walk tracked well (README). When on, 16 is
+        the smallest of 8, 12, 16, 24 that raised no false alarm in
+        cross-validation on the real survey walks
 
     Estimate (``fingerprint.pf.estimate``)
     --------------------------------------
