@@ -42,9 +42,12 @@ the survey walks of the other folds, and every scored walk (each must be a
 survey walk) is localised on the map that did not see it.
 
 Every finished run is written at once as ``OUT/runs/<key>.json``
-(atomically), ``key`` a hash of its settings, walk, seed, mode and data;
-a rerun skips the keys already there, so killing a sweep loses nothing
-finished. ``OUT/results.csv`` is the tidy table (one row per run) and
+(atomically), ``key`` a hash of its settings (every filter setting,
+defaults included), walk, seed, mode and data (paths, the contents of the
+map, site, plan, split, survey and scored walk files, and the lodemap
+version); a rerun skips the keys already there, so killing a sweep loses
+nothing finished, and a run whose inputs or defaults changed is run again.
+``OUT/results.csv`` is the tidy table (one row per run) and
 ``OUT/ranking.csv`` ranks the settings with seeded bootstrap confidence
 intervals.
 """
@@ -136,7 +139,25 @@ class SweepConfig:
         }
         if self.folds:
             ident["folds"] = self.folds
+        ident["content_sha256"] = self.content_digest()
+        ident["lodemap"] = _package_version()
         return ident
+
+    def content_digest(self):
+        """SHA-256 (hex) of the bytes of every input the maps depend on:
+        the map file, the site file and this floor's plan, the split file
+        and the survey walks' files. Part of every map and run key, so that
+        a map rebuilt into the same path or a re-recorded survey walk is not
+        taken for the old one on a rerun."""
+        paths = [p for p in (self.map, self.site, self.split) if p is not None]
+        if self.site is not None and self.floor is not None:
+            from .site import load_site
+
+            paths.append(load_site(self.site).plan_path(self.floor))
+        if self.survey:
+            for w in _survey_walks(self):
+                paths.extend(p for p in (w.log, w.checkpoints, w.track) if p is not None)
+        return files_digest(paths)
 
 
 def load_sweep_config(path):
@@ -292,16 +313,58 @@ def expand_settings(cfg, *, rng=None):
     return out
 
 
+_DIGESTS = {}
+
+
+def file_sha256(path):
+    """SHA-256 (hex) of a file's bytes, cached per path, size and
+    modification time (a sweep asks for the same files many times)."""
+    path = Path(path)
+    try:
+        st = path.stat()
+    except OSError as err:
+        raise ConfigError(f"{path}: cannot read ({err.strerror})") from err
+    key = (str(path.resolve()), st.st_size, st.st_mtime_ns)
+    if key not in _DIGESTS:
+        h = hashlib.sha256()
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+        _DIGESTS[key] = h.hexdigest()
+    return _DIGESTS[key]
+
+
+def files_digest(paths):
+    """One SHA-256 (hex) over the contents of ``paths``, in the given order."""
+    h = hashlib.sha256()
+    for p in paths:
+        h.update(file_sha256(p).encode("ascii"))
+    return h.hexdigest()
+
+
+def _package_version():
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("lodemap")
+    except PackageNotFoundError:  # run from a source tree without installing
+        return "unknown"
+
+
 def run_key(task):
-    """Hash (16 hex digits) of a task's settings, walk, seed, mode and data."""
+    """Hash (16 hex digits) of a task's settings, walk (and the digest of
+    its files, when the task has one), seed, mode and data."""
     ident = {k: task.get(k) for k in ("settings", "walk", "seed", "mode", "data")}
+    if task.get("walk_sha256") is not None:
+        ident["walk_sha256"] = task["walk_sha256"]
     if task.get("filter") is not None:  # every filter setting, defaults included
         ident["filter"] = task["filter"]
     text = json.dumps(ident, sort_keys=True, separators=(",", ":"), default=str)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
 
-def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=None, extra=None, resolve=None):
+def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=None, extra=None, resolve=None,
+               walk_digests=None):
     """settings x walks x seeds as a list of task dicts.
 
     The run seeds are ``numpy.random.SeedSequence(root_seed).spawn(seeds)``;
@@ -319,6 +382,9 @@ def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=
         every filter setting it stands for (defaults included); stored as
         the task's ``filter`` and part of its key, so that a run stored
         under other defaults (an older version) is not taken for this one
+    walk_digests : dict, optional, walk -> digest of its files (stored as
+        the task's ``walk_sha256`` and part of its key: a re-recorded walk
+        is run again)
     """
     children = np.random.SeedSequence(int(root_seed)).spawn(int(seeds))
     tasks = []
@@ -336,6 +402,8 @@ def make_tasks(settings_list, walks, *, seeds, root_seed, mode="tracking", data=
         }
         if resolved[j] is not None:
             task["filter"] = resolved[j]
+        if walk_digests is not None:
+            task["walk_sha256"] = walk_digests[w]
         task["key"] = run_key(task)
         if extra:
             task.update(extra)
@@ -766,9 +834,11 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     data = cfg.data_identity()
     if cfg.preset != "default":
         data["preset"] = cfg.preset  # part of every run key
+    digests = {w.name: files_digest([p for p in (w.log, w.checkpoints, w.track) if p is not None]) for w in walks}
     tasks = make_tasks(settings_list, names, seeds=cfg.seeds, root_seed=cfg.seed, mode=cfg.mode, data=data,
                        extra={"preset": cfg.preset},
-                       resolve=lambda st: filter_settings(split_settings(st)[2], preset_name=cfg.preset).to_dict())
+                       resolve=lambda st: filter_settings(split_settings(st)[2], preset_name=cfg.preset).to_dict(),
+                       walk_digests=digests)
     for t in tasks:
         m, _, _ = split_settings(t["settings"])
         w = by_name[t["walk"]]

@@ -5,6 +5,7 @@ bootstrap ranking."""
 import csv
 import json
 import textwrap
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -284,6 +285,14 @@ def test_run_sweep_end_to_end_with_a_fake_run(tmp_path):
     assert "Ranking" in html and "data:image/png;base64," in html
     again = run_sweep(cfg, tmp_path / "out", jobs=1, progress=False, run_fn=fake_run)
     assert again["counts"]["done"] == 0 and again["counts"]["skipped"] == 16
+    # a re-recorded walk is run again (its 4 settings x 2 seeds), the other kept
+    (walks / "walk_001.checkpoints.csv").write_text("t,x,y\n0.0,1.0,2.0\n")
+    redo = run_sweep(cfg, tmp_path / "out", jobs=1, progress=False, run_fn=fake_run)
+    assert redo["counts"] == {"done": 8, "skipped": 8, "total": 16}
+    # a map rebuilt into the same path: every run again
+    (tmp_path / "floor.map").write_bytes(b"rebuilt")
+    remap = run_sweep(cfg, tmp_path / "out", jobs=1, progress=False, run_fn=fake_run)
+    assert remap["counts"] == {"done": 16, "skipped": 0, "total": 16}
     with pytest.raises(ConfigError, match="unknown setting"):
         bad = _cfg(tmp_path, BASE + "[grid]\nn_partickles = [100]\n")
         run_sweep(bad, tmp_path / "out2", progress=False, run_fn=fake_run)
@@ -352,3 +361,30 @@ def test_filter_settings_from_a_preset():
         assert getattr(s, k) == v
     with pytest.raises(ConfigError, match="preset"):
         filter_settings({}, preset_name="bogus")
+
+
+def test_map_inputs_are_part_of_the_data_identity(tmp_path):
+    """The maps a sweep builds are keyed by the contents of the site, its
+    plan and the survey walks, so a changed plan or a re-recorded survey
+    walk is not served from OUT/maps (common practice, no source: a cache
+    keyed by content, not by name)."""
+    import shutil
+
+    site = tmp_path / "site"
+    shutil.copytree(Path(__file__).parent / "data" / "tiny_site", site)
+    survey = tmp_path / "survey"
+    survey.mkdir()
+    (survey / "walk_000.log.csv").write_text("t\n")
+    (survey / "walk_000.checkpoints.csv").write_text("t,x,y\n")
+    body = ("[data]\nwalks = [\"survey\"]\nsite = \"site/site.json\"\nfloor = \"T\"\n"
+            "survey = [\"survey\"]\n[grid]\nn_particles = [100]\n")
+    first = _cfg(tmp_path, body).data_identity()
+    assert _cfg(tmp_path, body).data_identity() == first  # stable
+    (survey / "walk_000.checkpoints.csv").write_text("t,x,y\n0,1,2\n")
+    second = _cfg(tmp_path, body).data_identity()
+    plan = site / "T" / "floor.plan.geojson"
+    plan.write_text(plan.read_text() + "\n")
+    third = _cfg(tmp_path, body).data_identity()
+    digests = [d["content_sha256"] for d in (first, second, third)]
+    assert len(set(digests)) == 3
+    assert first["survey"] == third["survey"]  # the paths alone did not change
