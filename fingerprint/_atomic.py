@@ -10,7 +10,9 @@ import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_write", "write_text_atomic", "write_json_atomic"]
+from .errors import OutputError
+
+__all__ = ["atomic_write", "write_text_atomic", "write_json_atomic", "check_writable"]
 
 
 def _umask():
@@ -32,8 +34,13 @@ def atomic_write(path, mode="w", **open_kwargs):
         Text or binary.
     """
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        if path.is_dir():
+            raise IsADirectoryError(21, "Is a directory", str(path))
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    except OSError as err:
+        raise OutputError(path, err) from None
     # mkstemp makes the file private (0600); give it the mode a plain open()
     # would: that of the file it replaces, else 0666 less the umask
     try:
@@ -45,16 +52,43 @@ def atomic_write(path, mode="w", **open_kwargs):
     if "b" not in mode:
         open_kwargs.setdefault("encoding", "utf-8")
         open_kwargs.setdefault("newline", "")
+    writing = True  # OSErrors of our own writing (not of the caller's code) name the target
     try:
         with os.fdopen(fd, mode, **open_kwargs) as fh:
+            writing = False
             yield fh
+            writing = True
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as err:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
+        if writing and isinstance(err, OSError):
+            raise OutputError(path, err) from None
         raise
+
+
+def check_writable(path, *, folder=False):
+    """Fail early, before long work, if ``path`` cannot be written: create
+    its folder (or, with ``folder``, the folder ``path`` itself) and a
+    temporary file in it, then remove the file.
+
+    Raises
+    ------
+    OutputError, naming ``path`` and the system's reason
+    """
+    path = Path(path)
+    where = path if folder else path.parent
+    try:
+        if not folder and path.is_dir():
+            raise IsADirectoryError(21, "Is a directory", str(path))
+        where.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=".lodemap-check.", suffix=".tmp", dir=where)
+        os.close(fd)
+        os.unlink(tmp)
+    except OSError as err:
+        raise OutputError(path, err, expect="folder" if folder else "file") from None
 
 
 def write_text_atomic(path, text):

@@ -8,6 +8,8 @@ traceback.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 __all__ = [
     "LodemapError",
     "DataError",
@@ -15,6 +17,7 @@ __all__ = [
     "ConfigError",
     "ConvergenceError",
     "MapFileError",
+    "OutputError",
 ]
 
 
@@ -70,3 +73,24 @@ class ConvergenceError(LodemapError):
 class MapFileError(DataError):
     """A map file that is corrupted, truncated, of another version or
     another plan."""
+
+
+class OutputError(LodemapError):
+    """An output that cannot be written (a read-only or full disk, a folder
+    where a file should go, a file where a folder should go).
+
+    Parameters
+    ----------
+    path : str or Path, the output the user asked for
+    err : OSError, the system's reason
+    expect : "file" or "folder", what ``path`` should be
+    """
+
+    def __init__(self, path, err, *, expect="file"):
+        self.path = str(path)
+        reason = err.strerror or str(err)
+        if expect == "file" and Path(self.path).is_dir():
+            reason = "it is a folder; expected a file name"
+        elif isinstance(err, (NotADirectoryError, FileExistsError)) and err.filename:
+            reason = f"{err.filename} is a file where a folder is needed"
+        super().__init__(f"{self.path}: cannot write: {reason}")

@@ -80,9 +80,6 @@ def main(argv=None):
     except LodemapError as err:
         print(f"lodemap {args.command}: error: {err}", file=sys.stderr)
         return 2
-    except (FileNotFoundError, IsADirectoryError, PermissionError) as err:
-        print(f"lodemap {args.command}: error: {err.strerror}: {err.filename}", file=sys.stderr)
-        return 2
     except BrokenPipeError:
         # the reader of our output went away (`lodemap ... | head`): not an error
         import os
@@ -90,6 +87,12 @@ def main(argv=None):
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 0
+    except OSError as err:
+        # the system refused a file (missing, read-only, a folder for a
+        # file, a full disk): not a bug, one line like any bad input
+        where = f": {err.filename}" if err.filename else ""
+        print(f"lodemap {args.command}: error: {err.strerror or err}{where}", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print(f"lodemap {args.command}: interrupted", file=sys.stderr)
         return 130

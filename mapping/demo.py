@@ -120,8 +120,10 @@ def run_demo(out, *, quick=False, seed=0, site_dir=None, progress=True, jobs=1, 
     from .site import load_site
     from .walkset import find_walks
 
+    from fingerprint._atomic import check_writable
+
     out = Path(out)
-    out.mkdir(parents=True, exist_ok=True)
+    check_writable(out, folder=True)
     site_dir = find_demo_site(site_dir)
     site = load_site(site_dir / "site.json")
     timings = {}

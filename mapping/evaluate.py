@@ -474,8 +474,10 @@ def write_outputs(ev, fmap, out_dir, *, title=None):
 
     from . import report as R
 
+    from fingerprint._atomic import check_writable
+
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    check_writable(out, folder=True)
     paths = {"summary": out / "summary.json", "run": out / "run.json", "walks": out / "walks.csv",
              "checkpoints": out / "checkpoints.csv", "cdf": out / "error_cdf.png", "report": out / "report.html"}
     write_json_atomic(paths["summary"], ev.summary)

@@ -66,7 +66,7 @@ from pathlib import Path
 
 import numpy as np
 
-from fingerprint._atomic import write_json_atomic, write_text_atomic
+from fingerprint._atomic import check_writable, write_json_atomic, write_text_atomic
 from fingerprint.errors import ConfigError, FormatError
 
 __all__ = [
@@ -416,7 +416,7 @@ class RunStore:
 
     def __init__(self, folder):
         self.folder = Path(folder)
-        self.folder.mkdir(parents=True, exist_ok=True)
+        check_writable(self.folder, folder=True)
 
     def path(self, key):
         return self.folder / f"{key}.json"
@@ -806,7 +806,7 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     from .walkset import find_walks
 
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    check_writable(out, folder=True)
     settings_list = expand_settings(cfg)
     # validate names before anything runs
     for s in settings_list:

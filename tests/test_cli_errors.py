@@ -87,3 +87,82 @@ def test_settings_changes_are_read_alike_by_every_option():
                    "bias_corr_updates": None, "n_particles": 500}
     with pytest.raises(ConfigError, match="^--x: expected NAME=VALUE"):
         parse_set_options(["=1"], option="--x")
+
+
+def _single_error_line(capsys):
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "Traceback" not in err[0], err
+    return err[0]
+
+
+@pytest.mark.parametrize("command", ["locate", "map-query", "map-image", "evaluate", "sweep"])
+def test_output_under_a_file_is_one_line_naming_it(small_map, tmp_path, capsys, command):
+    """An --out whose folder is an existing file: exit 2, one line naming the
+    output and the file in the way (common practice, no source)."""
+    blocker = tmp_path / "points.csv"
+    blocker.write_text("x,y\n1,2\n")
+    before = blocker.read_bytes()
+    out = blocker / "result"
+    argv = {
+        "locate": ["locate", "--map", str(small_map), str(REAL_LOG), "--out", str(out)],
+        "map-query": ["map-query", str(small_map), str(blocker), "--out", str(out)],
+        "map-image": ["map-image", str(small_map), "--out", str(out)],
+        "evaluate": ["evaluate", "--map", str(small_map), str(REAL_LOG), "--out", str(out), "--no-progress"],
+        "sweep": ["sweep", str(tmp_path / "s.toml"), "--out", str(out), "--no-progress"],
+    }[command]
+    if command == "sweep":
+        (tmp_path / "s.toml").write_text(f'[data]\nwalks = ["{REAL_LOG}"]\nmap = "{small_map}"\n')
+    assert main(argv) == 2
+    line = _single_error_line(capsys)
+    assert f"{out}: cannot write" in line and str(blocker) in line, line
+    assert blocker.read_bytes() == before  # nothing lost
+
+
+def test_output_that_is_a_folder_is_one_line(small_map, tmp_path, capsys):
+    pts = tmp_path / "p.csv"
+    pts.write_text("x,y\n1,2\n")
+    assert main(["map-query", str(small_map), str(pts), "--out", str(tmp_path)]) == 2
+    line = _single_error_line(capsys)
+    assert f"{tmp_path}: cannot write: it is a folder" in line, line
+
+
+def test_read_only_output_names_the_target_not_a_temporary(tmp_path, monkeypatch):
+    """A write the system refuses (here a read-only file system, errno 30
+    EROFS of POSIX, simulated: the tests may run as root, whom permissions do
+    not stop) raises the project's OutputError naming the file asked for,
+    and the existing file is kept."""
+    import errno
+    import tempfile
+
+    from fingerprint._atomic import check_writable, write_text_atomic
+    from fingerprint.errors import OutputError
+
+    target = tmp_path / "track.csv"
+    target.write_text("old\n")
+
+    def refuse(*args, **kwargs):
+        raise OSError(errno.EROFS, "Read-only file system", str(tmp_path / ".track.csv.x.tmp"))
+
+    monkeypatch.setattr(tempfile, "mkstemp", refuse)
+    with pytest.raises(OutputError, match=r"track\.csv: cannot write: Read-only file system$"):
+        write_text_atomic(target, "new\n")
+    with pytest.raises(OutputError, match="Read-only file system"):
+        check_writable(tmp_path / "eval", folder=True)
+    assert target.read_text() == "old\n"
+
+
+def test_build_map_checks_its_output_before_fitting(tmp_path, capsys, monkeypatch):
+    """The output is checked before the walks are read (the fit would take
+    minutes): no walk folder is needed to see the error."""
+    import mapping.mapbuild as mb
+
+    def no_fit(*a, **k):
+        raise AssertionError("the map was fitted before the output was checked")
+
+    monkeypatch.setattr(mb, "build_floor_map", no_fit)
+    blocker = tmp_path / "file"
+    blocker.write_text("x")
+    site = Path(__file__).parent / "data" / "tiny_site" / "site.json"
+    assert main(["build-map", "--site", str(site), "--floor", "T", "--out", str(blocker / "T.map"),
+                 str(tmp_path / "no-walks")]) == 2
+    assert "cannot write" in _single_error_line(capsys)

@@ -382,8 +382,10 @@ def write_walk(folder, walk):
     log path."""
     from ..logio import write_checkpoints, write_track, write_walk_log
 
+    from .._atomic import check_writable
+
     folder = Path(folder)
-    folder.mkdir(parents=True, exist_ok=True)
+    check_writable(folder, folder=True)
     log_path = folder / f"{walk.name}.log.csv"
     write_walk_log(log_path, walk.log)
     write_checkpoints(folder / f"{walk.name}.checkpoints.csv", walk.checkpoints)

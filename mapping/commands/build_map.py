@@ -49,6 +49,9 @@ def run(args):
 
     if args.resolution <= 0:
         raise ConfigError(f"--resolution must be > 0, got {args.resolution}")
+    from fingerprint._atomic import check_writable
+
+    check_writable(args.out)  # before minutes of fitting, not after
     site = load_site(args.site)
     walks = find_walks(args.walks, split=args.split, part=args.use if args.split else None)
     params = {}

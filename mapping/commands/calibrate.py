@@ -35,6 +35,9 @@ def run(args):
     from fingerprint.logio import read_walk_log
     from fingerprint.pipeline import up_directions
 
+    from fingerprint._atomic import check_writable
+
+    check_writable(args.out)
     log = read_walk_log(args.log)
     src = args.source
     if src == "auto":

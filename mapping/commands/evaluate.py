@@ -98,6 +98,9 @@ def run(args):
     if not (args.start_sigma > 0):
         raise ConfigError(f"--start-sigma must be > 0, got {args.start_sigma}")
     baselines = parse_baselines(args.baselines)
+    from fingerprint._atomic import check_writable
+
+    check_writable(args.out, folder=True)  # before localising every walk, not after
     from fingerprint.localise import preset
 
     from .locate import parse_set_options, with_changes

@@ -186,8 +186,13 @@ def run(args):
     from fingerprint.mapfile import load_map
     from fingerprint.pipeline import process_walk
 
+    from fingerprint._atomic import check_writable
+
     start_xy, sigma = (None, 1.0) if args.start is None else parse_start(args.start)
     settings = build_settings(args, global_mode=start_xy is None)
+    for out in (args.out, args.geojson):
+        if out is not None:
+            check_writable(out)
     fmap = load_map(args.map_path)
     log = read_walk_log(args.log)
     calibration = None

@@ -22,6 +22,9 @@ def run(args):
 
     if args.dpi < 1:
         raise ConfigError(f"--dpi must be a positive integer, got {args.dpi}")
+    from fingerprint._atomic import check_writable
+
+    check_writable(args.out)
     fmap = load_map(args.map_path)
     if args.kind == "field":
         field_image(fmap, args.out, dpi=args.dpi)

@@ -68,6 +68,9 @@ def run(args):
     from fingerprint._atomic import write_text_atomic
     from fingerprint.mapfile import load_map
 
+    from fingerprint._atomic import check_writable
+
+    check_writable(args.out)
     fmap = load_map(args.map_path)
     xy = read_points(args.points)
     rows = query(fmap, xy)

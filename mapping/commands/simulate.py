@@ -75,7 +75,7 @@ def run(args):
     import shapely
     from tqdm import tqdm
 
-    from fingerprint._atomic import write_json_atomic
+    from fingerprint._atomic import check_writable, write_json_atomic
     from fingerprint.errors import ConfigError
     from fingerprint.geomag import background_field
     from fingerprint.simulate import DatasetSettings, field_model_for_floor, load_steel, plan_floor, simulate_job
@@ -108,6 +108,7 @@ def run(args):
     for f in floors:
         site.plan_path(f)  # ConfigError listing the floors
     out = Path(args.out)
+    check_writable(out, folder=True)  # before minutes of simulation
     prepared = []
     for floor in floors:
         plan_path = site.floors[floor]

@@ -63,7 +63,10 @@ def run(args):
             import dask.distributed  # noqa: F401
         except ImportError as err:
             raise ConfigError("--scheduler needs dask.distributed: pip install 'lodemap[cluster]'") from err
+    from fingerprint._atomic import check_writable
+
     cfg = load_sweep_config(args.config)
+    check_writable(args.out, folder=True)
     res = run_sweep(cfg, args.out, jobs=args.jobs, scheduler=args.scheduler, progress=not args.no_progress)
     c = res["counts"]
     print(f"runs: {c['done']} done now, {c['skipped']} already stored, {c['total']} in the sweep")
