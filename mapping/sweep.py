@@ -60,6 +60,7 @@ import io
 import itertools
 import json
 import math
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -624,13 +625,44 @@ def filter_settings(overrides, *, preset_name="default"):
 
     from fingerprint.localise import FilterSettings, preset
 
+    import difflib
+
     valid = {f.name for f in dataclasses.fields(FilterSettings)}
     bad = sorted(set(overrides) - valid)
     if bad:
-        raise ConfigError(
-            f"unknown setting(s) {bad}; valid: {sorted(valid | set(MAP_SETTINGS) | set(NOISE_SETTINGS))}"
-        )
+        names = sorted(valid | set(MAP_SETTINGS) | set(NOISE_SETTINGS))
+        close = difflib.get_close_matches(bad[0], names, n=1)
+        if close:  # one likely typo: the fix, not the whole list
+            raise ConfigError(f"unknown setting(s) {bad}; did you mean {close[0]!r}?")
+        raise ConfigError(f"unknown setting(s) {bad}; valid: {names}")
     return dataclasses.replace(preset(preset_name), **overrides)
+
+
+def _setting_error(cfg, err):
+    """``err`` (a ConfigError about one setting) as a ConfigError naming
+    the config file, the line and column of that setting in ``[grid]`` or
+    ``[random]`` and the table, when they can be found."""
+    text = str(err)
+    m = re.match(r"unknown setting\(s\) \['([^']+)'", text) or re.match(r"filter setting (\w+): ", text)
+    if not m or not cfg.path:
+        return ConfigError(f"{cfg.path}: {text}" if cfg.path else text)
+    name = m.group(1)
+    if text.startswith("filter setting "):
+        text = f"{name}: {text[m.end():]}"
+    table = None
+    try:
+        lines = Path(cfg.path).read_text(encoding="utf-8").splitlines()
+    except OSError:
+        lines = []
+    for i, line in enumerate(lines, 1):
+        head = re.match(r"\s*\[\s*([\w.-]+)\s*\]", line)
+        if head:
+            table = head.group(1)
+            continue
+        key = re.match(rf"(\s*){re.escape(name)}\s*=", line)
+        if key and table in ("grid", "random"):
+            return ConfigError(f"{cfg.path}, line {i}, column {len(key.group(1)) + 1}: [{table}] {text}")
+    return ConfigError(f"{cfg.path}: {text}")
 
 
 def perturb_walk(walk, noise, rng):
@@ -808,10 +840,13 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     out = Path(out_dir)
     check_writable(out, folder=True)
     settings_list = expand_settings(cfg)
-    # validate names before anything runs
+    # validate names and values before anything runs
     for s in settings_list:
         _, _, f = split_settings(s)
-        filter_settings(f, preset_name=cfg.preset)
+        try:
+            filter_settings(f, preset_name=cfg.preset)
+        except ConfigError as err:
+            raise _setting_error(cfg, err) from None
     walks = [w for w in find_walks(cfg.walks, split=cfg.split, part=cfg.use if cfg.split else None)
              if w.checkpoints is not None]
     if not walks:

@@ -166,3 +166,16 @@ def test_build_map_checks_its_output_before_fitting(tmp_path, capsys, monkeypatc
     assert main(["build-map", "--site", str(site), "--floor", "T", "--out", str(blocker / "T.map"),
                  str(tmp_path / "no-walks")]) == 2
     assert "cannot write" in _single_error_line(capsys)
+
+
+@pytest.mark.parametrize("options, words", [
+    (["--temper", "-1"], "--temper: expected a number > 0, got -1.0"),
+    (["--features", "fulll"], "--features: expected one of"),
+    (["--set", "field_temper=abc"], "--set field_temper: expected a number > 0, got 'abc'"),
+])
+def test_a_bad_filter_option_is_named_as_typed(small_map, tmp_path, capsys, options, words):
+    out = tmp_path / "t.csv"
+    assert main(["locate", "--map", str(small_map), str(REAL_LOG), "--out", str(out)] + options) == 2
+    line = _single_error_line(capsys)
+    assert f"lodemap locate: error: {words}" in line, line
+    assert not out.exists()

@@ -388,3 +388,25 @@ def test_map_inputs_are_part_of_the_data_identity(tmp_path):
     digests = [d["content_sha256"] for d in (first, second, third)]
     assert len(set(digests)) == 3
     assert first["survey"] == third["survey"]  # the paths alone did not change
+
+
+@pytest.mark.parametrize("line, column, words", [
+    ("  field_tempr = [0.1]", 3, "[grid] unknown setting(s) ['field_tempr']; did you mean 'field_temper'?"),
+    ('n_particles = ["many"]', 1, "[grid] n_particles: expected an integer >= 1, got 'many'"),
+])
+def test_a_bad_setting_is_reported_at_its_line(tmp_path, line, column, words):
+    """A bad name or value in [grid] names the file, line, column and table
+    before anything runs (common practice, no source: errors point at the
+    text the user wrote)."""
+    from mapping.sweep import run_sweep
+
+    (tmp_path / "walks").mkdir()
+    (tmp_path / "walks" / "walk_000.log.csv").write_text("t\n")
+    (tmp_path / "walks" / "walk_000.checkpoints.csv").write_text("t,x,y\n")
+    (tmp_path / "floor.map").write_bytes(b"")
+    cfg = _cfg(tmp_path, BASE + "[grid]\n" + line + "\n")
+    lineno = Path(cfg.path).read_text().splitlines().index(line) + 1
+    with pytest.raises(ConfigError) as info:
+        run_sweep(cfg, tmp_path / "out", progress=False, run_fn=fake_run)
+    assert str(info.value) == f"{cfg.path}, line {lineno}, column {column}: {words}"
+    assert not (tmp_path / "out" / "runs").exists()  # nothing ran

@@ -192,7 +192,7 @@ class FilterSettings:
         from .resampling import RESAMPLERS
 
         def bad(name, why):
-            raise ConfigError(f"FilterSettings.{name}: expected {why}, got {getattr(self, name)!r}")
+            raise ConfigError(f"filter setting {name}: expected {why}, got {getattr(self, name)!r}")
 
         for name in ("n_particles", "n_particles_global"):
             if not (isinstance(getattr(self, name), int) and getattr(self, name) >= 1):

@@ -150,7 +150,7 @@ def run(args):
             raise ConfigError(f"--real-seeds: expected comma-separated integers, got {args.real_seeds!r}") from None
         floors = None if not args.real_floors else [f.strip() for f in args.real_floors.split(",") if f.strip()]
         changes = parse_set_options(args.real_set, option="--real-set")
-        with_changes(FilterSettings(), changes)  # names and values checked up front
+        with_changes(FilterSettings(), changes, option="--real-set")  # names and values checked up front
         label = "field" + "".join(f", {k}={v}" for k, v in changes.items())
         variants = {"no-field": {"use_field": False}, label: changes}
         run_real(args.real, floors=floors, seeds=seeds or (0,), cache_dir=args.real_cache, variants=variants)

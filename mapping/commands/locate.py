@@ -6,6 +6,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import re
 import sys
 import time
 
@@ -101,19 +102,18 @@ def build_settings(args, *, global_mode):
     from fingerprint.localise import preset
 
     changes = parse_set_options(args.set)
+    source = {name: f"--set {name}" for name in changes}  # which option set what, for errors
     if args.particles is not None:
         if args.particles < 1:
             raise ConfigError(f"--particles must be >= 1, got {args.particles}")
         changes["n_particles_global" if global_mode else "n_particles"] = int(args.particles)
     if args.no_field:
         changes["use_field"] = False
-    if args.features is not None:
-        changes["feature_set"] = args.features
-    if args.likelihood is not None:
-        changes["likelihood"] = args.likelihood
-    if args.temper is not None:
-        changes["field_temper"] = args.temper
-    return with_changes(preset(getattr(args, "preset", "default")), changes)
+    for option, name in (("features", "feature_set"), ("likelihood", "likelihood"), ("temper", "field_temper")):
+        if getattr(args, option) is not None:
+            changes[name] = getattr(args, option)
+            source[name] = f"--{option}"
+    return with_changes(preset(getattr(args, "preset", "default")), changes, sources=source)
 
 
 def parse_set_options(items, *, option="--set"):
@@ -135,14 +135,22 @@ def parse_set_options(items, *, option="--set"):
     return changes
 
 
-def with_changes(base, changes):
+def with_changes(base, changes, *, option="--set", sources=None):
     """``base`` FilterSettings with ``changes`` (an integer given for a float
-    setting becomes a float)."""
+    setting becomes a float). A bad value is reported under the option that
+    gave it: ``sources`` maps a setting name to it (default ``option NAME``)."""
     changes = dict(changes)
     for name, value in changes.items():
         if isinstance(getattr(base, name), float) and isinstance(value, int) and not isinstance(value, bool):
             changes[name] = float(value)
-    return dataclasses.replace(base, **changes)
+    try:
+        return dataclasses.replace(base, **changes)
+    except ConfigError as err:
+        m = re.match(r"filter setting (\w+): (.*)", str(err))
+        if m and m.group(1) in changes:
+            where = (sources or {}).get(m.group(1), f"{option} {m.group(1)}")
+            raise ConfigError(f"{where}: {m.group(2)}") from None
+        raise
 
 
 def track_csv_text(track, *, comments):
