@@ -470,11 +470,10 @@ def write_outputs(ev, fmap, out_dir, *, title=None):
     dict of name -> Path (and ``images``: file name -> base64 PNG, to
     embed the same figures elsewhere)
     """
+    from fingerprint._atomic import check_writable
     from fingerprint.logio import write_track
 
     from . import report as R
-
-    from fingerprint._atomic import check_writable
 
     out = Path(out_dir)
     check_writable(out, folder=True)
@@ -486,15 +485,23 @@ def write_outputs(ev, fmap, out_dir, *, title=None):
     write_text_atomic(paths["walks"], _csv(wc, wr))
     cc, cr = per_checkpoint_rows(ev)
     write_text_atomic(paths["checkpoints"], _csv(cc, cr))
+    written = set()
     for w in ev.walks:
         t = w.main_result.track
         write_track(out / "tracks" / f"{w.name}.track.csv", Track(t=t.t, xy=t.xy, heading_rad=t.heading_rad))
+        written.add(f"{w.name}.track.csv")
     sections, images = report_sections(ev, fmap)
     cdf_b64 = images.pop("error_cdf.png")
     R.save_png(paths["cdf"], cdf_b64)
     for name, b64 in images.items():
         R.save_png(out / name, b64)
         paths[name] = out / name
+    # an earlier evaluation into the same folder: its tracks and track
+    # images of walks not in this run would pass for this run's
+    stale = [p for p in (out / "tracks").glob("*.track.csv") if p.name not in written]
+    stale += [p for p in out.glob("tracks*.png") if p.name not in images]
+    for p in stale:
+        p.unlink(missing_ok=True)
     paths["images"] = {"error_cdf.png": cdf_b64, **images}
     R.write_report(paths["report"], title or f"lodemap evaluation: {ev.map_info.get('floor', '')} {ev.mode}".strip(),
                    sections, subtitle=f"seed {ev.seed}; {len(ev.walks)} walks; written by lodemap evaluate")

@@ -131,3 +131,23 @@ def test_report_baselines_give_the_paired_difference(written):
     dtw = np.concatenate([w.results["dtw"].scored_errors_m for w in ev.walks])
     d50 = np.percentile(main, 50) - np.percentile(dtw, 50)
     assert f"{d50:+.2f} [" in text
+
+
+def test_a_second_run_into_the_same_folder_leaves_none_of_the_first(written, tmp_path):
+    """Evaluating fewer walks into the folder of an earlier run: no track of
+    a walk outside this run is left to pass for one of its results (common
+    practice, no source)."""
+    import dataclasses
+    import shutil
+
+    out, _, ev = written
+    again = tmp_path / "again"
+    shutil.copytree(out, again)
+    (again / "tracks" / "user_note.txt").write_text("mine")  # not ours: kept
+    one = dataclasses.replace(ev, walks=ev.walks[:1])
+    one.summary = summary_of(one)
+    write_outputs(one, fake_map(), again)
+    assert sorted(p.name for p in (again / "tracks").glob("*.track.csv")) == ["walk_000.track.csv"]
+    assert (again / "tracks" / "user_note.txt").read_text() == "mine"
+    with open(again / "walks.csv", newline="") as fh:
+        assert [r["walk"] for r in csv.DictReader(fh)] == ["walk_000"]

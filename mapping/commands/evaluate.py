@@ -12,8 +12,10 @@ HELP = "score localisation against checkpoints over many walks, with baselines a
 _EPILOG = """\
 Writes into --out: summary.json (the headline figures), run.json (seed,
 settings, map, walks), walks.csv (one row per walk), checkpoints.csv (one
-row per checkpoint), error_cdf.png, tracks*.png, tracks/<walk>.track.csv
-and report.html (self-contained, opens offline).
+row per checkpoint), error_cdf.png, error_distance.png, tracks*.png,
+tracks/<walk>.track.csv and report.html (self-contained, opens offline).
+Evaluating into the folder of an earlier run replaces its files; tracks
+and track images of walks not in this run are removed.
 
 Example:
   lodemap evaluate --map G.map sim/G/test --out eval-G --mode tracking --seed 1
