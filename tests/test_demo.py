@@ -249,6 +249,8 @@ def test_evaluate_bad_walk_stops_or_is_skipped(demo, tmp_path, capsys):
     assert rc == 2 and len(err) == 1 and "broken.log.csv" in err[0]
     rc = main(argv + ["--out", str(tmp_path / "b"), "--skip-bad"])
     assert rc == 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("lodemap evaluate: skipped broken: unreadable"), err
     run = json.loads((tmp_path / "b" / "run.json").read_text())
     assert run["walks"] == [first]
     assert [s["walk"] for s in run["skipped"]] == ["broken"] and "unreadable" in run["skipped"][0]["reason"]

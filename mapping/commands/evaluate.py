@@ -116,6 +116,8 @@ def run(args):
                         on_error="skip" if args.skip_bad else "raise")
     if not ev.walks:
         raise ConfigError("no walk could be scored: " + "; ".join(f"{n}: {r}" for n, r in ev.skipped))
+    for name, reason in ev.skipped:  # also in run.json and the report
+        print(f"lodemap evaluate: skipped {name}: {reason}", file=sys.stderr)
     paths = write_outputs(ev, fmap, args.out)
     if args.json:
         print(json.dumps(ev.summary, indent=2))
