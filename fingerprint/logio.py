@@ -206,8 +206,9 @@ def _column_index(names, path, header_line, required, optional_groups=()):
     missing = [c for c in required if c not in seen]
     if missing:
         raise FormatError(
-            f"missing required column(s) {', '.join(missing)}; expected at least "
-            f"{','.join(required)}, got {','.join(names)}",
+            f"missing required column(s) {', '.join(missing)}, not among the header's {len(names)} "
+            f"(the column given is one past its end); expected at least {','.join(required)}, "
+            f"got {','.join(names)}",
             path=path,
             line=header_line,
             column=len(names) + 1,
