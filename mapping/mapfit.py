@@ -888,6 +888,7 @@ class _ReducedRankGP(_Fitted):
         return {
             "kernel": self.name,
             "hyperparameters": {k: float(v) for k, v in self.hyper_.items()},
+            "fixed_hyperparameters": list(self.fixed_hyper_),
             "noise_sd_ut": [float(v) for v in np.sqrt(self.noise_var_)],
             "between_walk_sd_ut": [float(v) for v in np.sqrt(self.between_walk_var_)],
             "log_marginal_likelihood": float(self.log_marginal_likelihood_),

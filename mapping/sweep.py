@@ -892,7 +892,10 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     ranking = rank_settings(records, metric=cfg.metric, rng=np.random.default_rng(cfg.seed))
     cols = ["rank", "settings", "runs", "mean", "ci_low", "ci_high", "best_overlap", "checkpoints", "pooled_median_m",
             "pooled_p95_m"]
-    write_text_atomic(out / "ranking.csv", _csv_text(cols, [[r[c] for c in cols] for r in ranking]))
+    # the header says what was averaged; metres to 0.1 mm
+    head = [f"mean_{cfg.metric}" if c == "mean" else c for c in cols]
+    rows = [[round(v, 4) if isinstance(v, float) else v for v in (r[c] for c in cols)] for r in ranking]
+    write_text_atomic(out / "ranking.csv", _csv_text(head, rows))
     write_json_atomic(out / "sweep.json", {
         "config": cfg.path, "mode": cfg.mode, "search": cfg.search, "seed": cfg.seed, "seeds": cfg.seeds,
         "metric": cfg.metric, "settings": settings_list, "walks": names, "counts": counts,

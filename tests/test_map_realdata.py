@@ -93,6 +93,12 @@ def test_map_info_query_and_image(b1_map, tmp_path, capsys):
     assert "floor:            B1" in text and "curl-free" in text
     basis = load_map(b1_map).meta["model"]["basis"]
     assert f"{basis['tiles']} tiles of" in text and "shortest length scale it resolves" in text
+    # every hyperparameter says what it is and whether the fit chose it
+    model = load_map(b1_map).meta["model"]
+    for name in model["hyperparameters"]:
+        line = next(ln for ln in text.splitlines() if ln.strip().startswith(name))
+        assert ("(fixed" in line) == (name in model["fixed_hyperparameters"]), line
+        assert ("(fitted)" in line) == (name not in model["fixed_hyperparameters"]), line
     fmap = load_map(b1_map)
     # a fit whose refinement was skipped for memory says so
     from fingerprint.mapfile import save_map

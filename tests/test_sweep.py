@@ -283,6 +283,11 @@ def test_run_sweep_end_to_end_with_a_fake_run(tmp_path):
     assert res["ranking"][0]["settings"].startswith("field_temper=") and "n_particles=400" in res["ranking"][0]["settings"]
     html = (tmp_path / "out" / "report.html").read_text()
     assert "Ranking" in html and "data:image/png;base64," in html
+    with open(tmp_path / "out" / "ranking.csv", newline="") as fh:
+        ranked = list(csv.DictReader(fh))
+    assert [int(r["rank"]) for r in ranked] == [1, 2, 3, 4]
+    best = res["ranking"][0]
+    assert float(ranked[0]["mean_median_error_m"]) == pytest.approx(best["mean"], abs=5e-5)  # rounded to 0.1 mm
     again = run_sweep(cfg, tmp_path / "out", jobs=1, progress=False, run_fn=fake_run)
     assert again["counts"]["done"] == 0 and again["counts"]["skipped"] == 16
     # a re-recorded walk is run again (its 4 settings x 2 seeds), the other kept

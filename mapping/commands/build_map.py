@@ -89,7 +89,11 @@ def run(args):
         f"kernel {fmap.meta['kernel']}, raster {fmap.shape[1]} x {fmap.shape[0]} at {fmap.resolution_m} m"
     )
     if hyper:
-        print("hyperparameters: " + ", ".join(f"{k}={v:.3g}" for k, v in hyper.items()))
+        from .map_info import hyperparameter_lines
+
+        print("hyperparameters:")
+        for line in hyperparameter_lines(model):
+            print(f"  {line}")
     cal = model.get("calibration", {})
     if cal:
         print("held-out walks (group k-fold): RMSE b_x,b_y,b_up = "

@@ -13,6 +13,31 @@ def add_arguments(parser):
     parser.add_argument("--walks", action="store_true", help="list the survey walks")
 
 
+#: what each map hyperparameter is, for people reading the printout
+HYPER_MEANING = {
+    "magnitude_ut": "prior sd of each field component about the mean field",
+    "length_scale_m": "distance over which the field changes",
+    "noise_h_ut": "noise sd of the horizontal samples",
+    "noise_up_ut": "noise sd of the vertical samples",
+    "constant_ut": "prior sd of the mean field",
+    "offset_ut": "prior sd of each walk's device-frame offset, per axis",
+}
+
+
+def hyperparameter_lines(model):
+    """One line per hyperparameter of a map's model summary: name, value,
+    meaning, and whether it was fixed rather than fitted."""
+    known = "fixed_hyperparameters" in model  # maps of older versions do not say
+    fixed = set(model.get("fixed_hyperparameters") or ())
+    lines = []
+    for k, v in (model.get("hyperparameters") or {}).items():
+        how = ("fixed" if k in fixed else "fitted") if known else ""
+        if k == "constant_ut" and v >= 1e3 and k in fixed | (set() if known else {k}):
+            how = "fixed large: a flat prior, the survey data set the mean field"
+        lines.append(f"{k:<16s}{v:10.4g}   {HYPER_MEANING.get(k, '')}" + (f" ({how})" if how else ""))
+    return lines
+
+
 def run(args):
     from fingerprint.mapfile import load_map
 
@@ -37,8 +62,8 @@ def run(args):
     al = meta.get("frames", {}).get("alignment", {})
     print(f"earth_to_plan:    {fmap.earth_to_plan_rad:.5f} rad ({al.get('source', '?')})")
     print(f"kernel:           {meta.get('kernel')}")
-    for k, v in (model.get("hyperparameters") or {}).items():
-        print(f"  {k:<22s}{v:.4g}")
+    for line in hyperparameter_lines(model):
+        print(f"  {line}")
     basis, opt = model.get("basis") or {}, model.get("optimisation") or {}
     if "tiles" in basis:
         line = f"{basis['tiles']} tiles of {basis['tile_m']:g} m, {basis['n_basis_per_tile']} basis functions each"

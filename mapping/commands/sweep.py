@@ -73,12 +73,13 @@ def run(args):
     rk = res["ranking"]
     if rk:
         w = min(60, max(len(r["settings"]) for r in rk))
-        print(f"{'rank':>4}  {'settings':<{w}}  {'runs':>4}  {cfg.metric:>14}  {'95% CI':<16}  all checkpoints: "
-              "median / p95 m")
+        label = f"mean {cfg.metric}"
+        print(f"{'rank':>4}  {'settings':<{w}}  {'runs':>4}  {label:>{max(14, len(label))}}  {'95% CI':<16}  "
+              "all checkpoints: median / p95 m")
         for r in rk:
             pooled = ("" if r["pooled_median_m"] is None else
                       f"{r['pooled_median_m']:.3f} / {r['pooled_p95_m']:.3f} ({r['checkpoints']})")
-            print(f"{r['rank']:>4}  {r['settings'][:w]:<{w}}  {r['runs']:>4}  {r['mean']:>14.3f}  "
+            print(f"{r['rank']:>4}  {r['settings'][:w]:<{w}}  {r['runs']:>4}  {r['mean']:>{max(14, len(label))}.3f}  "
                   f"{'[' + format(r['ci_low'], '.3f') + ', ' + format(r['ci_high'], '.3f') + ']':<16}  {pooled}")
     print(f"results: {res['paths']['results']}")
     print(f"report: {res['paths']['report']}")
