@@ -86,21 +86,21 @@ def test_bow_tie_is_repaired_unambiguously():
 def test_self_overlapping_ring_is_rejected_as_ambiguous():
     # a ring that winds over itself: the two repair methods disagree (11 vs 15 m²)
     loop = [[[0, 0], [4, 0], [4, 4], [1, 4], [1, 1], [3, 1], [3, 3], [0, 3], [0, 0]]]
-    with pytest.raises(FormatError, match=r"feature 1 \(walkable\).*ambiguous"):
+    with pytest.raises(FormatError, match=r"feature 2 \(features\[1\]\) \(walkable\).*ambiguous"):
         plan_from_geojson(fc(feat("walkable", rect(10, 10, 12, 12)), feat("walkable", loop)), path="x.plan.geojson")
 
 
 @pytest.mark.parametrize(
     "doc, err, match",
     [
-        (fc(feat("walkable", rect(0, 0, 1, 1)), feat("shelf", rect(0, 0, 1, 1))), FormatError, r"feature 1.*kind"),
+        (fc(feat("walkable", rect(0, 0, 1, 1)), feat("shelf", rect(0, 0, 1, 1))), FormatError, r"feature 2 \(features\[1\]\).*kind"),
         (fc(feat("walkable", [[0, 0], [1, 1]], "LineString")), FormatError, "Polygon or MultiPolygon"),
         (fc(), DataError, "no non-empty walkable"),
         (fc(feat("obstacle", rect(0, 0, 1, 1))), DataError, "no non-empty walkable"),
         (fc(feat("walkable", rect(0, 0, 1, 1)), feat("obstacle", rect(-1, -1, 2, 2))), DataError, "no free space"),
         ({"type": "Feature"}, FormatError, "FeatureCollection"),
         (fc(feat("walkable", rect(0, 0, 1, 1)), plan={"units": "ft"}), FormatError, "units"),
-        (fc(feat("walkable", [[["a", 0], [1, 0], [1, 1], [0, 0]]])), FormatError, "feature 0"),
+        (fc(feat("walkable", [[["a", 0], [1, 0], [1, 1], [0, 0]]])), FormatError, r"feature 1 \(features\[0\]\)"),
     ],
 )
 def test_bad_plans_raise_clear_errors(doc, err, match):

@@ -111,7 +111,7 @@ def test_no_field_and_settings_are_recorded(files, capsys):
         (["--start", "a,b"], "--start"),
         (["--start", "1,2,-1"], "SIGMA"),
         (["--set", "bogus=1"], "unknown filter setting"),
-        (["--features", "nope"], "feature_set"),
+        (["--features", "nope"], "--features: expected one of"),
         (["--preset", "nope"], "preset"),
         (["--start", "50000,50000"], "from the floor graph"),  # a start far off the floor
         (["--start-time", "99999"], "after the last step"),  # nothing left to localise

@@ -46,8 +46,8 @@ def add_arguments(parser):
     parser.add_argument("--particles", type=int, metavar="N",
                         help="particles of the filter (tracking and global; default: the filter's own defaults)")
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
-                        help="change any FilterSettings field of the preset, e.g. --set bias_corr_updates=none "
-                             "(repeatable; `lodemap locate --help` lists the common ones)")
+                        help="change any filter setting of the preset (repeatable), e.g. --set bias_corr_updates=none; "
+                             "`lodemap locate --help` names the often changed ones, an unknown NAME lists them all")
     parser.add_argument("--start-sigma", type=float, default=1.0, metavar="M",
                         help="spread of the start around the first checkpoint in metres (default: 1.0)")
     parser.add_argument("--baselines", default="dead-reckoning,no-field,dtw", metavar="LIST",

@@ -44,8 +44,9 @@ def add_arguments(parser):
                              "per update with its sigma_m, confidence, converged and lost")
     parser.add_argument("--seed", type=int, default=0, metavar="N", help="random seed of the filter, recorded in the outputs (default 0)")
     parser.add_argument("--particles", type=int, default=None, metavar="N",
-                        help="number of particles (default: FilterSettings.n_particles, or "
-                             "n_particles_global in global mode)")
+                        help=f"number of particles (default {FilterSettings().n_particles}, or "
+                             f"{FilterSettings().n_particles_global} in global mode: the settings n_particles "
+                             "and n_particles_global)")
     parser.add_argument("--no-field", action="store_true",
                         help="switch the field updates off: the same filter on steps and floor graph only")
     parser.add_argument("--preset", default="default", metavar="NAME",
@@ -58,7 +59,10 @@ def add_arguments(parser):
     parser.add_argument("--temper", type=float, default=None, metavar="TAU",
                         help=f"exponent on the field likelihood (default {FilterSettings().field_temper:g})")
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
-                        help="any other FilterSettings field, e.g. --set heading_kappa=3 (repeatable)")
+                        help="change any other filter setting (repeatable), e.g. --set heading_kappa=3 or --set "
+                             "bias_corr_updates=none; often changed: n_particles, feature_set, likelihood, "
+                             "field_temper, use_field, bias_corr_updates, recovery_chi2, heading_kappa, "
+                             "ess_threshold; an unknown NAME lists them all")
     parser.add_argument("--calibration", default=None, metavar="calibration.json",
                         help="magnetometer calibration to apply (from 'lodemap calibrate')")
     parser.add_argument("--step-constant", type=float, default=None, metavar="K",

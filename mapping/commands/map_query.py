@@ -41,6 +41,8 @@ def read_points(path):
         ix, iy = header.index("x"), header.index("y")
     except ValueError:
         raise FormatError(f"points file needs columns x and y; header has {', '.join(header)}", path=path, line=1) from None
+    if len(rows) < 2:
+        raise FormatError("no points after the header; expected rows of x,y", path=path, line=2)
     out = np.empty((len(rows) - 1, 2))
     for n, row in enumerate(rows[1:]):
         for j, col in enumerate((ix, iy)):
