@@ -179,3 +179,13 @@ def test_a_bad_filter_option_is_named_as_typed(small_map, tmp_path, capsys, opti
     line = _single_error_line(capsys)
     assert f"lodemap locate: error: {words}" in line, line
     assert not out.exists()
+
+
+def test_points_file_without_points_keeps_the_old_output(small_map, tmp_path, capsys):
+    pts = tmp_path / "p.csv"
+    pts.write_text("x,y\n")
+    out = tmp_path / "o.csv"
+    out.write_text("earlier result\n")
+    assert main(["map-query", str(small_map), str(pts), "--out", str(out)]) == 2
+    assert f"{pts}, line 2: no points after the header" in _single_error_line(capsys)
+    assert out.read_text() == "earlier result\n"
