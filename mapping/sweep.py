@@ -171,7 +171,11 @@ def load_sweep_config(path):
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
-        raise FormatError(f"not valid TOML: {err}", path=path) from err
+        # the parser puts the place at the end of its message: "... (at line L, column C)"
+        at = re.search(r"\s*\(at line (\d+), column (\d+)\)$", str(err))
+        what = str(err)[: at.start()] if at else str(err)
+        line, column = (int(at.group(1)), int(at.group(2))) if at else (None, None)
+        raise FormatError(f"not valid TOML: {what}", path=path, line=line, column=column) from None
     return parse_sweep_config(raw, base=path.parent, path=str(path))
 
 

@@ -107,6 +107,9 @@ def test_random_expansion_seeded_and_within_bounds(tmp_path):
 def test_config_errors(tmp_path):
     with pytest.raises(FormatError, match="TOML"):
         _cfg(tmp_path, "[sweep\nseeds = 1")
+    # the place in our usual form (the parser's own 1-based line and column)
+    with pytest.raises(FormatError, match=r"sweep\.toml, line 2, column 9: not valid TOML: Invalid value$"):
+        _cfg(tmp_path, "[sweep]\nseeds = = 2\n")
     with pytest.raises(ConfigError, match="mode"):
         _cfg(tmp_path, BASE.replace("seeds = 2", 'seeds = 2\nmode = "sideways"'))
     with pytest.raises(ConfigError, match="unknown key"):
