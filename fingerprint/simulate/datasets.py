@@ -380,9 +380,8 @@ def write_walk(folder, walk):
     """Write ``<name>.log.csv``, ``.checkpoints.csv`` and ``.track.csv`` into
     ``folder`` (atomic writes via :mod:`fingerprint.logio`). Returns the
     log path."""
-    from ..logio import write_checkpoints, write_track, write_walk_log
-
     from .._atomic import check_writable
+    from ..logio import write_checkpoints, write_track, write_walk_log
 
     folder = Path(folder)
     check_writable(folder, folder=True)
