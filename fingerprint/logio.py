@@ -179,7 +179,7 @@ def _split_head(text, path, *, allow_meta=True):
             meta[key] = value
             pos = nxt
             continue
-        names = [c.strip() for c in line.split(",")]
+        names = [c.strip() for c in next(csv.reader([line]))]  # quoted names too
         return meta, names, lineno, text[min(nxt, n):], lineno + 1
     if lineno == 0:
         raise FormatError("the file is empty; expected a header row", path=path, line=1, column=1)
@@ -306,12 +306,15 @@ def _fast_parse_with_empty(body, ncol):
     return _numpy_parse(b, ncol, nrows)
 
 
-def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names):
+def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names, skip_cols=None):
     """Exact line-by-line scan: returns (values (R, ncol), line numbers (R,)).
 
     Empty cells become NaN in the columns of ``allow_empty_cols``; anything
     else that is not a finite number raises FormatError with line/column.
+    Cells may be quoted. Columns flagged in ``skip_cols`` (unknown to the
+    format) are not read: NaN whatever they hold.
     """
+    skip = [False] * ncol if skip_cols is None else list(skip_cols)
     rows = []
     linenos = []
     lines = body.split("\n")
@@ -327,7 +330,7 @@ def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names):
                 line=lineno,
                 column=1,
             )
-        cells = line.split(",")
+        cells = next(csv.reader([line])) if '"' in line else line.split(",")
         if len(cells) != ncol:
             col = min(len(cells), ncol) + 1 if len(cells) < ncol else ncol + 1
             raise FormatError(
@@ -339,6 +342,9 @@ def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names):
         vals = []
         for j, cell in enumerate(cells):
             s = cell.strip()
+            if skip[j]:
+                vals.append(math.nan)
+                continue
             if s == "":
                 if allow_empty_cols[j]:
                     vals.append(math.nan)
@@ -374,8 +380,9 @@ def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names):
     return np.asarray(rows, dtype=float), np.asarray(linenos, dtype=np.int64)
 
 
-def _parse_numeric(body, first_line, names, path, *, allow_empty_cols):
-    """Fast path first; on any failure or non-finite value, the exact scan.
+def _parse_numeric(body, first_line, names, path, *, allow_empty_cols, skip_cols=None):
+    """Fast path first; on any failure or non-finite value, the exact scan
+    (which does not read the columns flagged in ``skip_cols``).
 
     Returns (values (R, ncol), line numbers (R,) or None when every body
     line is a data line so that line = first_line + row).
@@ -401,15 +408,17 @@ def _parse_numeric(body, first_line, names, path, *, allow_empty_cols):
                 bad_cols = ~np.asarray(allow_empty_cols, dtype=bool)
                 if not miss[:, bad_cols].any() and np.isfinite(arr[~miss]).all():
                     return arr, None
-    return _slow_parse(body, first_line, ncol, path, allow_empty_cols=allow_empty_cols, names=names)
+    return _slow_parse(body, first_line, ncol, path, allow_empty_cols=allow_empty_cols, names=names,
+                       skip_cols=skip_cols)
 
 
 def _line_of(row, linenos, first_line):
     return int(linenos[row]) if linenos is not None else first_line + int(row)
 
 
-def _check_time(t, linenos, first_line, path, col, *, strict=True, on_duplicate="error"):
-    """Return a keep-mask (duplicates dropped under keep-first)."""
+def _check_time(t, linenos, first_line, path, col, *, strict=True, on_duplicate="error", hint=True):
+    """Return a keep-mask (duplicates dropped under keep-first); ``hint``:
+    name the reader's ``on_duplicate`` option in the error."""
     keep = np.ones(t.shape[0], dtype=bool)
     if t.shape[0] < 2:
         return keep
@@ -432,8 +441,8 @@ def _check_time(t, linenos, first_line, path, col, *, strict=True, on_duplicate=
                 r = dup[0] + 1
                 raise FormatError(
                     f"duplicate time stamp {t[r]:.6g} (same as line "
-                    f"{_line_of(r - 1, linenos, first_line)}); expected strictly increasing t "
-                    "(read with on_duplicate='keep-first' to drop repeats)",
+                    f"{_line_of(r - 1, linenos, first_line)}); expected strictly increasing t"
+                    + (" (read with on_duplicate='keep-first' to drop repeats)" if hint else ""),
                     path=path,
                     line=_line_of(r, linenos, first_line),
                     column=col,
@@ -603,7 +612,9 @@ def read_walk_log(path, *, on_duplicate="error", check_units=True):
     _check_meta(meta, spath)
     seen = _column_index(names, spath, header_line, REQUIRED_COLUMNS, (_RAW, _ODOM))
     allow_empty = [n != "t" for n in names]
-    values, linenos = _parse_numeric(body, first_line, names, spath, allow_empty_cols=allow_empty)
+    known = set(REQUIRED_COLUMNS) | set(_RAW) | set(_ODOM)
+    values, linenos = _parse_numeric(body, first_line, names, spath, allow_empty_cols=allow_empty,
+                                     skip_cols=[n not in known for n in names])
     if values.shape[0] == 0:
         raise FormatError(
             "header only: expected at least one data row after the header",
@@ -641,15 +652,16 @@ def read_walk_log(path, *, on_duplicate="error", check_units=True):
     )
 
 
-def _read_table(path, required, *, string_cols=(), allow_empty=()):
+def _read_table(path, required, *, string_cols=(), allow_empty=(), known=None):
     """Small CSV tables (checkpoints, tracks): csv-module parse with exact
-    positions. Returns (names, seen, numeric dict, string dict, linenos, header_line)."""
-    import csv
-
+    positions. Columns outside ``known`` (when given) are read as text.
+    Returns (names, seen, numeric dict, string dict, linenos, header_line, meta)."""
     spath = str(path)
     text = _read_text(path)
     meta, names, header_line, body, first_line = _split_head(text, spath, allow_meta=True)
     seen = _column_index(names, spath, header_line, required)
+    if known is not None:
+        string_cols = tuple(string_cols) + tuple(n for n in names if n not in known)
     num = {n: [] for n in names if n not in string_cols}
     strs = {n: [] for n in names if n in string_cols}
     linenos = []
@@ -710,8 +722,9 @@ def read_checkpoints(path):
         ``t`` (K,), ``xy`` (K, 2), ``floor``/``label`` (K,) str or None.
     """
     spath = str(path)
+    # other columns (notes, tags) are allowed and not read
     names, seen, num, strs, linenos, _, _ = _read_table(
-        path, ("t", "x", "y"), string_cols=("floor", "label")
+        path, ("t", "x", "y"), string_cols=("floor", "label"), known=("t", "x", "y", "floor", "label")
     )
     t = num["t"]
     _check_time(t, linenos, 0, spath, seen["t"] + 1, strict=False)
@@ -725,8 +738,10 @@ def read_checkpoints(path):
 
 
 def read_track(path):
-    """Read a track (``t,x,y[,heading_rad][,...]``); further numeric
-    columns go to ``Track.extra`` (an empty cell there is NaN).
+    """Read a track (``t,x,y[,heading_rad][,...]``). Further columns (a
+    result track's uncertainty, confidence, flags) go to ``Track.extra``
+    when every cell is a number or empty (NaN), as float arrays; others
+    (text flags such as ``ok``/``lost``) are not read.
 
     Returns
     -------
@@ -734,14 +749,16 @@ def read_track(path):
         ``t`` (K,) strictly increasing, ``xy`` (K, 2), ``heading_rad`` (K,) or None.
     """
     spath = str(path)
-    # Tracks are numeric by contract; extra columns may have empty cells.
-    _, names, _, _, _ = _split_head(_read_text(path), spath)
-    core = {"t", "x", "y"}
-    allow_empty = tuple(n for n in names if n not in core)
-    names, seen, num, strs, linenos, _, _ = _read_table(path, ("t", "x", "y"), allow_empty=allow_empty)
+    names, seen, num, strs, linenos, _, _ = _read_table(
+        path, ("t", "x", "y"), allow_empty=("heading_rad",), known=("t", "x", "y", "heading_rad"))
     t = num["t"]
-    _check_time(t, linenos, 0, spath, seen["t"] + 1)
-    extra = {k: v for k, v in num.items() if k not in core and k != "heading_rad"}
+    _check_time(t, linenos, 0, spath, seen["t"] + 1, hint=False)
+    extra = {}
+    for k, cells in strs.items():
+        try:
+            extra[k] = np.array([math.nan if c == "" else float(c) for c in cells], dtype=float)
+        except ValueError:
+            continue
     return Track(
         t=t,
         xy=np.column_stack([num["x"], num["y"]]),

@@ -212,3 +212,41 @@ def test_brisk_real_walk_passes_the_accelerometer_unit_check(tmp_path):
     write_walk_log(q, g_units)
     with pytest.raises(DataError, match="g units"):
         read_walk_log(q)
+
+
+def test_extra_columns_of_any_content_are_ignored_and_quotes_read(tmp_path):
+    """FORMATS.md: a result track "may add columns (uncertainty, confidence,
+    flags)", and unknown log columns are ignored; the csv module (Python
+    stdlib, RFC 4180 quoting) is the reference for quoted headers and cells."""
+    real = read_walk_log(REAL / "walk_001.log.csv.gz")
+    with gzip.open(REAL / "walk_001.log.csv.gz", "rt", encoding="utf-8") as fh:
+        lines = fh.read().splitlines()
+    head = next(i for i, ln in enumerate(lines) if not ln.startswith("#"))
+    quoted = ",".join(f'"{c}"' for c in lines[head].split(","))
+    body = [f'{ln},"step, left"' if k % 2 else f"{ln},note" for k, ln in enumerate(lines[head + 1:])]
+    body[3] = ",".join(f'"{c}"' if j == 7 else c for j, c in enumerate(body[3].split(",", 10)))
+    p = tmp_path / "w.log.csv"
+    p.write_text("\n".join(lines[:head] + [quoted + ",event"] + body) + "\n", encoding="utf-8")
+    log = read_walk_log(p)
+    np.testing.assert_array_equal(log.t, real.t)
+    np.testing.assert_array_equal(log.mag, real.mag)
+    np.testing.assert_array_equal(log.acc, real.acc)
+    # checkpoints with a free-text column
+    cp = tmp_path / "c.checkpoints.csv"
+    cp.write_text('t,x,y,note\n1.5,2.0,3.0,"by the door, left"\n2.5,4.0,5.0,\n', encoding="utf-8")
+    c = read_checkpoints(cp)
+    np.testing.assert_array_equal(c.xy, [[2.0, 3.0], [4.0, 5.0]])
+    # a result track with text flags and a numeric confidence
+    tr = tmp_path / "r.track.csv"
+    tr.write_text("t,x,y,confidence,flags,converged\n0,1,2,0.5,ok,true\n1,2,3,,lost,false\n", encoding="utf-8")
+    t = read_track(tr)
+    assert set(t.extra) == {"confidence"}
+    np.testing.assert_array_equal(t.extra["confidence"], [0.5, np.nan])
+
+
+def test_a_repeated_track_time_names_no_option_the_reader_lacks(tmp_path):
+    p = tmp_path / "t.track.csv"
+    p.write_text("t,x,y\n0,0,0\n0,1,1\n", encoding="utf-8")
+    with pytest.raises(logio.FormatError, match=r"line 3, column 1: duplicate time stamp 0 \(same as line 2\); "
+                       r"expected strictly increasing t$"):
+        read_track(p)
