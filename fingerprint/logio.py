@@ -71,6 +71,7 @@ __all__ = [
     "validate_walk_log",
     "LogReport",
     "REQUIRED_COLUMNS",
+    "check_checkpoint_clock",
     "GAP_THRESHOLD_S",
 ]
 
@@ -734,7 +735,39 @@ def read_checkpoints(path):
         floor=strs.get("floor"),
         label=strs.get("label"),
         path=spath,
+        lines=np.asarray(linenos, dtype=np.int64),
     )
+
+
+def check_checkpoint_clock(cps, t_first, t_last, *, tolerance_s=2.0):
+    """Checkpoint times must be on the log's clock (FORMATS.md section 2).
+
+    Parameters
+    ----------
+    cps : Checkpoints ; t_first, t_last : float, the log's time span, s
+    tolerance_s : float, a tap this close outside the span still counts
+
+    Returns
+    -------
+    outside : (K,) bool, checkpoints outside the span (a few: a tap before
+        the recording started or after it stopped)
+
+    Raises
+    ------
+    DataError, naming the checkpoints file, line and column, when fewer
+    than two checkpoints (one, if the file has one) lie within the span:
+    the two files use different clocks (another epoch, milliseconds).
+    """
+    t = np.asarray(cps.t, dtype=float)
+    outside = (t < t_first - tolerance_s) | (t > t_last + tolerance_s)
+    if t.size and int(np.sum(~outside)) < min(2, t.size):
+        i = int(np.flatnonzero(outside)[0])
+        line = None if cps.lines is None else int(cps.lines[i])
+        raise DataError(
+            f"checkpoint times {t.min():.6g}..{t.max():.6g} s lie outside the walk log's "
+            f"{t_first:.6g}..{t_last:.6g} s; expected times on the log's clock (seconds, the same epoch)",
+            path=cps.path, line=line, column=1 if line is not None else None)
+    return outside
 
 
 def read_track(path):

@@ -77,6 +77,7 @@ class Checkpoints:
     xy : (K, 2) float, metres, plan frame
     floor : (K,) str or None
     label : (K,) str or None
+    lines : (K,) int or None, line of each row in its file (for messages)
     """
 
     t: np.ndarray
@@ -84,6 +85,7 @@ class Checkpoints:
     floor: np.ndarray | None = None
     label: np.ndarray | None = None
     path: str | None = None
+    lines: np.ndarray | None = None
 
     @property
     def n(self) -> int:

@@ -254,6 +254,10 @@ def load_walk(walk_files, *, expected_up_ut=None):
     log = read_walk_log(walk_files.log)
     walk = process_walk(log, expected_up_ut=expected_up_ut)
     cps = read_checkpoints(walk_files.checkpoints) if walk_files.checkpoints else None
+    if cps is not None:
+        from fingerprint.logio import check_checkpoint_clock
+
+        check_checkpoint_clock(cps, float(log.t[0]), float(log.t[-1]))  # another clock: an error
     truth = read_track(walk_files.track) if getattr(walk_files, "track", None) else None
     return walk, cps, truth
 

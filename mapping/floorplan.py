@@ -178,6 +178,15 @@ def _repair(geom, index, kind, path):
     return a, True
 
 
+#: less free space than this means the coordinates are not metres (degrees)
+MIN_FREE_AREA_M2 = 0.5
+
+
+def _extent(geom):
+    x0, y0, x1, y1 = geom.bounds
+    return f"x {x0:.6g}..{x1:.6g}, y {y0:.6g}..{y1:.6g}"
+
+
 def plan_from_geojson(doc, *, path=None) -> FloorPlan:
     """Build a :class:`FloorPlan` from a parsed GeoJSON FeatureCollection.
 
@@ -195,6 +204,10 @@ def plan_from_geojson(doc, *, path=None) -> FloorPlan:
     feats = doc.get("features")
     if not isinstance(feats, list):
         raise FormatError("a floor plan needs a list 'features'", path=path)
+    crs = json.dumps(doc["crs"]) if "crs" in doc else ""
+    if any(code in crs.upper() for code in ("CRS84", "4326", "4979", "4269")):  # geographic CRSs (EPSG)
+        raise FormatError(f"the plan declares a longitude/latitude CRS ({crs[:80]}); expected coordinates "
+                          "in metres in the plan frame", path=path)
     walk, obst, repaired = [], [], []
     for i, feat in enumerate(feats):
         kind, geom = _feature_geometry(feat, i, path)
@@ -211,6 +224,9 @@ def plan_from_geojson(doc, *, path=None) -> FloorPlan:
     free = _polygonal_part(shapely.difference(walkable, obstacles))
     if free.is_empty or free.area <= 0:
         raise DataError("floor plan has no free space (walkable area entirely covered by obstacles)", path=path)
+    if free.area < MIN_FREE_AREA_M2:
+        raise DataError(f"the plan's free space is only {free.area:.3g} m² across {_extent(free)}; expected "
+                        "coordinates in metres in the plan frame, not longitude and latitude", path=path)
     meta = doc.get("plan") if isinstance(doc.get("plan"), dict) else {}
     units = meta.get("units", "m")
     if units not in ("m", None):

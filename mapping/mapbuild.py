@@ -147,6 +147,41 @@ def load_walks(walk_files, *, use_track=True, progress=True, desc="reading walks
     return out
 
 
+#: checkpoints farther than this from free space are reported (hand taps
+#: on a plan are off by about a metre; common practice, no source)
+CHECKPOINT_TOLERANCE_M = 1.0
+
+
+def checkpoint_checks(walks, plan, *, tolerance_m=CHECKPOINT_TOLERANCE_M):
+    """Checkpoints that contradict their walk: times outside the log's span
+    (a file on another clock is an error, raised here before any work) or
+    positions more than ``tolerance_m`` from the plan's free space.
+
+    Returns
+    -------
+    list of dict, one per walk with a finding: ``walk``, ``file``,
+    ``outside_log_time`` (file lines), ``outside_free_space`` (list of
+    [file line, distance m])
+    """
+    from fingerprint.logio import check_checkpoint_clock
+
+    from .floorplan import check_points
+
+    out = []
+    for w in walks:
+        cps = w.checkpoints
+        if cps is None or cps.n == 0:
+            continue
+        late = check_checkpoint_clock(cps, float(w.walk.t[0]), float(w.walk.t[-1]))
+        off, dist = check_points(plan, cps.xy, tolerance_m=tolerance_m)
+        if late.any() or off.any():
+            lines = cps.lines if cps.lines is not None else np.arange(cps.n) + 2
+            out.append({"walk": w.name, "file": cps.path,
+                        "outside_log_time": [int(v) for v in lines[late]],
+                        "outside_free_space": [[int(v), round(float(d), 2)] for v, d in zip(lines[off], dist[off])]})
+    return out
+
+
 def earth_to_plan_for(site, walks):
     """The earth-to-plan rotation for a floor.
 
@@ -527,6 +562,7 @@ def build_floor_map(
     if graph is None:
         graph = build_graph(plan)
     walks = load_walks(walk_files, use_track=use_track, progress=progress)
+    checks = checkpoint_checks(walks, plan)
     angle, align = earth_to_plan_for(site, walks)
     samples = collect_samples(walks, plan=plan, earth_to_plan_rad=angle, spacing_m=spacing_m, progress=progress,
                               heading_from_track=heading_from_track)
@@ -562,6 +598,7 @@ def build_floor_map(
             for n, c in zip(samples.names, counts)
         ],
         "walks_marked_other_floor": [w.name for w in walks if w.floor is not None and w.floor != floor],
+        "checkpoint_checks": checks,
         "offset_outliers": outlying_walks(list(offsets), np.array(list(offsets.values())).reshape(-1, 3)),
         "skipped_walks": samples.info.get("skipped", []),
         "n_samples": samples.n,

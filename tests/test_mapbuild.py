@@ -226,3 +226,31 @@ def test_walk_offsets_match_least_squares():
     assert max(sc["rmse_offset_removed_ut"].values()) < 0.12
     # without the offset variance the sd is sqrt(0.01): about 68 % of N(0, 0.1) residuals inside
     assert 0.55 < min(sc["within_1sd_offset_removed"].values()) <= max(sc["within_1sd_offset_removed"].values()) < 0.8
+
+
+def test_checkpoint_checks_find_another_clock_and_taps_off_the_plan(tmp_path):
+    """FORMATS.md section 2: checkpoint times are on the log's clock and x, y
+    in the plan frame. Times in milliseconds are an error naming the file
+    and line; a tap 2.5 m outside the walkable area is reported with its
+    distance (shapely's distance is the reference), one in the middle of the
+    4 m x 2 m obstacle (1 m from free space, a hand tap's error) is not."""
+    from fingerprint.logio import read_checkpoints
+    from mapping.mapbuild import checkpoint_checks
+
+    t = np.linspace(0.0, 60.0, 601)
+    walk = ProcessedWalk(t, np.tile([0.0, 0.0, 0.0, 1.0], (t.size, 1)), np.zeros((t.size, 3)), np.zeros(t.size),
+                         0.5, Motion(t[::10], np.full(61, 0.6), np.zeros(61), "steps"))
+    p = tmp_path / "w.checkpoints.csv"
+    p.write_text("# floor: G\nt,x,y\n1.0,1.0,1.0\n20.0,7.0,5.0\n40.0,16.5,5.0\n99.0,2.0,2.0\n", encoding="utf-8")
+    cps = read_checkpoints(p)
+    found = checkpoint_checks([SurveyWalk("w", walk, cps)], _plan())
+    assert found == [{"walk": "w", "file": str(p), "outside_log_time": [6],
+                      "outside_free_space": [[5, 2.5]]}]
+    plan = _plan()
+    assert plan.free.distance(shapely.Point(16.5, 5.0)) == pytest.approx(2.5)
+    # the same taps in milliseconds: another clock, stopped before any work
+    ms = tmp_path / "ms.checkpoints.csv"
+    ms.write_text("t,x,y\n1000,1,1\n20000,2,2\n", encoding="utf-8")
+    with pytest.raises(DataError, match=r"ms\.checkpoints\.csv, line 2, column 1: checkpoint times 1000\.\.20000 s "
+                       r"lie outside the walk log's 0\.\.60 s"):
+        checkpoint_checks([SurveyWalk("w", walk, read_checkpoints(ms))], plan)

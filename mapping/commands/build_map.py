@@ -108,6 +108,16 @@ def run(args):
     if other:
         print(f"warning: {len(other)} survey walks are marked as recorded on another floor than {fmap.floor}: "
               + ", ".join(other[:10]) + (" ..." if len(other) > 10 else ""), file=sys.stderr)
+    for c in fmap.meta.get("checkpoint_checks", []):
+        parts = []
+        if c["outside_free_space"]:
+            far = ", ".join(f"line {ln} ({d:g} m)" for ln, d in c["outside_free_space"][:5])
+            parts.append(f"{len(c['outside_free_space'])} checkpoint(s) outside the plan's free space: {far}"
+                         + (" ..." if len(c["outside_free_space"]) > 5 else ""))
+        if c["outside_log_time"]:
+            parts.append(f"{len(c['outside_log_time'])} checkpoint(s) outside the log's time span: lines "
+                         + ", ".join(str(v) for v in c["outside_log_time"][:5]))
+        print(f"warning: {c['file']}: " + "; ".join(parts), file=sys.stderr)
     for o in fmap.meta.get("offset_outliers", []):
         print(f"warning: survey walk {o['walk']}: device-frame offset "
               + ", ".join(f"{v:+.1f}" for v in o["offset_ut"]) + " µT (forward, left, up) differs from the other walks' by "
