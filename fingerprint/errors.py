@@ -18,6 +18,7 @@ __all__ = [
     "ConvergenceError",
     "MapFileError",
     "OutputError",
+    "LodemapWarning",
 ]
 
 
@@ -94,3 +95,9 @@ class OutputError(LodemapError):
         elif isinstance(err, (NotADirectoryError, FileExistsError)) and err.filename:
             reason = f"{err.filename} is a file where a folder is needed"
         super().__init__(f"{self.path}: cannot write: {reason}")
+
+
+class LodemapWarning(UserWarning):
+    """Something in the input worth a look that does not stop the work
+    (issued with :func:`warnings.warn`; the command line prints it as one
+    line, ``lodemap COMMAND: warning: ...``)."""

@@ -58,6 +58,27 @@ def _load(name):
     return importlib.import_module(f"mapping.commands.{module}")
 
 
+def _show_warnings_as_lines(command):
+    """Our warnings (``LodemapWarning``) as one line each on stderr,
+    ``lodemap COMMAND: warning: ...``; others as Python shows them."""
+    import warnings
+
+    from fingerprint.errors import LodemapWarning
+
+    shown = warnings.showwarning
+    if getattr(shown, "_lodemap", False):
+        shown = shown._default
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, LodemapWarning):
+            print(f"lodemap {command}: warning: {message}", file=sys.stderr if file is None else file)
+        else:
+            shown(message, category, filename, lineno, file, line)
+
+    show._lodemap, show._default = True, shown
+    warnings.showwarning = show
+
+
 def main(argv=None):
     """Entry point of the ``lodemap`` console script."""
     from fingerprint.errors import LodemapError
@@ -75,6 +96,7 @@ def main(argv=None):
     if args.command is None:
         parser.print_help()
         return 0
+    _show_warnings_as_lines(args.command)
     try:
         return int(_load(args.command).run(args) or 0)
     except LodemapError as err:

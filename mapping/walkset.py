@@ -9,10 +9,11 @@ survey or test walks of a folder.
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
-from fingerprint.errors import ConfigError, DataError, FormatError
+from fingerprint.errors import ConfigError, DataError, FormatError, LodemapWarning
 
 from .site import read_json_file
 
@@ -109,6 +110,16 @@ def find_walks(paths, *, recursive=False, split=None, part=None) -> list:
     return walks
 
 
+def _bare_name(name):
+    """A walk name as the split means it: a log file name is taken without
+    its ``.log.csv`` / ``.log.csv.gz``."""
+    name = name.strip()
+    for suffix in (".log.csv.gz", ".log.csv"):
+        if name.endswith(suffix):
+            return name[: -len(suffix)]
+    return name
+
+
 def load_split(path) -> dict:
     """Read a ``split.json``: ``{"survey": [names], "test": [names]}``.
 
@@ -119,12 +130,16 @@ def load_split(path) -> dict:
     doc = read_json_file(path)
     if not isinstance(doc, dict):
         raise FormatError("a split file must hold a JSON object with lists 'survey' and 'test'", path=path)
+    near = sorted(k for k in doc if str(k).strip().lower() in ("survey", "test") and k not in ("survey", "test"))
+    if near or not ({"survey", "test"} & set(doc)):
+        raise FormatError(f"a split file needs lists 'survey' and 'test' (lower case); got members "
+                          f"{', '.join(map(repr, doc)) or 'none'}", path=path)
     out = {}
     for key in ("survey", "test"):
         names = doc.get(key, [])
         if not isinstance(names, list) or not all(isinstance(n, str) for n in names):
             raise FormatError(f"split member {key!r} must be a list of walk names", path=path)
-        out[key] = list(names)
+        out[key] = [_bare_name(n) for n in names]
     both = set(out["survey"]) & set(out["test"])
     if both:
         raise DataError(f"walks in both survey and test: {', '.join(sorted(both))}", path=path)
@@ -142,7 +157,9 @@ def select_walks(walks, split, part) -> list:
     """
     if part not in ("survey", "test"):
         raise ConfigError(f"split part must be 'survey' or 'test', got {part!r}")
+    split_path = None
     if not isinstance(split, dict):
+        split_path = str(split)
         split = load_split(split)
     names = {}
     for w in walks:
@@ -153,6 +170,14 @@ def select_walks(walks, split, part) -> list:
         names[w.name] = w.log
     wanted = set(split[part])
     out = [w for w in walks if w.name in wanted]
+    where = f"{split_path}: " if split_path else ""
     if not out:
-        raise DataError(f"no walk left after keeping the {part} part of the split ({len(wanted)} names)")
+        raise DataError(f"{where}no walk left after keeping the {part} part of the split ({len(wanted)} names, "
+                        f"e.g. {', '.join(sorted(wanted)[:3]) or 'none'}; the walks given are named e.g. "
+                        f"{', '.join(sorted(names)[:3]) or 'none'})")
+    missing = sorted(wanted - set(names))
+    if missing:
+        warnings.warn(f"{where}{len(missing)} of the {len(wanted)} {part} walks of the split are not among the walks "
+                      f"given: {', '.join(missing[:5])}{' ...' if len(missing) > 5 else ''}", LodemapWarning,
+                      stacklevel=2)
     return out

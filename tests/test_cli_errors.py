@@ -189,3 +189,23 @@ def test_points_file_without_points_keeps_the_old_output(small_map, tmp_path, ca
     assert main(["map-query", str(small_map), str(pts), "--out", str(out)]) == 2
     assert f"{pts}, line 2: no points after the header" in _single_error_line(capsys)
     assert out.read_text() == "earlier result\n"
+
+
+def test_our_warnings_are_one_line_on_stderr(capsys):
+    import warnings
+
+    from fingerprint.errors import LodemapWarning
+    from mapping.cli import _show_warnings_as_lines
+
+    saved = warnings.showwarning
+    try:
+        _show_warnings_as_lines("build-map")
+        with warnings.catch_warnings():
+            warnings.simplefilter("always")
+            warnings.warn("split.json: 1 of the 3 survey walks of the split are not among the walks given: x",
+                          LodemapWarning)
+    finally:
+        warnings.showwarning = saved
+    err = capsys.readouterr().err
+    assert err == ("lodemap build-map: warning: split.json: 1 of the 3 survey walks of the split are not among "
+                   "the walks given: x\n")

@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fingerprint.errors import ConfigError, DataError, FormatError
+from fingerprint.errors import ConfigError, DataError, FormatError, LodemapWarning
 from mapping.site import load_site
 from mapping.walkset import find_walks, load_split, select_walks, walk_name
 from _realdata import FULL, needs_full, real_dir
@@ -133,6 +133,16 @@ def test_split_selection(tmp_path):
     bad = _write(d / "bad.json", {"survey": ["walk_000"], "test": ["walk_000"]})
     with pytest.raises(DataError, match="both survey and test"):
         load_split(bad)
+    # a log file name stands for its walk; a name that matches no walk given
+    # is a warning naming the split file; a member in the wrong case is an error
+    sp2 = _write(d / "names.json", {"survey": ["walk_000.log.csv", "walk_009"], "test": [], "seed": 0})
+    with pytest.warns(LodemapWarning, match=r"names\.json: 1 of the 2 survey walks .* not among .*: walk_009$"):
+        assert [w.name for w in find_walks(d, split=sp2, part="survey")] == ["walk_000"]
+    cased = _write(d / "cased.json", {"Survey": ["walk_000"], "test": []})
+    with pytest.raises(FormatError, match=r"cased\.json: a split file needs lists 'survey' and 'test' \(lower case\)"):
+        load_split(cased)
+    with pytest.raises(DataError, match=r"split\.json: no walk left .* e\.g\. walk_000, walk_002"):
+        find_walks(d / "walk_003.log.csv", split=sp, part="survey")
 
 
 @needs_full
