@@ -16,6 +16,7 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -127,6 +128,9 @@ def load_site(path) -> Site:
         if not isinstance(date, str):
             raise FormatError(f"date must be an ISO date string 'YYYY-MM-DD' or null, got {date!r}", path=path)
         try:
+            # a calendar date, optionally with a time after "T" or a space (not used)
+            if not re.fullmatch(r"\d{4}-\d{2}-\d{2}([T ].*)?", date.strip()):
+                raise ValueError(date)
             date = _dt.date.fromisoformat(date.strip()[:10])
         except ValueError as err:
             raise FormatError(f"date must be an ISO date 'YYYY-MM-DD', got {date!r}", path=path) from err
@@ -143,6 +147,6 @@ def load_site(path) -> Site:
         latitude_deg=_optional_number(doc, "latitude_deg", path, lo=-90.0, hi=90.0),
         longitude_deg=_optional_number(doc, "longitude_deg", path, lo=-180.0, hi=360.0),
         date=date,
-        plan_rotation_deg=_optional_number(doc, "plan_rotation_deg", path),
+        plan_rotation_deg=_optional_number(doc, "plan_rotation_deg", path, lo=-360.0, hi=360.0),
         extra={k: v for k, v in doc.items() if k not in known},
     )

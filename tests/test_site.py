@@ -74,6 +74,11 @@ def test_site_json_error_has_line_and_column(tmp_path):
         ({"floors": [{"floor": "G"}]}, r"floors\[0\]"),
         ({"floors": [{"floor": "G", "plan": "a"}, {"floor": "G", "plan": "b"}]}, "listed twice"),
         ({"floors": [{"floor": "G", "plan": "a"}], "date": "June"}, "ISO date"),
+        # ISO 8601 calendar date YYYY-MM-DD only (no basic or week forms, no trailing text)
+        ({"floors": [{"floor": "G", "plan": "a"}], "date": "20240501"}, "ISO date"),
+        ({"floors": [{"floor": "G", "plan": "a"}], "date": "2024-W18-3"}, "ISO date"),
+        ({"floors": [{"floor": "G", "plan": "a"}], "date": "2024-05-01xyz"}, "ISO date"),
+        ({"floors": [{"floor": "G", "plan": "a"}], "plan_rotation_deg": 400}, "plan_rotation_deg"),
         ({"floors": [{"floor": "G", "plan": "a"}], "latitude_deg": 123}, "latitude_deg"),
         ({"floors": [{"floor": "G", "plan": "a"}], "plan_rotation_deg": "north"}, "plan_rotation_deg"),
     ],
