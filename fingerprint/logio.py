@@ -571,6 +571,8 @@ def _meta_line(path, key):
         return None
     for i, line in enumerate(text.split("\n"), 1):
         s = line.strip()
+        if not s:
+            continue  # blank lines may stand before or between metadata lines
         if not s.startswith("#"):
             return None
         if s[1:].split(":", 1)[0].strip() == key:
@@ -666,8 +668,10 @@ def _read_table(path, required, *, string_cols=(), allow_empty=(), known=None):
     num = {n: [] for n in names if n not in string_cols}
     strs = {n: [] for n in names if n in string_cols}
     linenos = []
-    for k, cells in enumerate(csv.reader(io.StringIO(body))):
-        lineno = first_line + k
+    reader = csv.reader(io.StringIO(body))
+    done = 0  # physical lines read so far (a quoted cell may span lines)
+    for cells in reader:
+        lineno, done = first_line + done, reader.line_num
         if not cells or all(not c.strip() for c in cells):
             continue
         if len(cells) != len(names):

@@ -250,3 +250,21 @@ def test_a_repeated_track_time_names_no_option_the_reader_lacks(tmp_path):
     with pytest.raises(logio.FormatError, match=r"line 3, column 1: duplicate time stamp 0 \(same as line 2\); "
                        r"expected strictly increasing t$"):
         read_track(p)
+
+
+def test_error_lines_count_physical_lines(tmp_path):
+    """A quoted label may hold a line break (RFC 4180, section 2.6): errors
+    after it still name the file's own line; a blank line before the
+    metadata does not hide the metadata's line."""
+    from fingerprint.errors import DataError, FormatError
+
+    p = tmp_path / "q.checkpoints.csv"
+    p.write_text('t,x,y,label\n0,1,1,"a\nb"\n1,2,2,c\n2,3,3,d,e\n', encoding="utf-8")
+    with pytest.raises(FormatError) as exc:
+        read_checkpoints(p)
+    assert (exc.value.line, exc.value.column) == (5, 5)
+    log = tmp_path / "d.log.csv"
+    log.write_text("\n# platform: drone\nt,ax,ay,az,gx,gy,gz,mx,my,mz\n0,0,0,9.8,0,0,0,20,0,-40\n", encoding="utf-8")
+    with pytest.raises(DataError) as exc:
+        read_walk_log(log)
+    assert exc.value.line == 2 and "platform" in str(exc.value)
