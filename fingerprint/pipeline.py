@@ -280,7 +280,12 @@ def process_walk(log: WalkLog, *, calibration: Calibration | None = None, step_c
         noise = float("nan")
     else:
         mag_earth = att.mag_earth_ut if att.mag_earth_ut is not None else quat_rotate(att.quat, mag)
-        noise = mag_noise_ut(mag)
+        # on the rows the magnetometer reported: the gaps were filled by
+        # interpolation, whose second differences are no noise at all
+        reported = np.isfinite(log.mag).all(axis=1)
+        if log.mag_raw is not None:
+            reported |= np.isfinite(log.mag_raw).all(axis=1)
+        noise = mag_noise_ut(mag[reported])
         meta["calibration_verdict"] = calibration_verdict(mag, calibrated_flag=log.magnetometer_calibrated)
     meta["mag_noise_ut"] = noise
     if platform == "robot":

@@ -71,6 +71,20 @@ def test_missing_samples_are_interpolated():
     assert np.isfinite(w.mag_earth_ut).all()
 
 
+def test_mag_noise_is_measured_on_reported_samples_only():
+    """A magnetometer reporting on every other row (sensors at different
+    rates): the noise is that of its own samples (0.3 µT white noise added
+    in ``_robot_log``), not of the rows filled between them."""
+    log, _, _ = _robot_log()
+    mag = log.mag.copy()
+    mag[1::2] = np.nan
+    gyro = log.gyro.copy()
+    gyro[::2] = np.nan
+    half = process_walk(WalkLog(t=log.t, acc=log.acc, gyro=gyro, mag=mag, odom=log.odom, meta=log.meta))
+    assert half.mag_noise_ut == pytest.approx(0.3, rel=0.1)
+    assert process_walk(log).mag_noise_ut == pytest.approx(0.3, rel=0.1)
+
+
 def test_mag_noise_estimate_on_white_noise():
     # sd of the second difference of white noise is sigma * sqrt(6)
     # (variance of x[i+1] - 2x[i] + x[i-1]: 1 + 4 + 1; common practice, no source)
