@@ -307,6 +307,21 @@ def _fast_parse_with_empty(body, ncol):
     return _numpy_parse(b, ncol, nrows)
 
 
+#: a plain decimal number (what the C parser of the fast path reads), and
+#: the words for non-finite values (refused with their own message)
+_PLAIN_NUMBER = re.compile(r"[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?")  # ASCII digits only
+_NON_FINITE = re.compile(r"[+-]?(nan|inf|infinity)", re.IGNORECASE)
+
+
+def _number(s):
+    """``float(s)`` for a plain decimal number or a non-finite word; other
+    text that Python's ``float`` would still read (``2_0``, digits of other
+    scripts) raises ValueError."""
+    if not (_PLAIN_NUMBER.fullmatch(s) or _NON_FINITE.fullmatch(s)):
+        raise ValueError(s)
+    return float(s)
+
+
 def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names, skip_cols=None):
     """Exact line-by-line scan: returns (values (R, ncol), line numbers (R,)).
 
@@ -357,7 +372,7 @@ def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names, skip_c
                     column=j + 1,
                 )
             try:
-                v = float(s)
+                v = _number(s)
             except ValueError:
                 raise FormatError(
                     f"expected a number in column {names[j]!r}, got {s!r}",
@@ -690,7 +705,7 @@ def _read_table(path, required, *, string_cols=(), allow_empty=(), known=None):
                 num[name].append(math.nan)
                 continue
             try:
-                v = float(s)
+                v = _number(s)
             except ValueError:
                 raise FormatError(
                     f"expected a number in column {name!r}, got {s!r}", path=spath, line=lineno, column=j + 1

@@ -268,3 +268,14 @@ def test_error_lines_count_physical_lines(tmp_path):
     with pytest.raises(DataError) as exc:
         read_walk_log(log)
     assert exc.value.line == 2 and "platform" in str(exc.value)
+
+
+@pytest.mark.parametrize("cell", ["2_0", "\u0662\u0660", "0x10", "1,5"])
+def test_only_plain_decimal_numbers_are_numbers(tmp_path, cell):
+    """Python's float() also reads '2_0' and other scripts' digits (Python
+    docs, "Built-in Functions: float"); a CSV cell must be a plain decimal
+    number like those the C parser of the fast path reads."""
+    p = tmp_path / "c.checkpoints.csv"
+    p.write_text(f't,x,y\n0,1,1\n1,"{cell}",2\n', encoding="utf-8")
+    with pytest.raises(logio.FormatError, match=r"line 3, column 2: expected a number in column 'x'"):
+        read_checkpoints(p)
