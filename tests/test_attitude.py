@@ -18,6 +18,7 @@ from fingerprint.attitude import (
     gyro_bias,
     madgwick_marg,
 )
+from fingerprint.errors import ConfigError
 
 B_ENU = np.array([0.0, 20.0, -40.0])  # µT, magnetic north has no east part by definition
 FS = 50.0
@@ -208,7 +209,7 @@ def test_offset_mode_is_gyro_heading_plus_one_constant():
     assert np.ptp(d) < 1e-9
     assert _heading_err_deg(a, rot).max() < 1.5  # and the constant is right (scipy truth)
     assert 0.9 < a.meta["heading_offset_inlier_share"] <= 1.0  # undisturbed: nearly every sample agrees
-    with pytest.raises(Exception, match="heading_mode"):
+    with pytest.raises(ConfigError, match="heading_mode"):
         estimate_attitude(t, acc, gyro, mag, settings=AttitudeSettings(heading_mode="compass"))
 
 

@@ -83,7 +83,7 @@ def test_planar_data_takes_circle_fallback_and_says_so():
     assert rep["arc_fraction"] == 1.0
 
 
-def test_too_little_turning_is_refused(tmp_path):
+def test_too_little_turning_is_refused(tmp_path, capsys):
     """Readings from a 30° turn about the vertical: a circle through so short
     an arc does not fix its centre (common practice, no source), so the fit
     refuses instead of returning the field itself as the offset; the command
@@ -99,6 +99,8 @@ def test_too_little_turning_is_refused(tmp_path):
     out = tmp_path / "cal.json"
     log = Path(__file__).parent / "data" / "malformed" / "valid.log.csv"  # a short log without turns
     assert main(["calibrate", str(log), "--out", str(out)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and str(log) in err[0] and "did not turn enough" in err[0], err
     assert not out.exists()
 
 

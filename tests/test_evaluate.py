@@ -188,9 +188,12 @@ def test_global_mode_scores_all_and_records_convergence():
     r = we.main_result
     assert r.scored.all()
     assert we.converged
+    # the definition (README, summary.json): the distance walked at the first
+    # checkpoint from which every error stays under 3 m, recomputed here
     k = int(np.flatnonzero(r.errors_m >= 3.0).max()) + 1 if np.any(r.errors_m >= 3.0) else 0
     assert we.convergence_distance_m == pytest.approx(we.distance_m[k])
-    assert np.all(r.errors_m[k:] < 3.0)
+    # the global-mode bar of the localisation issue: converged within 40 m walked
+    assert k < len(r.errors_m) and we.convergence_distance_m <= 40.0
 
 
 # -- the vertical offset a robot's planar self-calibration cannot see ----------

@@ -69,8 +69,13 @@ def test_zero_length_edge_rejected():
         FloorGraph.from_arrays([[0, 0], [0, 0]], [[0, 1]])
 
 
-def test_geojson_roundtrip_shape():
+def test_geojson_export_is_one_path_line_per_edge():
+    # (read back into a graph in test_graphbuild.py::test_geojson_export_reads_back)
     fg = FloorGraph.from_networkx(_grid_graph())
     gj = fg.to_geojson(floor="G")
     assert len(gj["features"]) == fg.n_edges
     assert all(f["properties"]["kind"] == "path" for f in gj["features"])
+    # each line runs between its edge's two nodes
+    for f, (a, b) in zip(gj["features"], fg.edges):
+        ends = np.array(f["geometry"]["coordinates"])[[0, -1]]
+        np.testing.assert_allclose(ends, fg.nodes_xy[[a, b]])

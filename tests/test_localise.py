@@ -120,15 +120,18 @@ def test_recovers_from_wrong_start_and_flags_it(floor):
     # recovery is random: over five seeds every run flags the loss and at
     # least four settle back under 1 m (measured: 9 of 10 seeds do)
     settled = 0
+    late = {}
     for seed in range(5):
         tr = localise(w, fm, settings=s, start_xy=wrong, start_sigma_m=1.0, rng=seed)
         e = S.errors(tr, t, xy)
         assert tr.extra["lost"].any()
-        settled += np.median(e[-20:]) < 1.0
+        late[seed] = np.median(e[-20:])
+        settled += late[seed] < 1.0
     assert settled >= 4
+    # the same seed without recovery: not flagged, and still lost at the end
     off = localise(w, fm, settings=dataclasses.replace(s, recovery=False), start_xy=wrong, start_sigma_m=1.0, rng=3)
     assert not off.extra["lost"].any()
-    assert np.median(S.errors(off, t, xy)[-20:]) > np.median(e[-20:])
+    assert np.median(S.errors(off, t, xy)[-20:]) > late[3]
 
 
 def test_kidnap_under_a_drifting_bias_is_found_by_the_innovation_level(floor):

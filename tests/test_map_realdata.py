@@ -51,7 +51,13 @@ def test_build_map_command_writes_a_checked_map(b1_map):
     tot = np.linalg.norm(fmap.mean_ut[fmap.free], axis=-1)
     assert 20 < np.median(tot) < 80
     q = json.loads(b1_map.with_suffix(".quality.json").read_text())
-    assert 0 < q["raster"]["covered_within_2m"] < 1
+    r = q["raster"]
+    assert 0 < r["covered_within_1m"] <= r["covered_within_2m"] < 1  # coverage grows with the radius
+    # the raster's free area against shapely's area of the plan's free space
+    # (1 m cells along a few hundred metres of wall: a few per cent)
+    from mapping.floorplan import load_floor_plan
+
+    assert r["free_area_m2"] == pytest.approx(load_floor_plan(DATA / "B1" / "floor.plan.geojson").free.area, rel=0.05)
     assert b1_map.with_suffix(".quality.png").stat().st_size > 10_000
     assert fmap.meta["walks_marked_other_floor"] == []  # the logs say floor B1
     # every survey walk carries its fitted offset; the outlier list names survey walks only

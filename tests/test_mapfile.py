@@ -130,7 +130,7 @@ def test_wrong_version_format_and_plan(saved, tmp_path):
     d3 = json.loads(json.dumps(doc))
     d3["arrays"]["free"]["sha256"] = hashlib.sha256(pick).hexdigest()
     other.write_bytes(_pack(d3, m2))
-    with pytest.raises(MapFileError):
+    with pytest.raises(MapFileError, match="Object arrays cannot be loaded when allow_pickle=False"):
         load_map(other)
     # wrong shape recorded consistently but inconsistent with the raster
     m4 = dict(members)
