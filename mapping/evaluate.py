@@ -314,6 +314,36 @@ def _one(wf, fmap, mode, settings, seed, baselines, start_sigma_m, on_error="rai
                          baselines=baselines, start_sigma_m=start_sigma_m, truth=truth)
 
 
+#: ground truth farther than this from the floor graph is worth a warning
+#: (the filter moves on the graph; hand taps are off by about a metre)
+OFF_GRAPH_M = 2.0
+
+
+def _warn_off_graph(walks, fmap, *, limit_m=OFF_GRAPH_M):
+    """One warning (``LodemapWarning``) when checkpoints lie more than
+    ``limit_m`` from the map's floor graph: a filter on the graph cannot come
+    nearer to them than that, so their errors say more about the graph or
+    the taps than about the localisation."""
+    import warnings
+
+    from fingerprint.errors import LodemapWarning
+
+    far, total, names, worst = 0, 0, [], 0.0
+    for w in walks:
+        if w.checkpoints is None or w.checkpoints.n == 0:
+            continue
+        _, _, d = fmap.graph.project(w.checkpoints.xy)
+        total += d.size
+        if np.any(d > limit_m):
+            far += int(np.sum(d > limit_m))
+            names.append(w.name)
+            worst = max(worst, float(d.max()))
+    if far:
+        warnings.warn(f"{far} of {total} checkpoints lie more than {limit_m:g} m from the map's floor graph (up to "
+                      f"{worst:.1f} m; walks {', '.join(names[:5])}{' ...' if len(names) > 5 else ''}): the filter "
+                      "moves on the graph, so their errors are at least that", LodemapWarning, stacklevel=3)
+
+
 def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_particles=None, seed=0,
                    baselines=BASELINES, start_sigma_m=1.0, jobs=1, progress=True, map_info=None,
                    on_error="raise"):
@@ -366,6 +396,7 @@ def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_partic
         ]
     walks = [o for o in outs if isinstance(o, WalkEvaluation)]
     skipped = [o for o in outs if not isinstance(o, WalkEvaluation)]
+    _warn_off_graph(walks, fmap)
     runtime = time.perf_counter() - t_start
     settings_dict = dataclasses.asdict(s) if dataclasses.is_dataclass(s) else dict(s or {})
     ev = Evaluation(mode=mode, seed=int(seed), settings=settings_dict, walks=walks, skipped=skipped,

@@ -233,3 +233,23 @@ def test_walks_read_for_a_map_take_the_robot_vertical_offset_from_it(tmp_path):
     (plain,) = load_walks(wf)
     assert np.mean(with_map.walk.mag_earth_ut[:, 2]) == pytest.approx(-41.0, abs=0.5)
     assert np.mean(plain.walk.mag_earth_ut[:, 2]) > -41.0 + 40.0
+
+
+def test_ground_truth_far_from_the_graph_is_a_warning():
+    """A checkpoint 4 m beside the corridor grid (corridors at y = 5, 15, 25;
+    x = 5, 20, 35): the graph's own distance to it is 4 m by construction,
+    so the filter cannot come nearer; the run says so once."""
+    import dataclasses
+
+    from fingerprint.errors import LodemapWarning
+    from mapping.evaluate import LoadedWalk, evaluate_walks
+
+    walk, cps, truth = fake_walk(rng=np.random.default_rng(0))
+    xy = cps.xy.copy()
+    xy[-1] = [12.0, 19.0]  # 4 m from y = 15, 8 m from x = 5 and x = 20
+    moved = dataclasses.replace(cps, xy=xy)
+    with pytest.warns(LodemapWarning, match=r"1 of \d+ checkpoints lie more than 2 m from the map's floor graph "
+                                            r"\(up to 4\.0 m; walks far\)"):
+        ev = evaluate_walks(fake_map(), [LoadedWalk("far", walk, moved, truth), LoadedWalk("near", walk, cps, truth)],
+                            mode="dead-reckoning", baselines=(), progress=False)
+    assert len(ev.walks) == 2
