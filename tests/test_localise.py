@@ -357,3 +357,24 @@ def test_field_floor_bounds_the_field_weight_spread_of_one_update(floor):
     assert np.ptp(d[np.isfinite(d)]) <= 1.5 + 1e-9
     d = free.log_w - base.log_w
     assert np.ptp(d[np.isfinite(d)]) > 2.0  # so the floor above did bind
+
+
+def test_the_map_tables_are_built_once_per_map(floor):
+    """An evaluation localises many walks on one map: the lookup table,
+    graph tables and floor background are made once per map object and
+    let go with it (weak references; common practice, no source)."""
+    import gc
+
+    from fingerprint.pf.loop import _MAP_PARTS, make_context
+
+    g, fm = floor
+    s = FilterSettings()
+    a, b = make_context(fm, s, sensor_noise_ut=0.5), make_context(fm, s, sensor_noise_ut=0.5)
+    assert a.table is b.table and a.tables is b.tables and a.background is b.background is not None
+    other = dataclasses.replace(fm)  # another map object: its own tables
+    c = make_context(other, s, sensor_noise_ut=0.5)
+    assert c.table is not a.table
+    n = len(_MAP_PARTS)
+    del other, c
+    gc.collect()
+    assert len(_MAP_PARTS) == n - 1

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import weakref
 from dataclasses import dataclass
 
 import numpy as np
@@ -35,17 +36,33 @@ class FilterContext:
     background: object = None  # FloorBackground, when field_valid_prior is set
 
 
+#: per map object, what the filter derives from it alone (its lookup table,
+#: graph tables and floor background): built once, not for every walk an
+#: evaluation or a sweep localises on the map (about 0.1 s on a real floor).
+#: A FieldMap is immutable; one whose arrays were changed in place anyway
+#: needs a new object.
+_MAP_PARTS = weakref.WeakKeyDictionary()
+
+
+def _map_part(fmap, name, build):
+    parts = _MAP_PARTS.setdefault(fmap, {})
+    if name not in parts:
+        parts[name] = build(fmap)
+    return parts[name]
+
+
 def make_context(fmap, settings, *, sensor_noise_ut):
     """A :class:`FilterContext` for ``fmap`` (its graph and rotation)."""
     return FilterContext(
         fmap=fmap,
-        table=MapTable(fmap),
+        table=_map_part(fmap, "table", MapTable),
         graph=fmap.graph,
-        tables=graph_tables(fmap.graph),
+        tables=_map_part(fmap, "graph_tables", lambda m: graph_tables(m.graph)),
         settings=settings,
         earth_to_plan_rad=float(fmap.earth_to_plan_rad),
         sensor_noise_ut=float(sensor_noise_ut),
-        background=floor_background(fmap) if settings.use_field and settings.field_valid_prior is not None else None,
+        background=(_map_part(fmap, "background", floor_background)
+                    if settings.use_field and settings.field_valid_prior is not None else None),
     )
 
 
