@@ -41,6 +41,7 @@ def add_arguments(parser):
 
 
 def run(args):
+    from fingerprint._atomic import check_writable
     from fingerprint.mapfile import save_map
 
     from ..mapbuild import build_floor_map
@@ -49,8 +50,6 @@ def run(args):
 
     if args.resolution <= 0:
         raise ConfigError(f"--resolution must be > 0, got {args.resolution}")
-    from fingerprint._atomic import check_writable
-
     check_writable(args.out)  # before minutes of fitting, not after
     site = load_site(args.site)
     walks = find_walks(args.walks, split=args.split, part=args.use if args.split else None)

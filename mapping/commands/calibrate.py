@@ -30,12 +30,11 @@ def add_arguments(parser):
 def run(args):
     import numpy as np
 
+    from fingerprint._atomic import check_writable
     from fingerprint.calibration import fit_calibration
     from fingerprint.errors import ConfigError, DataError
     from fingerprint.logio import read_walk_log
     from fingerprint.pipeline import up_directions
-
-    from fingerprint._atomic import check_writable
 
     check_writable(args.out)
     log = read_walk_log(args.log)

@@ -90,6 +90,7 @@ def parse_baselines(text):
 
 
 def run(args):
+    from fingerprint._atomic import check_writable
     from fingerprint.errors import ConfigError
     from fingerprint.mapfile import load_map
     from mapping.evaluate import evaluate_walks, write_outputs
@@ -100,8 +101,6 @@ def run(args):
     if not (args.start_sigma > 0):
         raise ConfigError(f"--start-sigma must be > 0, got {args.start_sigma}")
     baselines = parse_baselines(args.baselines)
-    from fingerprint._atomic import check_writable
-
     check_writable(args.out, folder=True)  # before localising every walk, not after
     from fingerprint.localise import preset
 

@@ -192,13 +192,11 @@ def track_geojson(track, *, floor=None, properties=None):
 
 
 def run(args):
-    from fingerprint._atomic import write_json_atomic, write_text_atomic
+    from fingerprint._atomic import check_writable, write_json_atomic, write_text_atomic
     from fingerprint.localise import localise
     from fingerprint.logio import read_walk_log
     from fingerprint.mapfile import load_map
     from fingerprint.pipeline import process_walk
-
-    from fingerprint._atomic import check_writable
 
     start_xy, sigma = (None, 1.0) if args.start is None else parse_start(args.start)
     settings = build_settings(args, global_mode=start_xy is None)

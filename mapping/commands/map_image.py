@@ -15,6 +15,7 @@ def add_arguments(parser):
 
 
 def run(args):
+    from fingerprint._atomic import check_writable
     from fingerprint.errors import ConfigError
     from fingerprint.mapfile import load_map
 
@@ -22,8 +23,6 @@ def run(args):
 
     if args.dpi < 1:
         raise ConfigError(f"--dpi must be a positive integer, got {args.dpi}")
-    from fingerprint._atomic import check_writable
-
     check_writable(args.out)
     fmap = load_map(args.map_path)
     if args.kind == "field":

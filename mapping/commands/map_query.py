@@ -67,10 +67,8 @@ def query(fmap, xy):
 
 
 def run(args):
-    from fingerprint._atomic import write_text_atomic
+    from fingerprint._atomic import check_writable, write_text_atomic
     from fingerprint.mapfile import load_map
-
-    from fingerprint._atomic import check_writable
 
     check_writable(args.out)
     fmap = load_map(args.map_path)

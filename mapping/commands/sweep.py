@@ -53,6 +53,7 @@ def add_arguments(parser):
 
 
 def run(args):
+    from fingerprint._atomic import check_writable
     from fingerprint.errors import ConfigError
     from mapping.sweep import load_sweep_config, run_sweep
 
@@ -63,8 +64,6 @@ def run(args):
             import dask.distributed  # noqa: F401
         except ImportError as err:
             raise ConfigError("--scheduler needs dask.distributed: pip install 'lodemap[cluster]'") from err
-    from fingerprint._atomic import check_writable
-
     cfg = load_sweep_config(args.config)
     check_writable(args.out, folder=True)
     res = run_sweep(cfg, args.out, jobs=args.jobs, scheduler=args.scheduler, progress=not args.no_progress)
