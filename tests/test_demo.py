@@ -301,3 +301,28 @@ def test_sweep_builds_one_map_per_map_setting_and_caches_it(demo, tmp_path, caps
     assert main(["sweep", str(cfg), "--out", str(tmp_path / "sw"), "--no-progress"]) == 0
     assert "0 done now, 8 already stored" in capsys.readouterr().out
     assert [m.stat().st_mtime_ns for m in sorted((tmp_path / "sw" / "maps").glob("*.map"))] == stamps
+
+
+def test_the_readme_python_example_runs_and_streaming_equals_batch(demo, capsys):
+    """The README's "From Python" example, run as printed on the tiny demo's
+    map and first test walk (paths and start swapped in); its live loop must
+    give exactly the batch replay's track for the same seed."""
+    import re
+
+    from fingerprint.logio import read_checkpoints
+
+    out, _ = demo
+    text = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
+    code = re.search(r"## From Python.*?```python\n(.*?)```", text, re.S).group(1)
+    log = sorted((out / "sim" / "T" / "test").glob("*.log.csv"))[0]
+    first = read_checkpoints(log.with_name(log.name.replace(".log.csv", ".checkpoints.csv"))).xy[0]
+    code = (code.replace("lodemap-demo/maps/G.map", str(out / "maps" / "T.map"))
+                .replace("lodemap-demo/sim/G/test/hh_008.log.csv", str(log))
+                .replace("(13.0, 8.0)", f"({first[0]!r}, {first[1]!r})"))
+    assert str(log) in code and "T.map" in code
+    ns = {}
+    exec(compile(code, "README.md", "exec"), ns)  # noqa: S102 - our own README's example
+    live, batch = ns["loc"].track(), ns["track"]
+    np.testing.assert_array_equal(live.t, batch.t)
+    np.testing.assert_array_equal(live.xy, batch.xy)
+    assert "Estimate(" in capsys.readouterr().out
