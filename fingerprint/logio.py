@@ -755,6 +755,7 @@ def read_checkpoints(path):
         label=strs.get("label"),
         path=spath,
         lines=np.asarray(linenos, dtype=np.int64),
+        t_column=seen["t"] + 1,
     )
 
 
@@ -785,7 +786,7 @@ def check_checkpoint_clock(cps, t_first, t_last, *, tolerance_s=2.0):
         raise DataError(
             f"checkpoint times {t.min():.6g}..{t.max():.6g} s lie outside the walk log's "
             f"{t_first:.6g}..{t_last:.6g} s; expected times on the log's clock (seconds, the same epoch)",
-            path=cps.path, line=line, column=1 if line is not None else None)
+            path=cps.path, line=line, column=(cps.t_column or 1) if line is not None else None)
     return outside
 
 

@@ -78,6 +78,7 @@ class Checkpoints:
     floor : (K,) str or None
     label : (K,) str or None
     lines : (K,) int or None, line of each row in its file (for messages)
+    t_column : int or None, column of ``t`` in its file (for messages)
     """
 
     t: np.ndarray
@@ -86,6 +87,7 @@ class Checkpoints:
     label: np.ndarray | None = None
     path: str | None = None
     lines: np.ndarray | None = None
+    t_column: int | None = None
 
     @property
     def n(self) -> int:
