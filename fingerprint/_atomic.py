@@ -52,7 +52,7 @@ def atomic_write(path, mode="w", **open_kwargs):
     if "b" not in mode:
         open_kwargs.setdefault("encoding", "utf-8")
         open_kwargs.setdefault("newline", "")
-    writing = True  # OSErrors of our own writing (not of the caller's code) name the target
+    writing = True  # inside our own writing (not the caller's code)
     try:
         with os.fdopen(fd, mode, **open_kwargs) as fh:
             writing = False
@@ -64,7 +64,9 @@ def atomic_write(path, mode="w", **open_kwargs):
     except BaseException as err:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
-        if writing and isinstance(err, OSError):
+        # our own writing, or the caller's fh.write refused (a full disk, a
+        # size limit: no file name of its own) name the target
+        if isinstance(err, OSError) and (writing or err.filename is None):
             raise OutputError(path, err) from None
         raise
 
@@ -84,7 +86,10 @@ def check_writable(path, *, folder=False):
         if not folder and path.is_dir():
             raise IsADirectoryError(21, "Is a directory", str(path))
         where.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=".lodemap-check.", suffix=".tmp", dir=where)
+        # the temporary name atomic_write will use (a long name may fit the
+        # file system only without it)
+        prefix = ".lodemap-check." if folder else f".{path.name}."
+        fd, tmp = tempfile.mkstemp(prefix=prefix, suffix=".tmp", dir=where)
         os.close(fd)
         os.unlink(tmp)
     except OSError as err:

@@ -68,6 +68,36 @@ class FieldMap:
         if not self.resolution_m > 0:
             raise DataError(f"field map resolution must be > 0, got {self.resolution_m}")
 
+    # -- things derived from the arrays, kept with the map --------------
+    def derived(self, name, build):
+        """``build(self)``, made once and kept with this map object (the
+        filter's lookup tables: an evaluation localises many walks on one
+        map). Rebuilt when the arrays were changed in place since (a cheap
+        fingerprint of them is compared); not pickled with the map."""
+        cache = self.__dict__.get("_derived")
+        stamp = self._stamp()
+        if cache is None or cache[0] != stamp:
+            cache = (stamp, {})
+            object.__setattr__(self, "_derived", cache)  # a cache, not a field
+        if name not in cache[1]:
+            cache[1][name] = build(self)
+        return cache[1][name]
+
+    def _stamp(self):
+        """Fingerprint of the arrays: their sums as bytes (NaN-safe to
+        compare), shapes and the graph's size."""
+        g = self.graph
+        parts = [np.sum(a, dtype=np.float64).tobytes() for a in (self.mean_ut, self.var_ut2, self.coverage_m)]
+        parts.append(int(np.count_nonzero(self.free)).to_bytes(8, "little"))
+        parts.append(np.sum(g.nodes_xy, dtype=np.float64).tobytes())
+        return (b"".join(parts), self.free.shape, g.n_nodes, g.n_edges, float(self.earth_to_plan_rad),
+                float(self.resolution_m), tuple(np.asarray(self.origin_xy, float).tolist()))
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state.pop("_derived", None)
+        return state
+
     @property
     def shape(self):
         return self.free.shape

@@ -228,7 +228,7 @@ def _column_index(names, path, header_line, required, optional_groups=()):
     return seen
 
 
-def _fast_parse(body, ncol):
+def _fast_parse(body, ncol, usecols=None):
     """Parse a numeric body with a C parser; None if it cannot.
 
     The layout is checked first, vectorised on the bytes: every line must
@@ -239,6 +239,10 @@ def _fast_parse(body, ncol):
     a plain number send the body to the exact scan. Without pandas,
     numpy's parser is used (no empty cells on that path).
 
+    With ``usecols`` (column indices) only those columns are parsed (any
+    text, in any script, may stand in the others, but no quoted comma or
+    line break: that body goes to the exact scan); the others are NaN.
+
     Returns (R, ncol) float, NaN exactly where a cell is empty, or None.
     """
     if "\r" in body:
@@ -247,7 +251,8 @@ def _fast_parse(body, ncol):
     if not body or body.isspace():
         return np.empty((0, ncol))
     try:
-        raw = body.encode("ascii")
+        # UTF-8 bytes 44 and 10 are always a comma and a line end
+        raw = body.encode("ascii" if usecols is None else "utf-8")
     except UnicodeEncodeError:
         return None
     u = np.frombuffer(raw, dtype=np.uint8)
@@ -259,18 +264,24 @@ def _fast_parse(body, ncol):
     try:
         import pandas as pd
     except ImportError:  # pragma: no cover - pandas is a dependency
-        return _numpy_parse(body, ncol, nrows)
+        return _numpy_parse(body, ncol, nrows) if usecols is None else None
+    cols = list(range(ncol)) if usecols is None else sorted(usecols)
     try:
         arr = pd.read_csv(
-            io.BytesIO(raw), header=None, names=list(range(ncol)), dtype=np.float64, engine="c",
+            io.BytesIO(raw), header=None, names=list(range(ncol)), usecols=cols,
+            dtype={c: np.float64 for c in cols}, engine="c", encoding="utf-8",
             na_filter=True, keep_default_na=False, na_values=[""], quoting=csv.QUOTE_NONE,
             skip_blank_lines=False, low_memory=False,
-        ).to_numpy()
+        )[cols].to_numpy()
     except (ValueError, OverflowError, pd.errors.ParserError):
         return None
-    if arr.shape != (nrows, ncol):
+    if arr.shape != (nrows, len(cols)):
         return None
-    return arr
+    if usecols is None:
+        return arr
+    out = np.full((nrows, ncol), np.nan)
+    out[:, cols] = arr
+    return out
 
 
 def _numpy_parse(body, ncol, nrows):
@@ -307,19 +318,30 @@ def _fast_parse_with_empty(body, ncol):
     return _numpy_parse(b, ncol, nrows)
 
 
-#: a plain decimal number (what the C parser of the fast path reads), and
-#: the words for non-finite values (refused with their own message)
-_PLAIN_NUMBER = re.compile(r"[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?")  # ASCII digits only
-_NON_FINITE = re.compile(r"[+-]?(nan|inf|infinity)", re.IGNORECASE)
-
-
 def _number(s):
     """``float(s)`` for a plain decimal number or a non-finite word; other
     text that Python's ``float`` would still read (``2_0``, digits of other
-    scripts) raises ValueError."""
-    if not (_PLAIN_NUMBER.fullmatch(s) or _NON_FINITE.fullmatch(s)):
+    scripts) raises ValueError. (On ASCII text without ``_``, ``float``
+    reads exactly the plain numbers and the non-finite words.)"""
+    if "_" in s or not s.isascii():
         raise ValueError(s)
     return float(s)
+
+
+def _records(body, first_line):
+    """(first line number, text, cells) of each CSV record of ``body``:
+    one per line, or through the csv module when something is quoted (a
+    quoted cell may hold a comma or a line break; RFC 4180)."""
+    if '"' not in body:
+        for k, line in enumerate(body.split("\n")):
+            line = line.rstrip("\r")
+            yield first_line + k, line, line.split(",")
+        return
+    reader = csv.reader(io.StringIO(body))
+    done = 0  # physical lines read so far
+    for cells in reader:
+        start, done = first_line + done, reader.line_num
+        yield start, ",".join(cells), cells
 
 
 def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names, skip_cols=None):
@@ -333,20 +355,16 @@ def _slow_parse(body, first_line, ncol, path, *, allow_empty_cols, names, skip_c
     skip = [False] * ncol if skip_cols is None else list(skip_cols)
     rows = []
     linenos = []
-    lines = body.split("\n")
-    for k, line in enumerate(lines):
-        lineno = first_line + k
-        line = line.rstrip("\r")
+    for lineno, line, cells in _records(body, first_line):
         if not line.strip():
             continue
-        if line.lstrip().startswith("#"):
+        if line.lstrip().startswith("#") and len(cells) != ncol:
             raise FormatError(
                 "expected a data row; '#' metadata lines must come before the header",
                 path=path,
                 line=lineno,
                 column=1,
             )
-        cells = next(csv.reader([line])) if '"' in line else line.split(",")
         if len(cells) != ncol:
             col = min(len(cells), ncol) + 1 if len(cells) < ncol else ncol + 1
             raise FormatError(
@@ -405,6 +423,9 @@ def _parse_numeric(body, first_line, names, path, *, allow_empty_cols, skip_cols
     """
     ncol = len(names)
     arr = _fast_parse(body, ncol)
+    if arr is None and skip_cols is not None and any(skip_cols):
+        # a column the format does not know holds text: parse the others
+        arr = _fast_parse(body, ncol, usecols=[j for j in range(ncol) if not skip_cols[j]])
     if arr is not None and not np.isinf(arr).any():
         # the layout check guarantees one data row per body line; NaN is an
         # empty cell (literal nan text does not parse on the fast path)
@@ -760,7 +781,8 @@ def read_checkpoints(path):
 
 
 def check_checkpoint_clock(cps, t_first, t_last, *, tolerance_s=2.0):
-    """Checkpoint times must be on the log's clock (FORMATS.md section 2).
+    """Checkpoint times must be on the log's clock (the data contract;
+    README, "Input files": checkpoints ``t``, "the log's clock").
 
     Parameters
     ----------
@@ -774,13 +796,14 @@ def check_checkpoint_clock(cps, t_first, t_last, *, tolerance_s=2.0):
 
     Raises
     ------
-    DataError, naming the checkpoints file, line and column, when fewer
-    than two checkpoints (one, if the file has one) lie within the span:
-    the two files use different clocks (another epoch, milliseconds).
+    DataError, naming the checkpoints file, line and column, when none or
+    fewer than half of the checkpoints lie within the span: the two files
+    use different clocks (another epoch, milliseconds).
     """
     t = np.asarray(cps.t, dtype=float)
     outside = (t < t_first - tolerance_s) | (t > t_last + tolerance_s)
-    if t.size and int(np.sum(~outside)) < min(2, t.size):
+    inside = int(np.sum(~outside))
+    if t.size and (inside == 0 or 2 * inside < t.size):
         i = int(np.flatnonzero(outside)[0])
         line = None if cps.lines is None else int(cps.lines[i])
         raise DataError(
@@ -793,8 +816,9 @@ def check_checkpoint_clock(cps, t_first, t_last, *, tolerance_s=2.0):
 def read_track(path):
     """Read a track (``t,x,y[,heading_rad][,...]``). Further columns (a
     result track's uncertainty, confidence, flags) go to ``Track.extra``
-    when every cell is a number or empty (NaN), as float arrays; others
-    (text flags such as ``ok``/``lost``) are not read.
+    when every cell is a plain finite number or empty (NaN), as float
+    arrays; others (text flags such as ``ok``/``lost``, ``nan`` written out)
+    are not read.
 
     Returns
     -------
@@ -807,11 +831,13 @@ def read_track(path):
     t = num["t"]
     _check_time(t, linenos, 0, spath, seen["t"] + 1, hint=False)
     extra = {}
-    for k, cells in strs.items():
+    for k, cells in strs.items():  # numeric when every cell is a plain finite number or empty
         try:
-            extra[k] = np.array([math.nan if c == "" else float(c) for c in cells], dtype=float)
+            col = np.array([math.nan if c == "" else _number(c) for c in cells], dtype=float)
         except ValueError:
             continue
+        if np.isfinite(col[[c != "" for c in cells]]).all():
+            extra[k] = col
     return Track(
         t=t,
         xy=np.column_stack([num["x"], num["y"]]),

@@ -96,6 +96,9 @@ def main(argv=None):
     if args.command is None:
         parser.print_help()
         return 0
+    import warnings
+
+    saved = warnings.showwarning
     _show_warnings_as_lines(args.command)
     try:
         return int(_load(args.command).run(args) or 0)
@@ -118,6 +121,8 @@ def main(argv=None):
     except KeyboardInterrupt:
         print(f"lodemap {args.command}: interrupted", file=sys.stderr)
         return 130
+    finally:
+        warnings.showwarning = saved  # main() called from Python leaves no hook behind
 
 
 if __name__ == "__main__":  # pragma: no cover

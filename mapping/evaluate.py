@@ -25,6 +25,7 @@ import dataclasses
 import io
 import math
 import platform as _platform
+import re
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -534,7 +535,8 @@ def write_outputs(ev, fmap, out_dir, *, title=None):
     # an earlier evaluation into the same folder: its tracks and track
     # images of walks not in this run would pass for this run's
     stale = [p for p in (out / "tracks").glob("*.track.csv") if p.name not in written]
-    stale += [p for p in out.glob("tracks*.png") if p.name not in images]
+    stale += [p for p in out.glob("tracks*.png")
+              if re.fullmatch(r"tracks(_\d+)?\.png", p.name) and p.name not in images]  # our names only
     for p in stale:
         p.unlink(missing_ok=True)
     paths["images"] = {"error_cdf.png": cdf_b64, **images}

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -205,7 +206,8 @@ def plan_from_geojson(doc, *, path=None) -> FloorPlan:
     if not isinstance(feats, list):
         raise FormatError("a floor plan needs a list 'features'", path=path)
     crs = json.dumps(doc["crs"]) if "crs" in doc else ""
-    if any(code in crs.upper() for code in ("CRS84", "4326", "4979", "4269")):  # geographic CRSs (EPSG)
+    # OGC CRS84 and the EPSG codes of WGS 84 (2-D, 3-D) and NAD83: longitude and latitude
+    if re.search(r"CRS84|EPSG:{1,2}(4326|4979|4269)\b|EPSG/0/(4326|4979|4269)\b", crs.upper()):
         raise FormatError(f"the plan declares a longitude/latitude CRS ({crs[:80]}); expected coordinates "
                           "in metres in the plan frame", path=path)
     walk, obst, repaired = [], [], []

@@ -644,8 +644,8 @@ def filter_settings(overrides, *, preset_name="default"):
 
 def _setting_error(cfg, err):
     """``err`` (a ConfigError about one setting) as a ConfigError naming
-    the config file, the line and column of that setting in ``[grid]`` or
-    ``[random]`` and the table, when they can be found."""
+    the config file, the line and column of that setting in the table of
+    the search in use (``[grid]`` or ``[random]``), when they can be found."""
     text = str(err)
     m = re.match(r"unknown setting\(s\) \['([^']+)'", text) or re.match(r"filter setting (\w+): ", text)
     if not m or not cfg.path:
@@ -664,7 +664,7 @@ def _setting_error(cfg, err):
             table = head.group(1)
             continue
         key = re.match(rf"(\s*){re.escape(name)}\s*=", line)
-        if key and table in ("grid", "random"):
+        if key and table == cfg.search:  # the table the settings came from
             return ConfigError(f"{cfg.path}, line {i}, column {len(key.group(1)) + 1}: [{table}] {text}")
     return ConfigError(f"{cfg.path}: {text}")
 

@@ -209,3 +209,21 @@ def test_our_warnings_are_one_line_on_stderr(capsys):
     err = capsys.readouterr().err
     assert err == ("lodemap build-map: warning: split.json: 1 of the 3 survey walks of the split are not among "
                    "the walks given: x\n")
+
+
+def test_a_full_disk_while_writing_names_the_output(tmp_path):
+    """The caller's own write refused by the system (ENOSPC, errno 28 of
+    POSIX, simulated; no file name of its own) is reported for the output
+    being written, and the previous file is kept."""
+    import errno
+
+    from fingerprint._atomic import atomic_write
+    from fingerprint.errors import OutputError
+
+    target = tmp_path / "big.csv"
+    target.write_text("old\n")
+    with pytest.raises(OutputError, match=r"big\.csv: cannot write: No space left on device"):
+        with atomic_write(target) as fh:
+            fh.write("part")
+            raise OSError(errno.ENOSPC, "No space left on device")
+    assert target.read_text() == "old\n" and not list(tmp_path.glob(".*.tmp"))

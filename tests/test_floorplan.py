@@ -101,7 +101,7 @@ def test_self_overlapping_ring_is_rejected_as_ambiguous():
         ({"type": "Feature"}, FormatError, "FeatureCollection"),
         (fc(feat("walkable", rect(0, 0, 1, 1)), plan={"units": "ft"}), FormatError, "units"),
         (fc(feat("walkable", [[["a", 0], [1, 0], [1, 1], [0, 0]]])), FormatError, r"feature 1 \(features\[0\]\)"),
-        # FORMATS.md section 4: metres in the plan frame, not longitude and latitude
+        # the data contract (README, "Input files"): metres in the plan frame, not longitude and latitude
         (fc(feat("walkable", rect(13.405, 52.52, 13.406, 52.5205))), DataError,
          r"free space is only 5e-07 m² across x 13\.405\.\.13\.406.*not longitude and latitude"),
         ({**fc(feat("walkable", rect(0, 0, 10, 10))), "crs": {"type": "name", "properties": {

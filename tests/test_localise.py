@@ -17,7 +17,7 @@ import pytest
 from fingerprint.errors import ConfigError, ConvergenceError, DataError
 from fingerprint.localise import FilterSettings, Localiser, localise, preset
 from fingerprint.pf.estimate import cluster_estimate
-from fingerprint.pf.loop import RecoveryTracker, filter_step
+from fingerprint.pf.loop import RecoveryTracker, filter_step, make_context
 from fingerprint.pf.measurement import window_observation
 
 import _pf_synth as S
@@ -361,20 +361,30 @@ def test_field_floor_bounds_the_field_weight_spread_of_one_update(floor):
 
 def test_the_map_tables_are_built_once_per_map(floor):
     """An evaluation localises many walks on one map: the lookup table,
-    graph tables and floor background are made once per map object and
-    let go with it (weak references; common practice, no source)."""
-    import gc
-
-    from fingerprint.pf.loop import _MAP_PARTS, make_context
+    graph tables and floor background are made once per map object
+    (FieldMap.derived), made again after the map's arrays were changed in
+    place, and not pickled with the map (common practice, no source)."""
+    import pickle
 
     g, fm = floor
     s = FilterSettings()
     a, b = make_context(fm, s, sensor_noise_ut=0.5), make_context(fm, s, sensor_noise_ut=0.5)
     assert a.table is b.table and a.tables is b.tables and a.background is b.background is not None
-    other = dataclasses.replace(fm)  # another map object: its own tables
+    other = dataclasses.replace(fm, mean_ut=fm.mean_ut.copy())  # another map object: its own tables
     c = make_context(other, s, sensor_noise_ut=0.5)
     assert c.table is not a.table
-    n = len(_MAP_PARTS)
-    del other, c
-    gc.collect()
-    assert len(_MAP_PARTS) == n - 1
+    # changed in place: the next context sees the new field, as the map's own lookup does
+    xy = g.point(np.array([0]), np.array([0.0]))
+    other.mean_ut[...] += 7.0
+    d = make_context(other, s, sensor_noise_ut=0.5)
+    assert d.table is not c.table
+    np.testing.assert_allclose(d.table.lookup(xy)[0], other.lookup(xy)[0], atol=1e-4)
+    # pickled without its tables; a localiser pickles and goes on alike
+    assert "_derived" not in pickle.loads(pickle.dumps(other)).__dict__
+    loc = Localiser(fm, settings=s, start_xy=xy[0], rng=1)
+    twin = pickle.loads(pickle.dumps(loc))
+    for k in range(5):
+        e1 = loc.push_motion(float(k + 1), 0.7, 0.0)
+        e2 = twin.push_motion(float(k + 1), 0.7, 0.0)
+    assert (e1 is None) == (e2 is None)
+    np.testing.assert_array_equal(loc.particles_xy()[0], twin.particles_xy()[0])

@@ -215,9 +215,10 @@ def test_brisk_real_walk_passes_the_accelerometer_unit_check(tmp_path):
 
 
 def test_extra_columns_of_any_content_are_ignored_and_quotes_read(tmp_path):
-    """FORMATS.md: a result track "may add columns (uncertainty, confidence,
-    flags)", and unknown log columns are ignored; the csv module (Python
-    stdlib, RFC 4180 quoting) is the reference for quoted headers and cells."""
+    """The data contract (README, "Input files"): a result track may add
+    columns (uncertainty, confidence, flags), and unknown log columns are
+    not read; the csv module (Python stdlib, RFC 4180 quoting) is the
+    reference for quoted headers and cells."""
     real = read_walk_log(REAL / "walk_001.log.csv.gz")
     with gzip.open(REAL / "walk_001.log.csv.gz", "rt", encoding="utf-8") as fh:
         lines = fh.read().splitlines()
@@ -231,6 +232,15 @@ def test_extra_columns_of_any_content_are_ignored_and_quotes_read(tmp_path):
     np.testing.assert_array_equal(log.t, real.t)
     np.testing.assert_array_equal(log.mag, real.mag)
     np.testing.assert_array_equal(log.acc, real.acc)
+    # an unknown text column in front, one cell starting with '#', one
+    # quoted with a line break in it: the same numbers, by the fast or the exact path
+    for k, cell in ((0, "hello"), (1, '"a\nb"'), (2, "#3")):
+        p.write_text("\n".join(lines[:head] + ["tag," + lines[head]]
+                               + [("x" if i != k else cell) + "," + ln for i, ln in enumerate(lines[head + 1:])])
+                     + "\n", encoding="utf-8")
+        log = read_walk_log(p)
+        np.testing.assert_array_equal(log.t, real.t)
+        np.testing.assert_array_equal(log.mag, real.mag)
     # checkpoints with a free-text column
     cp = tmp_path / "c.checkpoints.csv"
     cp.write_text('t,x,y,note\n1.5,2.0,3.0,"by the door, left"\n2.5,4.0,5.0,\n', encoding="utf-8")
@@ -238,9 +248,10 @@ def test_extra_columns_of_any_content_are_ignored_and_quotes_read(tmp_path):
     np.testing.assert_array_equal(c.xy, [[2.0, 3.0], [4.0, 5.0]])
     # a result track with text flags and a numeric confidence
     tr = tmp_path / "r.track.csv"
-    tr.write_text("t,x,y,confidence,flags,converged\n0,1,2,0.5,ok,true\n1,2,3,,lost,false\n", encoding="utf-8")
+    tr.write_text("t,x,y,confidence,flags,converged,score\n0,1,2,0.5,ok,true,nan\n1,2,3,,lost,false,1\n",
+                  encoding="utf-8")
     t = read_track(tr)
-    assert set(t.extra) == {"confidence"}
+    assert set(t.extra) == {"confidence"}  # text flags and a written-out nan: not read
     np.testing.assert_array_equal(t.extra["confidence"], [0.5, np.nan])
 
 

@@ -229,7 +229,7 @@ def test_walk_offsets_match_least_squares():
 
 
 def test_checkpoint_checks_find_another_clock_and_taps_off_the_plan(tmp_path):
-    """FORMATS.md section 2: checkpoint times are on the log's clock and x, y
+    """The data contract (README, "Input files"): checkpoint times are on the log's clock and x, y
     in the plan frame. Times in milliseconds are an error naming the file
     and line; a tap 2.5 m outside the walkable area is reported with its
     distance (shapely's distance is the reference), one in the middle of the
@@ -254,3 +254,8 @@ def test_checkpoint_checks_find_another_clock_and_taps_off_the_plan(tmp_path):
     with pytest.raises(DataError, match=r"ms\.checkpoints\.csv, line 2, column 1: checkpoint times 1000\.\.20000 s "
                        r"lie outside the walk log's 0\.\.60 s"):
         checkpoint_checks([SurveyWalk("w", walk, read_checkpoints(ms))], plan)
+    # two checkpoints, the second tapped 5 s after the log stopped: reported, not refused
+    late = tmp_path / "late.checkpoints.csv"
+    late.write_text("x,y,t\n1,1,1.0\n2,2,65.0\n", encoding="utf-8")
+    found = checkpoint_checks([SurveyWalk("w", walk, read_checkpoints(late))], plan)
+    assert found[0]["outside_log_time"] == [3]

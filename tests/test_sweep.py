@@ -412,7 +412,8 @@ def test_a_bad_setting_is_reported_at_its_line(tmp_path, line, column, words):
     (tmp_path / "walks" / "walk_000.log.csv").write_text("t\n")
     (tmp_path / "walks" / "walk_000.checkpoints.csv").write_text("t,x,y\n")
     (tmp_path / "floor.map").write_bytes(b"")
-    cfg = _cfg(tmp_path, BASE + "[grid]\n" + line + "\n")
+    # the same name in [random] (not searched here) comes first in the file
+    cfg = _cfg(tmp_path, BASE + "[random]\nn_particles = {low = 1, high = 5}\n[grid]\n" + line + "\n")
     lineno = Path(cfg.path).read_text().splitlines().index(line) + 1
     with pytest.raises(ConfigError) as info:
         run_sweep(cfg, tmp_path / "out", progress=False, run_fn=fake_run)

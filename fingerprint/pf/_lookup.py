@@ -20,8 +20,6 @@ is not in the table (a point off the graph) falls back to ``FieldMap.lookup``.
 
 from __future__ import annotations
 
-import weakref
-
 import numpy as np
 
 __all__ = ["MapTable"]
@@ -76,9 +74,7 @@ class MapTable:
 
     def __init__(self, fmap):
         ny, nx = fmap.free.shape
-        # weakly: the filter keeps one table per map object for as long as
-        # the map lives (fingerprint.pf.loop), which a strong one would prevent
-        self._fmap = weakref.ref(fmap)
+        self.fmap = fmap
         self.nx, self.ny = nx, ny
         self.x0, self.y0 = float(fmap.origin_xy[0]), float(fmap.origin_xy[1])
         self.res = float(fmap.resolution_m)
@@ -97,11 +93,6 @@ class MapTable:
         self.coef = octs.view(_ITEM).reshape(4, cells.size)
         self.row = np.full(ny * nx, -1, dtype=np.int32)
         self.row[cells] = np.arange(cells.size, dtype=np.int32)
-
-    @property
-    def fmap(self):
-        """The FieldMap of the table (None once it is gone)."""
-        return self._fmap()
 
     def lookup(self, xy):
         """Bilinear lookup at (N, 2) plan positions.

@@ -6,7 +6,6 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import weakref
 from dataclasses import dataclass
 
 import numpy as np
@@ -36,33 +35,27 @@ class FilterContext:
     background: object = None  # FloorBackground, when field_valid_prior is set
 
 
-#: per map object, what the filter derives from it alone (its lookup table,
-#: graph tables and floor background): built once, not for every walk an
-#: evaluation or a sweep localises on the map (about 0.1 s on a real floor).
-#: A FieldMap is immutable; one whose arrays were changed in place anyway
-#: needs a new object.
-_MAP_PARTS = weakref.WeakKeyDictionary()
-
-
-def _map_part(fmap, name, build):
-    parts = _MAP_PARTS.setdefault(fmap, {})
-    if name not in parts:
-        parts[name] = build(fmap)
-    return parts[name]
-
-
 def make_context(fmap, settings, *, sensor_noise_ut):
-    """A :class:`FilterContext` for ``fmap`` (its graph and rotation)."""
+    """A :class:`FilterContext` for ``fmap`` (its graph and rotation). What
+    depends on the map alone is built once per map object
+    (``FieldMap.derived``), not for every walk localised on it."""
+    parts = fmap.derived("filter", lambda m: {})
+
+    def part(name, build):
+        if name not in parts:
+            parts[name] = build()
+        return parts[name]
+
+    want_background = settings.use_field and settings.field_valid_prior is not None
     return FilterContext(
         fmap=fmap,
-        table=_map_part(fmap, "table", MapTable),
+        table=part("table", lambda: MapTable(fmap)),
         graph=fmap.graph,
-        tables=_map_part(fmap, "graph_tables", lambda m: graph_tables(m.graph)),
+        tables=part("graph_tables", lambda: graph_tables(fmap.graph)),
         settings=settings,
         earth_to_plan_rad=float(fmap.earth_to_plan_rad),
         sensor_noise_ut=float(sensor_noise_ut),
-        background=(_map_part(fmap, "background", floor_background)
-                    if settings.use_field and settings.field_valid_prior is not None else None),
+        background=part("background", lambda: floor_background(fmap)) if want_background else None,
     )
 
 
