@@ -73,7 +73,8 @@ class FieldMap:
         """``build(self)``, made once and kept with this map object (the
         filter's lookup tables: an evaluation localises many walks on one
         map). Rebuilt when the arrays were changed in place since (a cheap
-        fingerprint of them is compared); not pickled with the map."""
+        fingerprint of them is compared); not carried along when the map is
+        copied or sent to a worker process."""
         cache = self.__dict__.get("_derived")
         stamp = self._stamp()
         if cache is None or cache[0] != stamp:
