@@ -24,7 +24,7 @@ from fingerprint.errors import DataError, FormatError
 
 from .site import read_json_file
 
-__all__ = ["FloorPlan", "load_floor_plan", "plan_from_geojson", "check_points", "KINDS"]
+__all__ = ["FloorPlan", "load_floor_plan", "plan_from_geojson", "check_points", "feature_label", "KINDS"]
 
 #: Feature kinds a plan may hold.
 KINDS = ("walkable", "obstacle")
@@ -139,25 +139,33 @@ class FloorPlan:
         return float(self.free.area)
 
 
+def feature_label(index):
+    """How messages name the ``index``-th feature (0-based): counted from 1
+    as people count, with its JSON index."""
+    return f"feature {index + 1} (features[{index}])"
+
+
 def _feature_geometry(feat, index, path):
     if not isinstance(feat, dict):
-        raise FormatError(f"feature {index + 1} (features[{index}]) must be a GeoJSON Feature object, got {type(feat).__name__}", path=path)
+        raise FormatError(f"{feature_label(index)} must be a GeoJSON Feature object, got {type(feat).__name__}",
+                          path=path)
     props = feat.get("properties") or {}
     if not isinstance(props, dict):
-        raise FormatError(f"feature {index + 1} (features[{index}]): properties must be an object", path=path)
+        raise FormatError(f"{feature_label(index)}: properties must be an object", path=path)
     kind = props.get("kind")
     if kind not in KINDS:
         raise FormatError(
-            f"feature {index + 1} (features[{index}]): properties.kind must be one of {', '.join(KINDS)}, got {kind!r}", path=path
+            f"{feature_label(index)}: properties.kind must be one of {', '.join(KINDS)}, got {kind!r}", path=path
         )
     gj = feat.get("geometry")
     if not isinstance(gj, dict) or gj.get("type") not in _POLYGONAL:
         got = gj.get("type") if isinstance(gj, dict) else gj
-        raise FormatError(f"feature {index + 1} (features[{index}]) ({kind}): geometry must be Polygon or MultiPolygon, got {got!r}", path=path)
+        raise FormatError(f"{feature_label(index)} ({kind}): geometry must be Polygon or MultiPolygon, got {got!r}",
+                          path=path)
     try:
         geom = shapely.from_geojson(json.dumps(gj))
     except Exception as err:  # shapely raises GEOSException / ValueError on bad coordinates
-        raise FormatError(f"feature {index + 1} (features[{index}]) ({kind}): unreadable geometry: {err}", path=path) from err
+        raise FormatError(f"{feature_label(index)} ({kind}): unreadable geometry: {err}", path=path) from err
     return kind, geom
 
 
@@ -172,7 +180,7 @@ def _repair(geom, index, kind, path):
     area_a, area_b = a.area, b.area
     if a.is_empty or b.is_empty or abs(area_a - area_b) > _REPAIR_RTOL * max(area_a, area_b, 1e-12):
         raise FormatError(
-            f"feature {index + 1} (features[{index}]) ({kind}) is an invalid polygon ({reason}) and its repair is ambiguous "
+            f"{feature_label(index)} ({kind}) is an invalid polygon ({reason}) and its repair is ambiguous "
             f"(two repair methods give areas {area_a:.3f} and {area_b:.3f} m²); fix the drawing",
             path=path,
         )

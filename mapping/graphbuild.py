@@ -52,6 +52,7 @@ from scipy.spatial import Voronoi, cKDTree
 from fingerprint.errors import ConfigError, DataError, FormatError
 from fingerprint.floorgraph import FloorGraph
 
+from .floorplan import feature_label
 from .site import read_json_file
 
 __all__ = [
@@ -830,21 +831,22 @@ def load_graph_geojson(path, *, snap_m=0.05, max_edge_m=1.0) -> FloorGraph:
     for i, feat in enumerate(feats):
         props = (feat.get("properties") or {}) if isinstance(feat, dict) else None
         if not isinstance(props, dict):
-            raise FormatError(f"feature {i + 1} (features[{i}]) must be a Feature with properties", path=path)
+            raise FormatError(f"{feature_label(i)} must be a Feature with properties", path=path)
         kind = props.get("kind")
         if kind in ("walkable", "obstacle"):
             continue
         if kind != "path":
-            raise FormatError(f"feature {i + 1} (features[{i}]): properties.kind must be 'path' in a graph file, got {kind!r}", path=path)
+            raise FormatError(f"{feature_label(i)}: properties.kind must be 'path' in a graph file, got {kind!r}",
+                              path=path)
         gj = feat.get("geometry")
         if not isinstance(gj, dict) or gj.get("type") not in ("LineString", "MultiLineString"):
             got = gj.get("type") if isinstance(gj, dict) else gj
-            raise FormatError(f"feature {i + 1} (features[{i}]) (path): geometry must be LineString or MultiLineString, got {got!r}",
+            raise FormatError(f"{feature_label(i)} (path): geometry must be LineString or MultiLineString, got {got!r}",
                               path=path)
         try:
             geom = shapely.from_geojson(json.dumps(gj))
         except Exception as err:
-            raise FormatError(f"feature {i + 1} (features[{i}]) (path): unreadable geometry: {err}", path=path) from err
+            raise FormatError(f"{feature_label(i)} (path): unreadable geometry: {err}", path=path) from err
         lines.extend(p for p in shapely.get_parts(geom) if not p.is_empty and p.length > 0)
     if not lines:
         raise DataError("graph file has no path line of non-zero length", path=path)
