@@ -12,7 +12,11 @@ from pathlib import Path
 
 from .errors import OutputError
 
-__all__ = ["atomic_write", "write_text_atomic", "write_json_atomic", "check_writable"]
+__all__ = ["atomic_write", "write_text_atomic", "write_json_atomic", "check_writable", "remove_empty_made"]
+
+#: folders check_writable made (innermost first): a command that fails
+#: afterwards removes those still empty (remove_empty_made)
+_MADE = []
 
 
 def _umask():
@@ -85,7 +89,9 @@ def check_writable(path, *, folder=False):
     try:
         if not folder and path.is_dir():
             raise IsADirectoryError(21, "Is a directory", str(path))
+        missing = [d for d in (where, *where.parents) if not d.exists()]
         where.mkdir(parents=True, exist_ok=True)
+        _MADE.extend(missing)
         # the temporary name atomic_write will use (a long name may fit the
         # file system only without it)
         prefix = ".lodemap-check." if folder else f".{path.name}."
@@ -94,6 +100,15 @@ def check_writable(path, *, folder=False):
         os.unlink(tmp)
     except OSError as err:
         raise OutputError(path, err, expect="folder" if folder else "file") from None
+
+
+def remove_empty_made():
+    """Remove the folders :func:`check_writable` made that are still empty
+    (a command that failed leaves none behind); forget the others."""
+    for d in _MADE:
+        with contextlib.suppress(OSError):
+            d.rmdir()  # only an empty folder goes
+    _MADE.clear()
 
 
 def write_text_atomic(path, text):

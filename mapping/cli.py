@@ -98,10 +98,16 @@ def main(argv=None):
         return 0
     import warnings
 
+    from fingerprint import _atomic
+
     saved = warnings.showwarning
     _show_warnings_as_lines(args.command)
+    _atomic._MADE.clear()
+    failed = True  # a failed command leaves no empty output folder behind
     try:
-        return int(_load(args.command).run(args) or 0)
+        status = int(_load(args.command).run(args) or 0)
+        failed = status != 0
+        return status
     except LodemapError as err:
         print(f"lodemap {args.command}: error: {err}", file=sys.stderr)
         return 2
@@ -123,6 +129,10 @@ def main(argv=None):
         return 130
     finally:
         warnings.showwarning = saved  # main() called from Python leaves no hook behind
+        if failed:
+            _atomic.remove_empty_made()
+        else:
+            _atomic._MADE.clear()
 
 
 if __name__ == "__main__":  # pragma: no cover

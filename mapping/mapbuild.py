@@ -152,10 +152,12 @@ def load_walks(walk_files, *, use_track=True, progress=True, desc="reading walks
 CHECKPOINT_TOLERANCE_M = 1.0
 
 
-def checkpoint_checks(walks, plan, *, tolerance_m=CHECKPOINT_TOLERANCE_M):
+def checkpoint_checks(walks, plan, *, tolerance_m=CHECKPOINT_TOLERANCE_M, floor=None):
     """Checkpoints that contradict their walk: times outside the log's span
     (a file on another clock is an error, raised here before any work) or
-    positions more than ``tolerance_m`` from the plan's free space.
+    positions more than ``tolerance_m`` from the plan's free space (not
+    checked for walks marked as recorded on a floor other than ``floor``:
+    those are reported as such).
 
     Returns
     -------
@@ -173,7 +175,10 @@ def checkpoint_checks(walks, plan, *, tolerance_m=CHECKPOINT_TOLERANCE_M):
         if cps is None or cps.n == 0:
             continue
         late = check_checkpoint_clock(cps, float(w.walk.t[0]), float(w.walk.t[-1]))
-        off, dist = check_points(plan, cps.xy, tolerance_m=tolerance_m)
+        if floor is not None and w.floor is not None and w.floor != floor:
+            off, dist = np.zeros(cps.n, bool), np.zeros(cps.n)
+        else:
+            off, dist = check_points(plan, cps.xy, tolerance_m=tolerance_m)
         if late.any() or off.any():
             lines = cps.lines if cps.lines is not None else np.arange(cps.n) + 2
             out.append({"walk": w.name, "file": cps.path,
@@ -562,7 +567,7 @@ def build_floor_map(
     if graph is None:
         graph = build_graph(plan)
     walks = load_walks(walk_files, use_track=use_track, progress=progress)
-    checks = checkpoint_checks(walks, plan)
+    checks = checkpoint_checks(walks, plan, floor=floor)
     angle, align = earth_to_plan_for(site, walks)
     samples = collect_samples(walks, plan=plan, earth_to_plan_rad=angle, spacing_m=spacing_m, progress=progress,
                               heading_from_track=heading_from_track)

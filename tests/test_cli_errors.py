@@ -227,3 +227,14 @@ def test_a_full_disk_while_writing_names_the_output(tmp_path):
             fh.write("part")
             raise OSError(errno.ENOSPC, "No space left on device")
     assert target.read_text() == "old\n" and not list(tmp_path.glob(".*.tmp"))
+
+
+def test_a_failed_command_leaves_no_empty_output_folder(small_map, tmp_path, capsys):
+    """The output folders a command made for itself go again when it fails
+    before writing anything; folders that were there before stay."""
+    kept = tmp_path / "kept"
+    kept.mkdir()
+    out = kept / "a" / "b"
+    assert main(["evaluate", "--map", str(tmp_path / "none.map"), str(REAL_LOG), "--out", str(out)]) == 2
+    assert "none.map" in _single_error_line(capsys)
+    assert not (kept / "a").exists() and kept.is_dir()

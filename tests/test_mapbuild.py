@@ -248,6 +248,8 @@ def test_checkpoint_checks_find_another_clock_and_taps_off_the_plan(tmp_path):
                       "outside_free_space": [[5, 2.5]]}]
     plan = _plan()
     assert plan.free.distance(shapely.Point(16.5, 5.0)) == pytest.approx(2.5)
+    # a walk marked as recorded on another floor: its taps are not held against this plan
+    assert checkpoint_checks([SurveyWalk("w", walk, cps, floor="L1")], plan, floor="G")[0]["outside_free_space"] == []
     # the same taps in milliseconds: another clock, stopped before any work
     ms = tmp_path / "ms.checkpoints.csv"
     ms.write_text("t,x,y\n1000,1,1\n20000,2,2\n", encoding="utf-8")
