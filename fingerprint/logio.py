@@ -704,10 +704,7 @@ def _read_table(path, required, *, string_cols=(), allow_empty=(), known=None):
     num = {n: [] for n in names if n not in string_cols}
     strs = {n: [] for n in names if n in string_cols}
     linenos = []
-    reader = csv.reader(io.StringIO(body))
-    done = 0  # physical lines read so far (a quoted cell may span lines)
-    for cells in reader:
-        lineno, done = first_line + done, reader.line_num
+    for lineno, _, cells in _records(body, first_line):
         if not cells or all(not c.strip() for c in cells):
             continue
         if len(cells) != len(names):

@@ -65,9 +65,7 @@ def _show_warnings_as_lines(command):
 
     from fingerprint.errors import LodemapWarning
 
-    shown = warnings.showwarning
-    if getattr(shown, "_lodemap", False):
-        shown = shown._default
+    shown = warnings.showwarning  # restored by main()
 
     def show(message, category, filename, lineno, file=None, line=None):
         if issubclass(category, LodemapWarning):
@@ -75,7 +73,6 @@ def _show_warnings_as_lines(command):
         else:
             shown(message, category, filename, lineno, file, line)
 
-    show._lodemap, show._default = True, shown
     warnings.showwarning = show
 
 

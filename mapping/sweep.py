@@ -421,7 +421,7 @@ class RunStore:
 
     def __init__(self, folder):
         self.folder = Path(folder)
-        check_writable(self.folder, folder=True)
+        self.folder.mkdir(parents=True, exist_ok=True)
 
     def path(self, key):
         return self.folder / f"{key}.json"

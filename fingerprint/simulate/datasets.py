@@ -380,11 +380,10 @@ def write_walk(folder, walk):
     """Write ``<name>.log.csv``, ``.checkpoints.csv`` and ``.track.csv`` into
     ``folder`` (atomic writes via :mod:`fingerprint.logio`). Returns the
     log path."""
-    from .._atomic import check_writable
     from ..logio import write_checkpoints, write_track, write_walk_log
 
     folder = Path(folder)
-    check_writable(folder, folder=True)
+    folder.mkdir(parents=True, exist_ok=True)
     log_path = folder / f"{walk.name}.log.csv"
     write_walk_log(log_path, walk.log)
     write_checkpoints(folder / f"{walk.name}.checkpoints.csv", walk.checkpoints)

@@ -32,7 +32,7 @@ def hyperparameter_lines(model):
     lines = []
     for k, v in (model.get("hyperparameters") or {}).items():
         how = ("fixed" if k in fixed else "fitted") if known else ""
-        if k == "constant_ut" and v >= 1e3 and k in fixed | (set() if known else {k}):
+        if k == "constant_ut" and v >= 1e3 and (k in fixed or not known):
             how = "fixed large: a flat prior, the survey data set the mean field"
         lines.append(f"{k:<16s}{v:10.4g}   {HYPER_MEANING.get(k, '')}" + (f" ({how})" if how else ""))
     return lines

@@ -53,7 +53,6 @@ def add_arguments(parser):
 
 
 def run(args):
-    from fingerprint._atomic import check_writable
     from fingerprint.errors import ConfigError
     from mapping.sweep import load_sweep_config, run_sweep
 
@@ -65,7 +64,6 @@ def run(args):
         except ImportError as err:
             raise ConfigError("--scheduler needs dask.distributed: pip install 'lodemap[cluster]'") from err
     cfg = load_sweep_config(args.config)
-    check_writable(args.out, folder=True)
     res = run_sweep(cfg, args.out, jobs=args.jobs, scheduler=args.scheduler, progress=not args.no_progress)
     c = res["counts"]
     print(f"runs: {c['done']} done now, {c['skipped']} already stored, {c['total']} in the sweep")
