@@ -28,6 +28,9 @@ reduced-rank marginal likelihood.
 
 from __future__ import annotations
 
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -284,6 +287,7 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
                 st.goo[g][present] += (onehot.T @ (r[:, :, None] * r[:, None, :]).reshape(k_n, 9)).reshape(-1, 3, 3)
                 st.bo[g][present] += onehot.T @ (r * y[:, None])
     grams = {}
+    written = []  # (target block, group, first index) of the runs already filled
     for c, (kind, sign) in enumerate(kinds):
         g = int(st.noise_group[c])
         if home is None:
@@ -296,9 +300,16 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
         if (kind, sign) not in grams:  # components of one kind share it
             grams[kind, sign] = basis.gram(cos_tab, kind, sign)
         if ixb[-1] - ixb[0] + 1 == m and np.all(np.diff(ixb) == 1):
-            target[ixb[0] : ixb[0] + m, ixb[0] : ixb[0] + m] += grams[kind, sign]
+            run = slice(ixb[0], ixb[0] + m)
+            here = (None if home is None else home[c], g)
+            if any((t, gg) == here and (i0 is None or abs(i0 - ixb[0]) < m) for t, gg, i0 in written):
+                target[run, run] += grams[kind, sign]
+            else:  # still zeros: a copy, without first reading them
+                target[run, run] = grams[kind, sign]
+                written.append((*here, ixb[0]))
         else:
             target[np.ix_(ixb, ixb)] += grams[kind, sign]
+            written.append((None if home is None else home[c], g, None))
         lin = basis.project(ones_tab[c][None], kind, sign)[0]
         target[ixb, ic] += lin
         target[ic, ixb] += lin
@@ -376,6 +387,23 @@ def _chol_inverse_diagonal(chol):
     return np.einsum("ij,ij->j", li, li)
 
 
+#: Factorisations smaller than this are not worth a thread.
+_THREAD_MIN_SIZE = 384
+
+
+def _on_threads(fn, items, sizes):
+    """``[fn(x) for x in items]``, on up to one thread per core when two or
+    more items are large (LAPACK releases the GIL, and each call keeps its
+    one BLAS thread: no spin-waits). Called from a worker thread (map tiles
+    already run on threads), it stays sequential."""
+    big = sum(int(s) >= _THREAD_MIN_SIZE for s in sizes)
+    n = min(os.cpu_count() or 1, len(items))
+    if big < 2 or n < 2 or threading.current_thread() is not threading.main_thread():
+        return [fn(x) for x in items]
+    with ThreadPoolExecutor(max_workers=n) as ex:
+        return list(ex.map(fn, items))
+
+
 class _Factor:
     """Cholesky factorisation of a symmetric positive-definite S given as
     its diagonal blocks ``blocks`` (list of square arrays, overwritten) on
@@ -391,16 +419,16 @@ class _Factor:
         first = {}  # diagonal -> indices of the distinct blocks with it
         for i, a in enumerate(blocks):
             same = first.setdefault((a.shape, np.diagonal(a).tobytes()), [])
-            j = next((j for j in same if np.array_equal(a, blocks[j])), None)
+            j = next((j for j in same if a is blocks[j] or np.array_equal(a, blocks[j])), None)
             if j is None:
                 same.append(i)
             else:
                 twin[i] = j
-        chols = []
-        for i, sb in enumerate(blocks):
-            chols.append(chols[twin[i]] if twin[i] != i else
-                         scipy.linalg.cho_factor(sb, lower=True, overwrite_a=True, check_finite=False))
-        self.chols = chols
+        own = [i for i in range(len(blocks)) if twin[i] == i]
+        done = dict(zip(own, _on_threads(
+            lambda i: scipy.linalg.cho_factor(blocks[i], lower=True, overwrite_a=True, check_finite=False),
+            own, [blocks[i].shape[0] for i in own])))
+        self.chols = [done[twin[i]] for i in range(len(blocks))]
 
     def solve(self, rhs):
         out = np.empty_like(rhs, dtype=float)
@@ -415,16 +443,10 @@ class _Factor:
         """``[fn(factor of block i)]``, each shared factor done once (callers
         only read the results); None for the blocks ``only`` (one bool per
         block, default all) leaves out."""
-        done = {}
-        out = []
-        for i, c in enumerate(self.chols):
-            if only is not None and not only[i]:
-                out.append(None)
-                continue
-            if id(c) not in done:
-                done[id(c)] = fn(c)
-            out.append(done[id(c)])
-        return out
+        want = [i for i, c in enumerate(self.chols) if only is None or only[i]]
+        distinct = list({id(self.chols[i]): self.chols[i] for i in want}.values())
+        res = dict(zip(map(id, distinct), _on_threads(fn, distinct, [c[0].shape[0] for c in distinct])))
+        return [res[id(c)] if only is None or only[i] else None for i, c in enumerate(self.chols)]
 
     def inverse_blocks(self, only=None):
         """The diagonal blocks of S^-1 (S^-1 is zero outside them)."""
@@ -539,6 +561,27 @@ def _structure(st):
     return st._structure_cache
 
 
+def _twin_parts(st):
+    """For each part of :func:`_structure`, the first part with the same
+    ``F^T F`` (same noise groups, equal blocks), else its own index: b_x and
+    b_y of a per-component model share kernel, noise and samples, so with
+    equal priors and no walk offsets their normal equations are one matrix.
+    Cached with the statistics."""
+    cache = st.__dict__.get("_twin_cache")
+    if cache is not None:
+        return cache
+    parts, gffb = _structure(st)
+    twin = list(range(len(parts)))
+    for i in range(len(parts)):
+        for j in range(i):
+            if (twin[j] == j and parts[j].size == parts[i].size and gffb[j].keys() == gffb[i].keys()
+                    and all(np.array_equal(gffb[i][g], gffb[j][g]) for g in gffb[i])):
+                twin[i] = j
+                break
+    st._twin_cache = twin
+    return twin
+
+
 def _floor_prior(prior_var_f):
     # Spectral densities underflow to 0 for high frequencies; a tiny floor
     # keeps 1 / prior finite without changing the model measurably.
@@ -557,10 +600,17 @@ def _assemble(st, prior_var_f, noise_var, offset_var):
     extra = {"quad": 0.0, "logdet": 0.0, "prior": 0.0}
     parts = None
     blocks, gffb = _structure(st)
+    twin = _twin_parts(st) if not st.n_walks else range(len(blocks))
     sb = []
-    for b, gb in zip(blocks, gffb):
-        sub = np.zeros((b.size, b.size))
-        for g, a in gb.items():
+    for i, (b, gb) in enumerate(zip(blocks, gffb)):
+        j = twin[i]
+        if j != i and np.array_equal(prior_var_f[b], prior_var_f[blocks[j]]):
+            sb.append(sb[j])  # the same matrix: built and factorised once
+            continue
+        terms = iter(gb.items())
+        first = next(terms, None)
+        sub = np.zeros((b.size, b.size)) if first is None else np.multiply(first[1], inv_nv[first[0]])
+        for g, a in terms:
             sub += inv_nv[g] * a
         sub[np.diag_indices_from(sub)] += 1.0 / prior_var_f[b]
         sb.append(sub)
