@@ -116,6 +116,7 @@ class WalkEvaluation:
     converged: bool
     convergence_distance_m: float
     truth: Track | None = None
+    floor: str | None = None  # the floor the walk's files say it was recorded on
 
     @property
     def main_result(self):
@@ -227,7 +228,7 @@ def evaluate_walk(name, walk, checkpoints, fmap, *, mode="tracking", settings=No
     dur = float(walk.t[-1] - walk.t[0]) if walk.n > 1 else 0.0
     return WalkEvaluation(name=name, platform=walk.platform, duration_s=dur, checkpoints=checkpoints,
                           distance_m=dist, main=main, results=results, converged=conv,
-                          convergence_distance_m=cdist, truth=truth)
+                          convergence_distance_m=cdist, truth=truth, floor=walk.meta.get("floor"))
 
 
 def map_vertical_ut(fmap):
@@ -252,6 +253,8 @@ def load_walk(walk_files, *, expected_up_ut=None):
     from fingerprint.logio import read_checkpoints, read_track, read_walk_log
     from fingerprint.pipeline import process_walk
 
+    from .walkset import walk_floor
+
     log = read_walk_log(walk_files.log)
     walk = process_walk(log, expected_up_ut=expected_up_ut)
     cps = read_checkpoints(walk_files.checkpoints) if walk_files.checkpoints else None
@@ -259,6 +262,9 @@ def load_walk(walk_files, *, expected_up_ut=None):
         from fingerprint.logio import check_checkpoint_clock
 
         check_checkpoint_clock(cps, float(log.t[0]), float(log.t[-1]))  # another clock: an error
+    floor = walk_floor(log, cps)
+    if floor is not None:
+        walk.meta["floor"] = floor
     truth = read_track(walk_files.track) if getattr(walk_files, "track", None) else None
     return walk, cps, truth
 
@@ -345,6 +351,23 @@ def _warn_off_graph(walks, fmap, *, limit_m=OFF_GRAPH_M):
                       "moves on the graph, so their errors are at least that", LodemapWarning, stacklevel=3)
 
 
+def _warn_other_floor(walks, fmap):
+    """One warning (``LodemapWarning``) when walks say they were recorded
+    on another floor than the map's (log ``# floor`` or checkpoint
+    ``floor``): their errors measure the wrong map."""
+    import warnings
+
+    from fingerprint.errors import LodemapWarning
+
+    if fmap.floor is None:
+        return
+    other = [w for w in walks if w.floor is not None and w.floor != fmap.floor]
+    if other:
+        names = ", ".join(f"{w.name} ({w.floor})" for w in other[:5]) + (" ..." if len(other) > 5 else "")
+        warnings.warn(f"{len(other)} of {len(walks)} walks are marked as recorded on another floor than the map's "
+                      f"({fmap.floor}): {names}", LodemapWarning, stacklevel=3)
+
+
 def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_particles=None, seed=0,
                    baselines=BASELINES, start_sigma_m=1.0, jobs=1, progress=True, map_info=None,
                    on_error="raise"):
@@ -398,6 +421,7 @@ def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_partic
     walks = [o for o in outs if isinstance(o, WalkEvaluation)]
     skipped = [o for o in outs if not isinstance(o, WalkEvaluation)]
     _warn_off_graph(walks, fmap)
+    _warn_other_floor(walks, fmap)
     runtime = time.perf_counter() - t_start
     settings_dict = dataclasses.asdict(s) if dataclasses.is_dataclass(s) else dict(s or {})
     ev = Evaluation(mode=mode, seed=int(seed), settings=settings_dict, walks=walks, skipped=skipped,

@@ -127,7 +127,7 @@ def load_walks(walk_files, *, use_track=True, progress=True, desc="reading walks
     from fingerprint.logio import read_checkpoints, read_track, read_walk_log
     from fingerprint.pipeline import process_walk
 
-    from .walkset import WalkFiles, find_walks
+    from .walkset import WalkFiles, find_walks, walk_floor
 
     files = list(walk_files) if not isinstance(walk_files, (str, bytes)) else [walk_files]
     if files and not all(isinstance(w, WalkFiles) for w in files):
@@ -140,9 +140,7 @@ def load_walks(walk_files, *, use_track=True, progress=True, desc="reading walks
         walk = process_walk(log)
         cps = read_checkpoints(wf.checkpoints) if wf.checkpoints is not None else None
         track = read_track(wf.track) if (use_track and wf.track is not None) else None
-        floor = log.floor
-        if floor is None and cps is not None and cps.floor is not None and cps.floor.size:
-            floor = str(cps.floor[0]).strip() or None
+        floor = walk_floor(log, cps)
         out.append(SurveyWalk(wf.name, walk, cps, track, floor))
     return out
 

@@ -181,3 +181,36 @@ def select_walks(walks, split, part) -> list:
                       f"given: {', '.join(missing[:5])}{' ...' if len(missing) > 5 else ''}", LodemapWarning,
                       stacklevel=2)
     return out
+
+
+def walk_floor(log, checkpoints=None):
+    """The floor a walk says it was recorded on: the log's ``# floor``
+    label, else the first non-empty ``floor`` of its checkpoints; None
+    when neither says.
+
+    Labels that disagree (a checkpoint against the log, or checkpoints
+    among themselves) are worth a :class:`LodemapWarning` naming the
+    checkpoints file and line: one walk is one floor. The log's label
+    wins, then the first checkpoint's.
+    """
+    import numpy as np
+
+    floor = log.floor
+    cps = checkpoints
+    if cps is None or cps.floor is None or not cps.n:
+        return floor
+    labels = np.array([str(v).strip() for v in cps.floor], dtype=object)
+    given = np.flatnonzero(labels != "")
+    if not given.size:
+        return floor
+    first = floor if floor is not None else labels[given[0]]
+    other = given[labels[given] != first]
+    if other.size:
+        lines = cps.lines if cps.lines is not None else np.arange(cps.n) + 2
+        i = int(other[0])
+        said = (f"{log.path or 'its log'} says {first!r}" if floor is not None
+                else f"line {int(lines[given[0]])} says {first!r}")
+        warnings.warn(f"{cps.path or 'checkpoints'}: line {int(lines[i])} says floor {labels[i]!r}, {said}; "
+                      f"{other.size} of {given.size} labelled checkpoints disagree, floor {first!r} is used",
+                      LodemapWarning, stacklevel=2)
+    return first

@@ -253,3 +253,55 @@ def test_ground_truth_far_from_the_graph_is_a_warning():
         ev = evaluate_walks(fake_map(), [LoadedWalk("far", walk, moved, truth), LoadedWalk("near", walk, cps, truth)],
                             mode="dead-reckoning", baselines=(), progress=False)
     assert len(ev.walks) == 2
+
+
+def test_walks_marked_on_another_floor_than_the_map_are_a_warning():
+    """The map is of floor "T"; a walk whose files say "U" is scored on the
+    wrong map, and the run says so (one walk is one floor: common practice,
+    no source)."""
+    import dataclasses
+
+    from fingerprint.errors import LodemapWarning
+    from mapping.evaluate import LoadedWalk, evaluate_walks
+
+    walk, cps, truth = fake_walk(rng=np.random.default_rng(0))
+    other = dataclasses.replace(walk, meta={**walk.meta, "floor": "U"})
+    here = dataclasses.replace(walk, meta={**walk.meta, "floor": "T"})
+    with pytest.warns(LodemapWarning, match=r"1 of 3 walks are marked as recorded on another floor than the map's "
+                                            r"\(T\): up \(U\)"):
+        ev = evaluate_walks(fake_map(), [LoadedWalk("up", other, cps, truth), LoadedWalk("same", here, cps, truth),
+                                         LoadedWalk("unmarked", walk, cps, truth)],
+                            mode="dead-reckoning", baselines=(), progress=False)
+    assert [w.floor for w in ev.walks] == ["U", "T", walk.meta.get("floor")]
+
+
+def test_walk_floor_prefers_the_log_and_names_a_disagreeing_checkpoint():
+    # one walk is one floor (common practice, no source): the log's label
+    # wins; a checkpoint that says otherwise is named by file and line
+    import warnings
+
+    from fingerprint.errors import LodemapWarning
+    from fingerprint.records import WalkLog
+    from mapping.walkset import walk_floor
+
+    t = np.arange(3.0)
+    nan3 = np.full((3, 3), np.nan)
+    log = WalkLog(t=t, acc=nan3, gyro=nan3, mag=nan3, meta={"floor": "F1"}, path="w.log.csv")
+    bare = WalkLog(t=t, acc=nan3, gyro=nan3, mag=nan3, path="w.log.csv")
+
+    def cps(*labels):
+        k = len(labels)
+        return Checkpoints(t=np.arange(k, dtype=float), xy=np.zeros((k, 2)), floor=np.array(labels, dtype=object),
+                           path="w.checkpoints.csv", lines=np.arange(k) + 2)
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", LodemapWarning)  # agreeing labels: no warning
+        assert walk_floor(log, cps("F1", "", "F1")) == "F1"
+        assert walk_floor(bare, cps("", "B1", "B1")) == "B1"
+        assert walk_floor(bare, None) is None
+        assert walk_floor(log, cps("", "")) == "F1"
+    with pytest.warns(LodemapWarning, match=r"w\.checkpoints\.csv: line 3 says floor 'B1', w\.log\.csv says 'F1'; "
+                                            r"1 of 3 labelled checkpoints disagree, floor 'F1' is used"):
+        assert walk_floor(log, cps("F1", "B1", "F1")) == "F1"
+    with pytest.warns(LodemapWarning, match=r"line 4 says floor 'F2', line 2 says 'F1'"):
+        assert walk_floor(bare, cps("F1", "", "F2")) == "F1"
