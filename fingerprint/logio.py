@@ -134,10 +134,12 @@ def _read_text(path):
     return text
 
 
-def _split_head(text, path, *, allow_meta=True):
+def _split_head(text, path, *, allow_meta=True, meta_lines=None):
     """Split into (meta dict, header names, header line number, body text,
-    first body line number)."""
+    first body line number); ``meta_lines``, a dict, receives the line of
+    each metadata key."""
     meta = {}
+    meta_lines = {} if meta_lines is None else meta_lines
     pos = 0
     lineno = 0
     n = len(text)
@@ -178,6 +180,7 @@ def _split_head(text, path, *, allow_meta=True):
                     column=1,
                 )
             meta[key] = value
+            meta_lines.setdefault(key, lineno)
             pos = nxt
             continue
         names = [c.strip() for c in next(csv.reader([line]))]  # quoted names too
@@ -647,7 +650,8 @@ def read_walk_log(path, *, on_duplicate="error", check_units=True):
         raise ConfigError(f"on_duplicate must be 'error' or 'keep-first', got {on_duplicate!r}")
     spath = str(path)
     text = _read_text(path)
-    meta, names, header_line, body, first_line = _split_head(text, spath)
+    meta_lines = {}
+    meta, names, header_line, body, first_line = _split_head(text, spath, meta_lines=meta_lines)
     _check_meta(meta, spath)
     seen = _column_index(names, spath, header_line, REQUIRED_COLUMNS, (_RAW, _ODOM))
     allow_empty = [n != "t" for n in names]
@@ -688,6 +692,7 @@ def read_walk_log(path, *, on_duplicate="error", check_units=True):
         odom=odom,
         meta=meta,
         path=spath,
+        meta_lines=meta_lines,
     )
 
 

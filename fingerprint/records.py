@@ -31,6 +31,9 @@ class WalkLog:
         The ``# key: value`` lines before the header.
     path : str or None
         Where the log was read from.
+    meta_lines : dict of str -> int
+        The file line of each metadata key (for messages; empty when the
+        log was not read from a file).
     """
 
     t: np.ndarray
@@ -41,6 +44,7 @@ class WalkLog:
     odom: np.ndarray | None = None
     meta: dict = field(default_factory=dict)
     path: str | None = None
+    meta_lines: dict = field(default_factory=dict)
 
     @property
     def n(self) -> int:

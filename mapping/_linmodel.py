@@ -28,6 +28,8 @@ reduced-rank marginal likelihood.
 
 from __future__ import annotations
 
+import contextlib
+import contextvars
 import os
 import threading
 from concurrent.futures import ThreadPoolExecutor
@@ -287,7 +289,10 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
                 st.goo[g][present] += (onehot.T @ (r[:, :, None] * r[:, None, :]).reshape(k_n, 9)).reshape(-1, 3, 3)
                 st.bo[g][present] += onehot.T @ (r * y[:, None])
     grams = {}
-    written = []  # (target block, group, first index) of the runs already filled
+    # per target (block, noise group): the index ranges [lo, hi) some write
+    # has touched; an entry (r, c) written has r and c in them, so a square
+    # run none of them meets is still zeros
+    touched = {}
     for c, (kind, sign) in enumerate(kinds):
         g = int(st.noise_group[c])
         if home is None:
@@ -299,17 +304,17 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
         cnt = float(st.n[c])
         if (kind, sign) not in grams:  # components of one kind share it
             grams[kind, sign] = basis.gram(cos_tab, kind, sign)
-        if ixb[-1] - ixb[0] + 1 == m and np.all(np.diff(ixb) == 1):
-            run = slice(ixb[0], ixb[0] + m)
-            here = (None if home is None else home[c], g)
-            if any((t, gg) == here and (i0 is None or abs(i0 - ixb[0]) < m) for t, gg, i0 in written):
+        seen = touched.setdefault((None if home is None else home[c], g), [])
+        lo, hi = int(ixb.min()), int(ixb.max()) + 1
+        if hi - lo == m and np.all(np.diff(ixb) == 1):
+            run = slice(lo, hi)
+            if any(a < hi and lo < b for a, b in seen):
                 target[run, run] += grams[kind, sign]
             else:  # still zeros: a copy, without first reading them
                 target[run, run] = grams[kind, sign]
-                written.append((*here, ixb[0]))
         else:
             target[np.ix_(ixb, ixb)] += grams[kind, sign]
-            written.append((None if home is None else home[c], g, None))
+        seen += [(lo, hi), (int(ic), int(ic) + 1)]
         lin = basis.project(ones_tab[c][None], kind, sign)[0]
         target[ixb, ic] += lin
         target[ic, ixb] += lin
@@ -390,14 +395,38 @@ def _chol_inverse_diagonal(chol):
 #: Factorisations smaller than this are not worth a thread.
 _THREAD_MIN_SIZE = 384
 
+_MAX_THREADS = contextvars.ContextVar("lodemap_linmodel_threads", default=None)
+
+
+def available_cores():
+    """Cores this process may run on (its CPU affinity where the system
+    tells, else the machine's count)."""
+    try:
+        return max(len(os.sched_getaffinity(0)), 1)
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
+@contextlib.contextmanager
+def thread_limit(n):
+    """Within the block, :func:`_on_threads` uses at most ``n`` threads
+    (None: one per available core), as a model's ``n_jobs`` asks."""
+    token = _MAX_THREADS.set(None if n is None else max(int(n), 1))
+    try:
+        yield
+    finally:
+        _MAX_THREADS.reset(token)
+
 
 def _on_threads(fn, items, sizes):
-    """``[fn(x) for x in items]``, on up to one thread per core when two or
-    more items are large (LAPACK releases the GIL, and each call keeps its
-    one BLAS thread: no spin-waits). Called from a worker thread (map tiles
-    already run on threads), it stays sequential."""
+    """``[fn(x) for x in items]``, on up to one thread per core (or
+    :func:`thread_limit`) when two or more items are large (LAPACK releases
+    the GIL, and each call keeps its one BLAS thread: no spin-waits).
+    Called from a worker thread (map tiles already run on threads), it
+    stays sequential."""
     big = sum(int(s) >= _THREAD_MIN_SIZE for s in sizes)
-    n = min(os.cpu_count() or 1, len(items))
+    limit = _MAX_THREADS.get()
+    n = min(available_cores() if limit is None else limit, len(items))
     if big < 2 or n < 2 or threading.current_thread() is not threading.main_thread():
         return [fn(x) for x in items]
     with ThreadPoolExecutor(max_workers=n) as ex:

@@ -27,6 +27,7 @@ import math
 import platform as _platform
 import re
 import time
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -300,6 +301,16 @@ def derive(we, main, results):
     return dataclasses.replace(we, main=main, results=dict(results), converged=conv, convergence_distance_m=cdist)
 
 
+def _one_caught(*args):
+    """:func:`_one` and the warnings it raised, as (message, category)
+    pairs: a worker process's warnings would otherwise never reach the
+    user."""
+    with warnings.catch_warnings(record=True) as said:
+        warnings.simplefilter("always")
+        out = _one(*args)
+    return out, [(str(w.message), w.category) for w in said]
+
+
 def _one(wf, fmap, mode, settings, seed, baselines, start_sigma_m, on_error="raise", expected_up_ut=None):
     from fingerprint.errors import LodemapError
 
@@ -409,15 +420,20 @@ def evaluate_walks(fmap, walk_files, *, mode="tracking", settings=None, n_partic
     if jobs and int(jobs) != 1 and len(walk_files) > 1:
         from joblib import Parallel, delayed
 
-        outs = Parallel(n_jobs=int(jobs))(
-            delayed(_one)(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error, up)
+        caught = Parallel(n_jobs=int(jobs))(
+            delayed(_one_caught)(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error, up)
             for i, wf in enumerate(walk_files)
         )
     else:
-        outs = [
-            _one(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error, up)
+        caught = [
+            _one_caught(wf, fmap, mode, s, seeds[i], tuple(baselines), start_sigma_m, on_error, up)
             for i, wf in enumerate(tqdm(walk_files, desc=f"evaluate ({mode})", unit="walk", disable=not progress))
         ]
+    outs = []
+    for out, said in caught:  # warnings of worker processes shown here, in walk order
+        for message, category in said:
+            warnings.warn(message, category, stacklevel=2)
+        outs.append(out)
     walks = [o for o in outs if isinstance(o, WalkEvaluation)]
     skipped = [o for o in outs if not isinstance(o, WalkEvaluation)]
     _warn_off_graph(walks, fmap)
@@ -764,6 +780,12 @@ def report_sections(ev, fmap, *, extra_cautions=(), tracks_body=None, extra_meth
         if off:
             cautions.append(f"{off} checkpoints are more than 2 m from the floor graph; estimates on the graph "
                             "cannot come closer than that.")
+    if fmap is not None and fmap.floor is not None:
+        other = [f"{w.name} ({w.floor})" for w in ev.walks if w.floor is not None and w.floor != fmap.floor]
+        if other:
+            cautions.append(f"{len(other)} walk(s) are marked as recorded on another floor than the map's "
+                            f"({fmap.floor}): {', '.join(other[:8])}{' ...' if len(other) > 8 else ''}; their errors "
+                            "measure the wrong map.")
     lost = [w.name for w in ev.walks if np.any(np.asarray(w.main_result.track.extra.get("lost", [False]), bool))]
     if lost:
         cautions.append(f"The filter flagged itself lost (likelihood collapse, particles re-seeded) on {len(lost)} "

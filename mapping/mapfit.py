@@ -54,7 +54,8 @@ the coarse fit), unless its statistics would need more than
 ``refine_max_gb`` of memory (a floor of hundreds of metres is hundreds of
 fine tiles). Near steel the field changes by tens of µT within a metre,
 which one 1024-function box over a 60 m floor cannot follow. The tiles'
-factorisations run on ``n_jobs`` threads (default: one per core).
+factorisations, and within one box those of its distinct diagonal blocks,
+run on ``n_jobs`` threads (default: one per available core).
 
 Estimator contract (scikit-learn style): ``__init__`` only stores
 parameters; ``fit(xy (N, 2), b (N, 3), *, groups=None, rotations=None)``
@@ -74,7 +75,6 @@ walks (group k-fold) so that about 68 % of held-out residuals fall within
 
 from __future__ import annotations
 
-import os
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -265,7 +265,7 @@ class _ReducedRankGP(_Fitted):
         # Only small matrix products and factorisations (the statistics come
         # from the separable algebra): one BLAS thread is much faster than
         # two on a shared, busy machine (thread spin-waits).
-        with threadpool_limits(limits=1, user_api="blas"):
+        with threadpool_limits(limits=1, user_api="blas"), _linmodel.thread_limit(self.n_jobs):
             return self._fit(xy, b, groups, rotations)
 
     def _fit(self, xy, b, groups, rotations):
@@ -372,7 +372,7 @@ class _ReducedRankGP(_Fitted):
     def _map_parts(self, fn, parts):
         """``[fn(p) for p in parts]``, the parts on ``n_jobs`` threads (the
         factorisations release the GIL; default: one per core)."""
-        n = int(self.n_jobs) if self.n_jobs is not None else (os.cpu_count() or 1)
+        n = int(self.n_jobs) if self.n_jobs is not None else _linmodel.available_cores()
         n = max(1, min(n, len(parts)))
         if n == 1:
             return [fn(p) for p in parts]

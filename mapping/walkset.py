@@ -208,8 +208,11 @@ def walk_floor(log, checkpoints=None):
     if other.size:
         lines = cps.lines if cps.lines is not None else np.arange(cps.n) + 2
         i = int(other[0])
-        said = (f"{log.path or 'its log'} says {first!r}" if floor is not None
-                else f"line {int(lines[given[0]])} says {first!r}")
+        if floor is not None:
+            at = log.meta_lines.get("floor")
+            said = f"{log.path or 'its log'}{f' line {at}' if at else ''} says {first!r}"
+        else:
+            said = f"line {int(lines[given[0]])} says {first!r}"
         warnings.warn(f"{cps.path or 'checkpoints'}: line {int(lines[i])} says floor {labels[i]!r}, {said}; "
                       f"{other.size} of {given.size} labelled checkpoints disagree, floor {first!r} is used",
                       LodemapWarning, stacklevel=2)

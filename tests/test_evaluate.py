@@ -286,7 +286,7 @@ def test_walk_floor_prefers_the_log_and_names_a_disagreeing_checkpoint():
 
     t = np.arange(3.0)
     nan3 = np.full((3, 3), np.nan)
-    log = WalkLog(t=t, acc=nan3, gyro=nan3, mag=nan3, meta={"floor": "F1"}, path="w.log.csv")
+    log = WalkLog(t=t, acc=nan3, gyro=nan3, mag=nan3, meta={"floor": "F1"}, path="w.log.csv", meta_lines={"floor": 3})
     bare = WalkLog(t=t, acc=nan3, gyro=nan3, mag=nan3, path="w.log.csv")
 
     def cps(*labels):
@@ -300,8 +300,40 @@ def test_walk_floor_prefers_the_log_and_names_a_disagreeing_checkpoint():
         assert walk_floor(bare, cps("", "B1", "B1")) == "B1"
         assert walk_floor(bare, None) is None
         assert walk_floor(log, cps("", "")) == "F1"
-    with pytest.warns(LodemapWarning, match=r"w\.checkpoints\.csv: line 3 says floor 'B1', w\.log\.csv says 'F1'; "
+    with pytest.warns(LodemapWarning, match=r"w\.checkpoints\.csv: line 3 says floor 'B1', w\.log\.csv line 3 says 'F1'; "
                                             r"1 of 3 labelled checkpoints disagree, floor 'F1' is used"):
         assert walk_floor(log, cps("F1", "B1", "F1")) == "F1"
     with pytest.warns(LodemapWarning, match=r"line 4 says floor 'F2', line 2 says 'F1'"):
         assert walk_floor(bare, cps("F1", "", "F2")) == "F1"
+
+
+def test_warnings_of_walks_read_in_worker_processes_reach_the_caller(tmp_path):
+    # a checkpoint on another floor than its log is found while the walk is
+    # read, in a joblib worker process with jobs=2; the caller still sees the
+    # warning (one walk is one floor: common practice, no source), and the
+    # report's cautions name the walk marked on another floor than the map's
+    import dataclasses
+
+    from fingerprint.errors import LodemapWarning
+    from fingerprint.logio import write_checkpoints, write_walk_log
+    from mapping.evaluate import evaluate_walks, report_sections
+    from mapping.walkset import WalkFiles
+    from test_pipeline import _robot_log
+
+    log, _, _ = _robot_log(offset=(0.0, 0.0, 0.0))
+    files = []
+    for name, floors in (("mixed", ["U", "T", "U"]), ("plain", ["T", "T", "T"])):
+        write_walk_log(tmp_path / f"{name}.log.csv", dataclasses.replace(log, meta={"platform": "robot"}))
+        cps = Checkpoints(t=np.array([5.0, 20.0, 40.0]), xy=np.array([[5.0, 5.0], [6.0, 5.0], [7.0, 5.0]]),
+                          floor=np.array(floors, dtype=object))
+        write_checkpoints(tmp_path / f"{name}.checkpoints.csv", cps)
+        files.append(WalkFiles(name=name, log=tmp_path / f"{name}.log.csv",
+                               checkpoints=tmp_path / f"{name}.checkpoints.csv", track=None))
+    with pytest.warns(LodemapWarning) as said:
+        ev = evaluate_walks(fake_map(), files, mode="dead-reckoning", baselines=(), progress=False, jobs=2)
+    text = [str(w.message) for w in said]
+    assert any("mixed.checkpoints.csv: line 3 says floor 'T', line 2 says 'U'" in t for t in text), text
+    assert any("1 of 2 walks are marked as recorded on another floor than the map's (T): mixed (U)" in t
+               for t in text), text
+    cautions = next(sec for sec in report_sections(ev, fake_map())[0] if sec.title == "Cautions")
+    assert "mixed (U)" in cautions.body

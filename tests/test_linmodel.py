@@ -128,3 +128,42 @@ def test_gradient_with_walk_offsets_on_single_group_blocks_matches_finite_differ
     prior = model._prior_var(model.hyper_)
     noise = np.array([0.36, 0.64])
     check_marginal_gradient(st, prior, noise, 1.7, rng, n_prior=8)
+
+
+@pytest.mark.parametrize("n_jobs", [None, 1])
+def test_blocks_factorised_on_threads_give_the_dense_solution(monkeypatch, n_jobs):
+    # every block large enough for a thread: the threaded factorisations
+    # must still give the dense weight-space solution (reference as above)
+    from concurrent import futures
+
+    started = []
+    real = futures.ThreadPoolExecutor
+
+    class Counting(real):
+        def __init__(self, *a, **k):
+            started.append(k.get("max_workers"))
+            super().__init__(*a, **k)
+
+    monkeypatch.setattr(_linmodel, "_THREAD_MIN_SIZE", 1)
+    monkeypatch.setattr(_linmodel, "ThreadPoolExecutor", Counting)
+    monkeypatch.setattr(_linmodel, "available_cores", lambda: 2)
+    rng = np.random.default_rng(4)
+    n = 200
+    xy = rng.uniform([0, 0], [12, 8], size=(n, 2))
+    b = rng.normal(size=(n, 3)) + [5, -3, 20]
+    model = PerComponentGP(n_basis=30, optimize=False, between_walk=False, tiles="never", magnitude_ut=2.0,
+                           length_scale_m=2.0, noise_h_ut=0.5, noise_up_ut=0.7, constant_ut=30.0, n_jobs=n_jobs)
+    with _linmodel.thread_limit(n_jobs):
+        st = _linmodel.accumulate_separable(model.fit(xy, b).basis_, model._kinds, model.idx_, xy, b,
+                                            blocks=model._blocks(model.basis_.n))
+        started.clear()
+        prior = model._prior_var(model.hyper_)
+        post = _linmodel.posterior(st, prior, np.array([0.25, 0.49]))
+    # x and y share one factor, up has its own: two factorisations (and
+    # two inverses for the covariance), on two threads unless the model
+    # asks for one
+    assert started == ([2, 2] if n_jobs is None else [])
+    mu_f, _, lml, cov_f = _dense(model, xy, b, None, None, prior, np.array([0.25, 0.49]), 1.0)
+    np.testing.assert_allclose(post.mean_f, mu_f, rtol=1e-7, atol=1e-8)
+    np.testing.assert_allclose(post.cov_f, cov_f, rtol=1e-6, atol=1e-10)
+    assert post.log_ml == pytest.approx(lml, rel=1e-9)

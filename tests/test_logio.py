@@ -290,3 +290,15 @@ def test_only_plain_decimal_numbers_are_numbers(tmp_path, cell):
     p.write_text(f't,x,y\n0,1,1\n1,"{cell}",2\n', encoding="utf-8")
     with pytest.raises(logio.FormatError, match=r"line 3, column 2: expected a number in column 'x'"):
         read_checkpoints(p)
+
+
+def test_metadata_keys_keep_their_file_lines(tmp_path):
+    # messages about a metadata value name its line (the project's rule for
+    # input errors; common practice, no source)
+    from fingerprint.logio import read_walk_log
+
+    p = tmp_path / "m.log.csv"
+    rows = "\n".join(f"{0.02 * i:.2f},0,0,9.81,0,0,0,20,0,-40" for i in range(50))
+    p.write_text("# platform: handheld\n\n# floor: F2\nt,ax,ay,az,gx,gy,gz,mx,my,mz\n" + rows + "\n")
+    log = read_walk_log(p)
+    assert log.floor == "F2" and log.meta_lines == {"platform": 1, "floor": 3}
