@@ -362,20 +362,24 @@ def _warn_off_graph(walks, fmap, *, limit_m=OFF_GRAPH_M):
                       "moves on the graph, so their errors are at least that", LodemapWarning, stacklevel=3)
 
 
+def _on_other_floor(walks, fmap, shown):
+    """The walks that say they were recorded on another floor than the
+    map's (log ``# floor`` or checkpoint ``floor``): (count, the first
+    ``shown`` as "name (floor)" joined, with " ..." when there are more)."""
+    if fmap is None or fmap.floor is None:
+        return 0, ""
+    other = [f"{w.name} ({w.floor})" for w in walks if w.floor is not None and w.floor != fmap.floor]
+    return len(other), ", ".join(other[:shown]) + (" ..." if len(other) > shown else "")
+
+
 def _warn_other_floor(walks, fmap):
     """One warning (``LodemapWarning``) when walks say they were recorded
-    on another floor than the map's (log ``# floor`` or checkpoint
-    ``floor``): their errors measure the wrong map."""
-    import warnings
-
+    on another floor than the map's: their errors measure the wrong map."""
     from fingerprint.errors import LodemapWarning
 
-    if fmap.floor is None:
-        return
-    other = [w for w in walks if w.floor is not None and w.floor != fmap.floor]
-    if other:
-        names = ", ".join(f"{w.name} ({w.floor})" for w in other[:5]) + (" ..." if len(other) > 5 else "")
-        warnings.warn(f"{len(other)} of {len(walks)} walks are marked as recorded on another floor than the map's "
+    count, names = _on_other_floor(walks, fmap, 5)
+    if count:
+        warnings.warn(f"{count} of {len(walks)} walks are marked as recorded on another floor than the map's "
                       f"({fmap.floor}): {names}", LodemapWarning, stacklevel=3)
 
 
@@ -780,12 +784,10 @@ def report_sections(ev, fmap, *, extra_cautions=(), tracks_body=None, extra_meth
         if off:
             cautions.append(f"{off} checkpoints are more than 2 m from the floor graph; estimates on the graph "
                             "cannot come closer than that.")
-    if fmap is not None and fmap.floor is not None:
-        other = [f"{w.name} ({w.floor})" for w in ev.walks if w.floor is not None and w.floor != fmap.floor]
-        if other:
-            cautions.append(f"{len(other)} walk(s) are marked as recorded on another floor than the map's "
-                            f"({fmap.floor}): {', '.join(other[:8])}{' ...' if len(other) > 8 else ''}; their errors "
-                            "measure the wrong map.")
+    count, names = _on_other_floor(ev.walks, fmap, 8)
+    if count:
+        cautions.append(f"{count} walk(s) are marked as recorded on another floor than the map's ({fmap.floor}): "
+                        f"{names}; their errors measure the wrong map.")
     lost = [w.name for w in ev.walks if np.any(np.asarray(w.main_result.track.extra.get("lost", [False]), bool))]
     if lost:
         cautions.append(f"The filter flagged itself lost (likelihood collapse, particles re-seeded) on {len(lost)} "
