@@ -289,10 +289,6 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
                 st.goo[g][present] += (onehot.T @ (r[:, :, None] * r[:, None, :]).reshape(k_n, 9)).reshape(-1, 3, 3)
                 st.bo[g][present] += onehot.T @ (r * y[:, None])
     grams = {}
-    # per target (block, noise group): the index ranges [lo, hi) some write
-    # has touched; an entry (r, c) written has r and c in them, so a square
-    # run none of them meets is still zeros
-    touched = {}
     for c, (kind, sign) in enumerate(kinds):
         g = int(st.noise_group[c])
         if home is None:
@@ -304,17 +300,10 @@ def accumulate_separable(basis, kinds, idx, xy, b, *, groups=None, rotations=Non
         cnt = float(st.n[c])
         if (kind, sign) not in grams:  # components of one kind share it
             grams[kind, sign] = basis.gram(cos_tab, kind, sign)
-        seen = touched.setdefault((None if home is None else home[c], g), [])
-        lo, hi = int(ixb.min()), int(ixb.max()) + 1
-        if hi - lo == m and np.all(np.diff(ixb) == 1):
-            run = slice(lo, hi)
-            if any(a < hi and lo < b for a, b in seen):
-                target[run, run] += grams[kind, sign]
-            else:  # still zeros: a copy, without first reading them
-                target[run, run] = grams[kind, sign]
+        if ixb[-1] - ixb[0] + 1 == m and np.all(np.diff(ixb) == 1):
+            target[ixb[0] : ixb[0] + m, ixb[0] : ixb[0] + m] += grams[kind, sign]
         else:
             target[np.ix_(ixb, ixb)] += grams[kind, sign]
-        seen += [(lo, hi), (int(ic), int(ic) + 1)]
         lin = basis.project(ones_tab[c][None], kind, sign)[0]
         target[ixb, ic] += lin
         target[ic, ixb] += lin
