@@ -208,12 +208,12 @@ def heldout_scores(
         if log is not None:
             log(f"  {k:<14s} RMSE x,y,up = " + ", ".join(f"{v:.2f}" for v in sc["rmse_ut"].values())
                 + "  features up,h,total = " + ", ".join(f"{v:.2f}" for v in sc["feature_rmse_ut"].values())
-                + "  within 1 sd = " + ", ".join(f"{100 * v:.0f}%" for v in sc.get("within_1sd", {}).values())
+                + "  within 1 sd = " + ", ".join(f"{100 * v:.1f}%" for v in sc.get("within_1sd", {}).values())
                 + f"  ({fit_s:.1f} s)")
             log(f"  {'':<14s} walk device offset removed: RMSE x,y,up = "
                 + ", ".join(f"{v:.2f}" for v in sc["rmse_offset_removed_ut"].values())
                 + "  features up,h,total = " + ", ".join(f"{v:.2f}" for v in sc["feature_rmse_offset_removed_ut"].values())
-                + "  within 1 sd = " + ", ".join(f"{100 * v:.0f}%" for v in sc.get("within_1sd_offset_removed", {}).values()))
+                + "  within 1 sd = " + ", ".join(f"{100 * v:.1f}%" for v in sc.get("within_1sd_offset_removed", {}).values()))
     return out
 
 

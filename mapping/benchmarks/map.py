@@ -458,7 +458,7 @@ def _truth(args, site, survey, log):
         log(f"  map vs true field on the {label.replace('_', ' ')} ({sc['n']} edge mid-points, height {height:.2f} m): RMSE "
             + ", ".join(f"{v:.2f}" for v in sc["rmse_ut"].values()) + " µT; with the mean survey offset removed "
             + ", ".join(f"{v:.2f}" for v in sc["rmse_bias_removed_ut"].values()) + " µT; within 1 sd "
-            + ", ".join(f"{100 * v:.0f}%" for v in sc["within_1sd"].values()))
+            + ", ".join(f"{100 * v:.1f}%" for v in sc["within_1sd"].values()))
     return out
 
 
