@@ -342,8 +342,6 @@ def _warn_off_graph(walks, fmap, *, limit_m=OFF_GRAPH_M):
     ``limit_m`` from the map's floor graph: a filter on the graph cannot come
     nearer to them than that, so their errors say more about the graph or
     the taps than about the localisation."""
-    import warnings
-
     from fingerprint.errors import LodemapWarning
 
     far, total, names, worst = 0, 0, [], 0.0
