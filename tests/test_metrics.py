@@ -201,6 +201,25 @@ def test_paired_difference_of_real_bench_is_exact_for_a_shift():
         assert d[key] == pytest.approx((-0.25, -0.25, -0.25))
 
 
+def test_seed_wins_of_real_bench_hand_worked():
+    from mapping.benchmarks.filter_real import seed_wins
+
+    rng = np.random.default_rng(7)
+    ref = {f"w{i}": rng.gamma(2.0, 1.0, size=(3, 5)) for i in range(4)}
+    # hand-worked: seed 0 shifted 0.5 m better, seed 1 0.2 m worse, seed 2
+    # unchanged; a constant shift of every error moves every percentile by it
+    shift = np.array([-0.5, 0.2, 0.0])[:, None]
+    d = seed_wins({k: v + shift for k, v in ref.items()} | {"only-here": np.zeros((3, 2))}, ref)
+    for key in ("median", "p95"):
+        assert d[key] == pytest.approx([-0.5, 0.2, 0.0])
+    # one seed by hand, two walks pooled: errors 1, 2, 3 and 1, 1, 4 (sorted
+    # 1, 1, 1, 2, 3, 4: median 1.5) against 2, 2, 2 and 3, 3, 3 (median 2.5)
+    d = seed_wins({"a": np.array([[1.0, 2.0, 3.0]]), "b": np.array([[1.0, 1.0, 4.0]])},
+                  {"a": np.array([[2.0, 2.0, 2.0]]), "b": np.array([[3.0, 3.0, 3.0]])})
+    assert d["median"] == pytest.approx([1.5 - 2.5])
+    assert seed_wins({}, {})["median"].size == 0
+
+
 def test_percentile_difference_hand_worked():
     from mapping.metrics import percentile_difference
 
