@@ -261,3 +261,56 @@ def test_checkpoint_checks_find_another_clock_and_taps_off_the_plan(tmp_path):
     late.write_text("x,y,t\n1,1,1.0\n2,2,65.0\n", encoding="utf-8")
     found = checkpoint_checks([SurveyWalk("w", walk, read_checkpoints(late))], plan)
     assert found[0]["outside_log_time"] == [3]
+
+
+def test_displaced_misfit_hand_worked():
+    """Positions moved along the walk, on fields whose answer is worked by hand.
+
+    Walk 1 runs along x from 0 to 38 m (samples every 0.25 m) over
+    ``b_up = A sin(2 pi x / 4)``, read from the exact field: at the true
+    place the misfit is 0; moved half a period (2 m) either way the
+    residual is ``2 A sin(2 pi x / 4)`` over 36 m, nine whole periods plus
+    the end point: 145 samples whose sin² sum to 9 * 8 = 72 (sixteen per
+    period, summing to 8) and whose mean is 0, so the RMSE is
+    ``2 A sqrt(72 / 145)``; moved a whole period (4 m) the field repeats
+    and the misfit is 0. Walk 2, the same path over a uniform gradient
+    (``b_up = g y``, so constant along it, and ``b_x = g x`` along it), gives
+    nothing at any distance: a change that is constant along the path goes
+    with the walk's mean (per direction)."""
+    from mapping.mapscore import displaced_misfit
+
+    a, g = 3.0, 0.7
+    x = np.arange(0.0, 38.0 + 1e-9, 0.25)
+    xy1 = np.column_stack([x, np.zeros_like(x)])
+    xy2 = np.column_stack([x, np.full_like(x, 5.0)])
+
+    def field(q):
+        q = np.asarray(q, float)
+        on_2 = q[:, 1] > 2.5
+        up = np.where(on_2, g * q[:, 1], a * np.sin(2 * np.pi * q[:, 0] / 4.0) + 40.0)
+        bx = np.where(on_2, 20.0 + g * q[:, 0], 20.0)
+        return np.column_stack([bx, np.zeros(q.shape[0]), up])
+
+    xy = np.vstack([xy1, xy2])
+    groups = np.repeat([0, 1], x.size)
+    # walk 1 alone
+    one = groups == 0
+    rows = displaced_misfit(field(xy[one]), xy[one], groups[one], field, shifts_m=(2.0, 4.0))
+    half, whole = rows
+    assert half["n"] == 2 * 145 and whole["n"] == 2 * (x.size - 16)
+    assert half["rmse_true_ut"]["b_up"] == pytest.approx(0.0, abs=1e-12)
+    assert half["rmse_displaced_ut"]["b_up"] == pytest.approx(2 * a * math.sqrt(72 / 145), rel=1e-9)
+    assert whole["rmse_displaced_ut"]["b_up"] == pytest.approx(0.0, abs=1e-9)
+    # walk 2 alone: the gradient's change along the path is a constant per direction
+    two = groups == 1
+    for r in displaced_misfit(field(xy[two]), xy[two], groups[two], field, shifts_m=(1.0, 5.0)):
+        assert r["rmse_displaced_ut"]["b_up"] == pytest.approx(0.0, abs=1e-9)
+        assert r["rmse_displaced_ut"]["b_h"] == pytest.approx(0.0, abs=1e-9)
+    # both walks: each walk keeps its own mean and path (walk 2's path does
+    # not continue walk 1's); the pooled sum of squares is walk 1's
+    both = displaced_misfit(field(xy), xy, groups, field, shifts_m=(2.0,))[0]
+    assert both["n"] == 2 * 2 * 145
+    assert both["rmse_displaced_ut"]["b_up"] == pytest.approx(2 * a * math.sqrt(72 / 145) / math.sqrt(2), rel=1e-9)
+    # nothing left when the shift exceeds every walk
+    far = displaced_misfit(field(xy), xy, groups, field, shifts_m=(50.0,))[0]
+    assert far["n"] == 0 and far["rmse_displaced_ut"]["b_up"] is None

@@ -12,8 +12,10 @@ fixed hyperparameters (fit + predict) and (b) ours including our
 hyperparameter optimisation (see :func:`_vs_exact`).
 
 Accuracy (``--site``): fit every kernel on the survey walks and score it on
-the test walks (``mapping.mapscore``); with ``--truth`` also the built map
-against a simulator's true field along the graph.
+the test walks (``mapping.mapscore``), also with the test positions moved
+1, 2, 5 and 10 m along the walks (``displaced_misfit``: how far apart the
+field tells places); with ``--truth`` also the built map against a
+simulator's true field along the graph.
 """
 
 from __future__ import annotations
@@ -419,6 +421,14 @@ def _accuracy(args, log=print):
         if "rmse_walk_mean_removed_ut" in sc:
             log(f"  {k:<14s} RMSE with each test walk's mean residual removed: "
                 + ", ".join(f"{v:.2f}" for v in sc["rmse_walk_mean_removed_ut"].values()) + " µT")
+    log("  positions moved along each test walk by d metres, each walk's mean residual removed (per direction): "
+        "RMSE at the true place -> at the moved one, µT (close: the field does not tell places d m apart)")
+    for k, sc in res["kernels"].items():
+        rows = [r for r in sc.get("displaced", []) if r["n"]]
+        if rows:
+            log(f"  {k:<14s} " + "; ".join(
+                f"{r['shift_m']:g} m: up {r['rmse_true_ut']['b_up']:.2f}->{r['rmse_displaced_ut']['b_up']:.2f}, "
+                f"h {r['rmse_true_ut']['b_h']:.2f}->{r['rmse_displaced_ut']['b_h']:.2f}" for r in rows))
     if args.truth:
         res["truth"] = _truth(args, site, survey, log)
     return res
