@@ -123,12 +123,14 @@ def residual_scores(b_true, mean, var=None, noise_var=None, *, groups=None, rota
 def _along_path(xy, groups):
     """Distance travelled (N,) from each walk's first sample (samples in
     travel order within a walk)."""
-    step = np.zeros(xy.shape[0])
+    n = xy.shape[0]
+    step = np.zeros(n)
     step[1:] = np.hypot(*np.diff(xy, axis=0).T)
-    first = np.r_[True, groups[1:] != groups[:-1]]
+    first = np.ones(n, bool)
+    first[1:] = groups[1:] != groups[:-1]
     step[first] = 0.0
     total = np.cumsum(step)
-    start = np.maximum.accumulate(np.where(first, np.arange(xy.shape[0]), 0))
+    start = np.maximum.accumulate(np.where(first, np.arange(n), 0))
     return total - total[start]
 
 

@@ -314,3 +314,4 @@ def test_displaced_misfit_hand_worked():
     # nothing left when the shift exceeds every walk
     far = displaced_misfit(field(xy), xy, groups, field, shifts_m=(50.0,))[0]
     assert far["n"] == 0 and far["rmse_displaced_ut"]["b_up"] is None
+    assert displaced_misfit(np.zeros((0, 3)), np.zeros((0, 2)), np.zeros(0, int), field)[0]["n"] == 0
