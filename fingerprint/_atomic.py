@@ -26,6 +26,17 @@ def _umask():
     return mask
 
 
+def _target(path):
+    """The file an output ``path`` names: a symbolic link's target (the
+    link stays a link); an existing pipe, device or socket is refused, since
+    replacing it by a renamed regular file would remove it."""
+    path = Path(path)
+    real = Path(os.path.realpath(path)) if path.is_symlink() else path
+    if real.exists() and not (real.is_file() or real.is_dir()):
+        raise OSError(22, "not a regular file (a pipe, device or socket); expected a file name", str(path))
+    return real
+
+
 @contextlib.contextmanager
 def atomic_write(path, mode="w", **open_kwargs):
     """Open a temporary file for writing; on success replace ``path`` by it.
@@ -37,14 +48,15 @@ def atomic_write(path, mode="w", **open_kwargs):
     mode : {"w", "wb"}
         Text or binary.
     """
-    path = Path(path)
+    asked = path
     try:
+        path = _target(path)
         if path.is_dir():
             raise IsADirectoryError(21, "Is a directory", str(path))
         path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     except OSError as err:
-        raise OutputError(path, err) from None
+        raise OutputError(asked, err) from None
     # mkstemp makes the file private (0600); give it the mode a plain open()
     # would: that of the file it replaces, else 0666 less the umask
     try:
@@ -71,24 +83,32 @@ def atomic_write(path, mode="w", **open_kwargs):
         # our own writing, or the caller's fh.write refused (a full disk, a
         # size limit: no file name of its own) name the target
         if isinstance(err, OSError) and (writing or err.filename is None):
-            raise OutputError(path, err) from None
+            raise OutputError(asked, err) from None
         raise
 
 
-def check_writable(path, *, folder=False):
+def check_writable(path, *, folder=False, inputs=()):
     """Fail early, before long work, if ``path`` cannot be written: create
     its folder (or, with ``folder``, the folder ``path`` itself) and a
-    temporary file in it, then remove the file.
+    temporary file in it, then remove the file. ``inputs``: the files the
+    command reads (None entries and folders are skipped); an output that is
+    one of them would replace it, and is refused.
 
     Raises
     ------
     OutputError, naming ``path`` and the system's reason
     """
-    path = Path(path)
-    where = path if folder else path.parent
+    asked = path = Path(path)
     try:
+        if not folder:
+            path = _target(path)
+        where = path if folder else path.parent
         if not folder and path.is_dir():
             raise IsADirectoryError(21, "Is a directory", str(path))
+        if not folder and path.exists():
+            for i in inputs:
+                if i is not None and Path(i).is_file() and os.path.samefile(path, i):
+                    raise OSError(22, f"it is this command's input {i}; expected another file name", str(path))
         missing = [d for d in (where, *where.parents) if not d.exists()]
         where.mkdir(parents=True, exist_ok=True)
         _MADE.extend(missing)
@@ -99,7 +119,7 @@ def check_writable(path, *, folder=False):
         os.close(fd)
         os.unlink(tmp)
     except OSError as err:
-        raise OutputError(path, err, expect="folder" if folder else "file") from None
+        raise OutputError(asked, err, expect="folder" if folder else "file") from None
 
 
 def remove_empty_made():

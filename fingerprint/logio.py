@@ -100,27 +100,43 @@ def read_text(path):
     return _read_text(path)
 
 
+def _end_of(data):
+    """Line and column just after the bytes ``data``."""
+    return data.count(b"\n") + 1, len(data) - (data.rfind(b"\n") + 1) + 1
+
+
+def _gunzip(raw, path):
+    """Decompress every member of a gzip file (``cat a.gz b.gz`` is one
+    valid file, as ``gzip -d`` reads it); zero bytes after the last member
+    (padding) are allowed, anything else after it is an error."""
+    data = b""
+    rest = raw
+    while True:
+        d = zlib.decompressobj(wbits=31)
+        try:
+            data += d.decompress(rest)
+            data += d.flush()
+        except zlib.error as err:
+            line, col = _end_of(data)
+            raise FormatError(f"expected a gzip file, the data are corrupt: {err}", path=path, line=line,
+                              column=col) from err
+        if not d.eof:
+            line, col = _end_of(data)
+            raise FormatError("the gzip file ends early (truncated); expected its end-of-stream marker",
+                              path=path, line=line, column=col)
+        rest = d.unused_data
+        if not rest.strip(b"\0"):
+            return data
+        if rest[:2] != b"\x1f\x8b":
+            line, col = _end_of(data)
+            raise FormatError(f"expected the end of the file or another gzip member after the compressed data, "
+                              f"got {len(rest)} other bytes", path=path, line=line, column=col)
+
+
 def _read_text(path):
     path = Path(path)
     if path.name.endswith(".gz"):
-        raw = path.read_bytes()
-        d = zlib.decompressobj(wbits=31)
-        try:
-            data = d.decompress(raw)
-            data += d.flush()
-            complete = d.eof
-        except zlib.error as err:
-            raise FormatError(f"expected a gzip file, the data are corrupt: {err}", path=path, line=1, column=1) from err
-        if not complete:
-            line = data.count(b"\n") + 1
-            col = len(data) - (data.rfind(b"\n") + 1) + 1
-            raise FormatError(
-                "the gzip file ends early (truncated); expected its end-of-stream marker",
-                path=path,
-                line=line,
-                column=col,
-            )
-        raw = data
+        raw = _gunzip(path.read_bytes(), path)
     else:
         raw = path.read_bytes()
     try:

@@ -7,7 +7,7 @@ import stat
 
 import pytest
 
-from fingerprint._atomic import atomic_write, write_text_atomic
+from fingerprint._atomic import atomic_write, check_writable, write_text_atomic
 
 
 @pytest.mark.skipif(os.name != "posix", reason="POSIX file modes")
@@ -37,3 +37,36 @@ def test_failure_keeps_the_old_file_and_leaves_no_temporary(tmp_path):
             raise RuntimeError("crash while writing")
     assert p.read_text() == "good\n"
     assert sorted(x.name for x in tmp_path.iterdir()) == ["b.txt"]
+
+
+def test_output_through_a_link_keeps_the_link(tmp_path):
+    """Common practice, no source (as a shell's ``>`` does): writing to a
+    symbolic link writes its target and leaves the link in place."""
+    target = tmp_path / "target.csv"
+    link = tmp_path / "link.csv"
+    link.symlink_to(target.name)
+    check_writable(link)
+    write_text_atomic(link, "a\n")
+    assert link.is_symlink() and target.read_text() == "a\n"
+
+
+def test_pipe_and_input_are_refused(tmp_path):
+    """A pipe would be replaced by a renamed regular file, and an output
+    that is the command's own input would destroy it: both are refused
+    before any work, naming the path asked for."""
+    from fingerprint.errors import OutputError
+
+    fifo = tmp_path / "pipe"
+    os.mkfifo(fifo)
+    with pytest.raises(OutputError, match="pipe: cannot write: not a regular file"):
+        check_writable(fifo)
+    with pytest.raises(OutputError, match="not a regular file"):
+        write_text_atomic(fifo, "x")
+    assert stat.S_ISFIFO(os.stat(fifo).st_mode)
+    log = tmp_path / "w.log.csv"
+    log.write_text("t\n")
+    with pytest.raises(OutputError, match=r"w\.log\.csv: cannot write: it is this command's input"):
+        check_writable(log, inputs=[None, tmp_path, log])
+    (tmp_path / "other.csv").write_text("")
+    check_writable(tmp_path / "other.csv", inputs=[log])  # another file is fine
+    assert log.read_text() == "t\n"

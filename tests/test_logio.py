@@ -302,3 +302,28 @@ def test_metadata_keys_keep_their_file_lines(tmp_path):
     p.write_text("# platform: handheld\n\n# floor: F2\nt,ax,ay,az,gx,gy,gz,mx,my,mz\n" + rows + "\n")
     log = read_walk_log(p)
     assert log.floor == "F2" and log.meta_lines == {"platform": 1, "floor": 3}
+
+
+def test_gzip_of_several_members_reads_whole(tmp_path):
+    """RFC 1952, section 2.2: "A gzip file consists of a series of
+    "members"" (what ``cat a.gz b.gz`` and appending loggers make); Python's
+    gzip module, the reference here, reads every member. Zero bytes after
+    the last member (padding) are allowed; other bytes after it are an
+    error at the end of the text, not silently dropped."""
+    from fingerprint.errors import FormatError
+
+    text = gzip.open(REAL / "walk_001.log.csv.gz", "rb").read()
+    cut = text.index(b"\n", len(text) // 2) + 1
+    multi = tmp_path / "m.log.csv.gz"
+    multi.write_bytes(gzip.compress(text[:cut]) + gzip.compress(text[cut:]))
+    assert gzip.open(multi, "rb").read() == text  # the reference reads both members
+    whole, split = read_walk_log(REAL / "walk_001.log.csv.gz"), read_walk_log(multi)
+    assert split.t.size == whole.t.size
+    np.testing.assert_array_equal(split.mag, whole.mag)
+    padded = tmp_path / "p.log.csv.gz"
+    padded.write_bytes(gzip.compress(text) + b"\0" * 512)
+    assert read_walk_log(padded).t.size == whole.t.size
+    junk = tmp_path / "j.log.csv.gz"
+    junk.write_bytes(gzip.compress(text) + b"junk\n")
+    with pytest.raises(FormatError, match=r"j\.log\.csv\.gz, line \d+, column 1: expected the end of the file or another gzip member"):
+        read_walk_log(junk)

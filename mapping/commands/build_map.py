@@ -50,7 +50,7 @@ def run(args):
 
     if args.resolution <= 0:
         raise ConfigError(f"--resolution must be > 0, got {args.resolution}")
-    check_writable(args.out)  # before minutes of fitting, not after
+    check_writable(args.out, inputs=[args.site, args.graph, args.split, *args.walks])  # before minutes of fitting
     site = load_site(args.site)
     walks = find_walks(args.walks, split=args.split, part=args.use if args.split else None)
     params = {}

@@ -36,7 +36,7 @@ def run(args):
     from fingerprint.logio import read_walk_log
     from fingerprint.pipeline import up_directions
 
-    check_writable(args.out)
+    check_writable(args.out, inputs=[args.log])
     log = read_walk_log(args.log)
     src = args.source
     if src == "auto":

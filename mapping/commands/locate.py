@@ -202,7 +202,7 @@ def run(args):
     settings = build_settings(args, global_mode=start_xy is None)
     for out in (args.out, args.geojson):
         if out is not None:
-            check_writable(out)
+            check_writable(out, inputs=[args.map_path, args.log, args.calibration])
     fmap = load_map(args.map_path)
     log = read_walk_log(args.log)
     calibration = None

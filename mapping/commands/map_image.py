@@ -23,7 +23,7 @@ def run(args):
 
     if args.dpi < 1:
         raise ConfigError(f"--dpi must be a positive integer, got {args.dpi}")
-    check_writable(args.out)
+    check_writable(args.out, inputs=[args.map_path])
     fmap = load_map(args.map_path)
     if args.kind == "field":
         field_image(fmap, args.out, dpi=args.dpi)

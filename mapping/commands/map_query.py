@@ -70,7 +70,7 @@ def run(args):
     from fingerprint._atomic import check_writable, write_text_atomic
     from fingerprint.mapfile import load_map
 
-    check_writable(args.out)
+    check_writable(args.out, inputs=[args.map_path, args.points])
     fmap = load_map(args.map_path)
     xy = read_points(args.points)
     rows = query(fmap, xy)
