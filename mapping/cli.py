@@ -34,8 +34,17 @@ COMMANDS = {
 }
 
 
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose errors are one line (``lodemap COMMAND:
+    error: ...``, exit status 2) like every other bad input; ``--help``
+    shows the usage."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: error: {message} (--help shows the options)\n")
+
+
 def _build_parser():
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="lodemap",
         description="Indoor magnetic-field fingerprint mapping and localisation.",
     )

@@ -66,7 +66,7 @@ def test_image_resolution_must_be_positive(small_map, tmp_path, capsys):
 
 @pytest.mark.parametrize("item, words", [
     ("feld=1", "--real-set: unknown filter setting 'feld'"),
-    ("field_temper=abc", "field_temper: expected a number > 0"),
+    ("field_temper=abc", "field_temper: expected a finite number > 0"),
     ("field_temper", "expected NAME=VALUE"),
 ])
 def test_bench_real_set_checked_before_any_work(tmp_path, capsys, item, words):
@@ -169,9 +169,13 @@ def test_build_map_checks_its_output_before_fitting(tmp_path, capsys, monkeypatc
 
 
 @pytest.mark.parametrize("options, words", [
-    (["--temper", "-1"], "--temper: expected a number > 0, got -1.0"),
+    (["--temper", "-1"], "--temper: expected a finite number > 0, got -1.0"),
     (["--features", "fulll"], "--features: expected one of"),
-    (["--set", "field_temper=abc"], "--set field_temper: expected a number > 0, got 'abc'"),
+    (["--set", "field_temper=abc"], "--set field_temper: expected a finite number > 0, got 'abc'"),
+    (["--temper", "inf"], "--temper: expected a finite number > 0, got inf"),
+    (["--set", "use_field=maybe"], "--set use_field: expected true or false, got 'maybe'"),
+    (["--set", "sensor_noise_ut=abc"], "--set sensor_noise_ut: expected None or a finite number >= 0, got 'abc'"),
+    (["--set", "n_particles=true"], "--set n_particles: expected an integer >= 1, got True"),
 ])
 def test_a_bad_filter_option_is_named_as_typed(small_map, tmp_path, capsys, options, words):
     out = tmp_path / "t.csv"
@@ -238,3 +242,21 @@ def test_a_failed_command_leaves_no_empty_output_folder(small_map, tmp_path, cap
     assert main(["evaluate", "--map", str(tmp_path / "none.map"), str(REAL_LOG), "--out", str(out)]) == 2
     assert "none.map" in _single_error_line(capsys)
     assert not (kept / "a").exists() and kept.is_dir()
+
+
+@pytest.mark.parametrize("argv, words", [
+    (["locate", "--map", "m.map", "--out", "t.csv", "w.log.csv", "--seed", "-1"],
+     "lodemap locate: error: argument --seed: expected an integer >= 0, got -1"),
+    (["evaluate", "--map", "m.map", "--out", "e", "w", "--seed", "x"],
+     "lodemap evaluate: error: argument --seed: expected an integer >= 0, got 'x'"),
+    (["locate", "--map", "m.map"], "lodemap locate: error: the following arguments are required"),
+    (["locate", "--map", "m.map", "--out", "t.csv", "w.log.csv", "--particles", "1e3"],
+     "lodemap locate: error: argument --particles: invalid int value"),
+])
+def test_a_bad_argument_is_one_line(capsys, argv, words):
+    """Options the argument parser refuses: exit 2 and one line, like any
+    other bad input (no usage block; --help shows it)."""
+    with pytest.raises(SystemExit) as exc:
+        main(argv)
+    assert exc.value.code == 2
+    assert _single_error_line(capsys).startswith(words)

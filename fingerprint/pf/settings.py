@@ -194,8 +194,17 @@ class FilterSettings:
         def bad(name, why):
             raise ConfigError(f"filter setting {name}: expected {why}, got {getattr(self, name)!r}")
 
+        def num(v):  # a real number (True and False are ints to Python, not here)
+            return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+        def count(v):
+            return isinstance(v, int) and not isinstance(v, bool)
+
+        for name in ("use_heading_likelihood", "use_field", "field_at_midpoint", "recovery", "project_estimate"):
+            if not isinstance(getattr(self, name), bool):
+                bad(name, "true or false")
         for name in ("n_particles", "n_particles_global"):
-            if not (isinstance(getattr(self, name), int) and getattr(self, name) >= 1):
+            if not (count(getattr(self, name)) and getattr(self, name) >= 1):
                 bad(name, "an integer >= 1")
         for name in (
             "length_sigma_frac", "length_sigma_m", "scale_sigma0", "scale_rw", "heading_sigma0_rad",
@@ -203,20 +212,23 @@ class FilterSettings:
             "rough_heading_rad", "rough_scale", "update_min_m", "recovery_drop", "map_var_scale",
         ):
             v = getattr(self, name)
-            if not (isinstance(v, (int, float)) and math.isfinite(v) and v >= 0):
+            if not (num(v) and math.isfinite(v) and v >= 0):
                 bad(name, "a finite number >= 0")
-        for name in ("field_temper", "student_nu", "cluster_radius_m", "converge_sigma_m", "coverage_max_m"):
+        for name in ("field_temper", "student_nu", "cluster_radius_m", "converge_sigma_m"):
             v = getattr(self, name)
-            if not (isinstance(v, (int, float)) and v > 0):
-                bad(name, "a number > 0")
+            if not (num(v) and math.isfinite(v) and v > 0):
+                bad(name, "a finite number > 0")
+        # inf: use the field wherever the map reaches, however far from the survey
+        if not (num(self.coverage_max_m) and self.coverage_max_m > 0):
+            bad("coverage_max_m", "a number > 0 (inf: no limit)")
         for name in ("reverse_prior", "ess_threshold", "recovery_fraction", "recovery_rate", "converge_confidence"):
             v = getattr(self, name)
-            if not (isinstance(v, (int, float)) and 0 <= v <= 1):
+            if not (num(v) and 0 <= v <= 1):
                 bad(name, "a number in [0, 1]")
-        if self.bias_up_sigma0_ut is not None and not self.bias_up_sigma0_ut >= 0:
-            bad("bias_up_sigma0_ut", "None or a number >= 0")
-        if self.sensor_noise_ut is not None and not self.sensor_noise_ut >= 0:
-            bad("sensor_noise_ut", "None or a number >= 0")
+        for name in ("bias_up_sigma0_ut", "sensor_noise_ut"):
+            v = getattr(self, name)
+            if v is not None and not (num(v) and math.isfinite(v) and v >= 0):
+                bad(name, "None or a finite number >= 0")
         if self.feature_set not in FEATURE_SETS:
             bad("feature_set", f"one of {sorted(FEATURE_SETS)}")
         if self.likelihood not in LIKELIHOODS:
@@ -225,18 +237,17 @@ class FilterSettings:
             bad("resampler", f"one of {sorted(RESAMPLERS)}")
         for name in ("bias_corr_updates", "field_gate", "field_floor_nats", "recovery_chi2"):
             v = getattr(self, name)
-            if v is not None and not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
+            if v is not None and not (num(v) and math.isfinite(v) and v > 0):
                 bad(name, "None or a finite number > 0")
-        if self.field_valid_prior is not None and not (0 < self.field_valid_prior < 1):
+        if self.field_valid_prior is not None and not (num(self.field_valid_prior) and 0 < self.field_valid_prior < 1):
             bad("field_valid_prior", "None or a probability strictly between 0 and 1")
-        if not (isinstance(self.field_valid_gain, (int, float)) and math.isfinite(self.field_valid_gain)
-                and self.field_valid_gain >= 0):
+        if not (num(self.field_valid_gain) and math.isfinite(self.field_valid_gain) and self.field_valid_gain >= 0):
             bad("field_valid_gain", "a finite number >= 0")
-        if not (isinstance(self.field_valid_switch, (int, float)) and 0 <= self.field_valid_switch <= 0.5):
+        if not (num(self.field_valid_switch) and 0 <= self.field_valid_switch <= 0.5):
             bad("field_valid_switch", "a number in [0, 0.5]")
-        if not (isinstance(self.field_gate_after, int) and self.field_gate_after >= 1):
+        if not (count(self.field_gate_after) and self.field_gate_after >= 1):
             bad("field_gate_after", "an integer >= 1")
-        if not (isinstance(self.recovery_warmup, int) and self.recovery_warmup >= 0):
+        if not (count(self.recovery_warmup) and self.recovery_warmup >= 0):
             bad("recovery_warmup", "an integer >= 0")
 
     def to_dict(self):

@@ -20,6 +20,8 @@ import time
 
 import numpy as np
 
+from ..commands import seed_arg
+
 HELP = "particle-filter speed: particle-updates per second and real-time factor"
 
 
@@ -32,7 +34,7 @@ def add_arguments(parser):
     parser.add_argument("--log", default=None, metavar="LOG", help="walk log for the real-time factor (with --map)")
     parser.add_argument("--start", default=None, metavar="X,Y[,SIGMA]",
                         help="start for --log (default: global mode)")
-    parser.add_argument("--seed", type=int, default=0, metavar="N", help="random seed (default 0)")
+    parser.add_argument("--seed", type=seed_arg, default=0, metavar="N", help="random seed (default 0)")
     parser.add_argument("--real", default=None, metavar="SITE_DIR",
                         help="instead of the speed runs: field vs no-field accuracy on the real floors of "
                              "SITE_DIR (site.json, <floor>/split.json; maps built from the survey split and "

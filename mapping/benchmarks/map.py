@@ -27,6 +27,8 @@ import time
 
 import numpy as np
 
+from ..commands import seed_arg
+
 HELP = "field-map speed (100,000 samples; vs exact sklearn GPR) and held-out accuracy (--site)"
 
 
@@ -50,7 +52,7 @@ def add_arguments(parser):
                         help="box margins (m) around the data of our models in the like-for-like comparison "
                              "(default 1.5,3; the maps use 3 m); a smaller box resolves more with the same functions")
     parser.add_argument("--n-basis", type=int, default=1024, metavar="N", help="basis functions per block (default 1024)")
-    parser.add_argument("--seed", type=int, default=0, metavar="N", help="random seed (default 0)")
+    parser.add_argument("--seed", type=seed_arg, default=0, metavar="N", help="random seed (default 0)")
     parser.add_argument("--site", default=None, metavar="SITE.json", help="accuracy mode: site file")
     parser.add_argument("--floor", default=None, metavar="F", help="accuracy mode: floor")
     parser.add_argument("--survey", nargs="+", default=None, metavar="PATH", help="accuracy mode: survey walks or folders")

@@ -11,13 +11,15 @@ from pathlib import Path
 
 import numpy as np
 
+from ..commands import seed_arg
+
 HELP = "speed of the sensor chain on a generated one-hour 100 Hz log (samples per second)"
 
 
 def add_arguments(parser):
     parser.add_argument("--minutes", type=float, default=60.0, help="log length (default 60)")
     parser.add_argument("--rate-hz", type=float, default=100.0, help="sample rate (default 100)")
-    parser.add_argument("--seed", type=int, default=0, help="seed of the generated log (default 0)")
+    parser.add_argument("--seed", type=seed_arg, default=0, help="seed of the generated log (default 0)")
     parser.add_argument("--repeat", type=int, default=3, help="timed runs; the best is reported (default 3)")
     parser.add_argument("--real-dir", metavar="FLOOR_DIR",
                         help="also fit the step constant on the survey split of this floor folder "

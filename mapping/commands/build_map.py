@@ -7,6 +7,8 @@ import time
 
 from fingerprint.errors import ConfigError
 
+from . import seed_arg
+
 HELP = "build a floor's field map from survey walks"
 
 
@@ -35,7 +37,7 @@ def add_arguments(parser):
                         help="take survey positions from *.track.csv beside a log when there is one (default use)")
     parser.add_argument("--split", default=None, metavar="split.json", help="keep only the walks of one part of a split file")
     parser.add_argument("--use", choices=("survey", "test"), default="survey", help="which part of --split (default survey)")
-    parser.add_argument("--seed", type=int, default=0, metavar="N", help="seed recorded in the map (default 0)")
+    parser.add_argument("--seed", type=seed_arg, default=0, metavar="N", help="seed recorded in the map (default 0)")
     parser.add_argument("--quality", action="store_true", help="also write FLOOR.quality.json and FLOOR.quality.png")
     parser.add_argument("--no-progress", action="store_true", help="no progress bars")
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from . import seed_arg
+
 HELP = "run the whole chain on the invented demo building and write a report"
 
 _EPILOG = """\
@@ -22,7 +24,7 @@ def add_arguments(parser):
                         help="folder for walks, maps, evaluations and the report (default: ./lodemap-demo)")
     parser.add_argument("--quick", action="store_true",
                         help="fewer walks, a coarser map and fewer particles (a quick smoke run)")
-    parser.add_argument("--seed", type=int, default=0, help="root seed of everything (default: 0)")
+    parser.add_argument("--seed", type=seed_arg, default=0, help="root seed of everything (default: 0)")
     parser.add_argument("--site", metavar="DIR", help="the demo building folder (default: the bundled demo_building/)")
     parser.add_argument("--jobs", type=int, default=2, metavar="N", help="walks evaluated in parallel (default: 2)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bars")

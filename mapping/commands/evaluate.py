@@ -7,6 +7,8 @@ import json
 import math
 import sys
 
+from . import seed_arg
+
 HELP = "score localisation against checkpoints over many walks, with baselines and a report"
 
 _EPILOG = """\
@@ -39,7 +41,7 @@ def add_arguments(parser):
     parser.add_argument("--split", metavar="SPLIT.json", help="keep only the walks of one part of this split file")
     parser.add_argument("--use", default="test", choices=["survey", "test"],
                         help="which part of --split to evaluate (default: test)")
-    parser.add_argument("--seed", type=int, default=0, help="root random seed, recorded in run.json (default: 0)")
+    parser.add_argument("--seed", type=seed_arg, default=0, help="root random seed, recorded in run.json (default: 0)")
     parser.add_argument("--preset", default="default", metavar="NAME",
                         help="filter settings preset: 'default' (chosen on real phone walks) or 'simulated' "
                              "(simulator walks) (default: default)")

@@ -14,6 +14,8 @@ import numpy as np
 
 from fingerprint.errors import ConfigError
 
+from . import seed_arg
+
 HELP = "localise a walk log on a map with the particle filter, write its track"
 
 COLUMNS = ("t", "x", "y", "sigma_m", "confidence", "converged", "lost")
@@ -42,7 +44,7 @@ def add_arguments(parser):
     parser.add_argument("--geojson", default=None, metavar="TRACK.geojson",
                         help="also write the track as GeoJSON in plan metres: one LineString and one Point "
                              "per update with its sigma_m, confidence, converged and lost")
-    parser.add_argument("--seed", type=int, default=0, metavar="N", help="random seed of the filter, recorded in the outputs (default 0)")
+    parser.add_argument("--seed", type=seed_arg, default=0, metavar="N", help="random seed of the filter, recorded in the outputs (default 0)")
     parser.add_argument("--particles", type=int, default=None, metavar="N",
                         help=f"number of particles (default {FilterSettings().n_particles}, or "
                              f"{FilterSettings().n_particles_global} in global mode: the settings n_particles "

@@ -18,13 +18,15 @@ import math
 import time
 from pathlib import Path
 
+from . import seed_arg
+
 HELP = "generate survey and test walks with exact truth in a site (e.g. demo_building/)"
 
 
 def add_arguments(parser):
     parser.add_argument("site_dir", metavar="SITE_DIR", help="folder with site.json and steel.json (or the site.json)")
     parser.add_argument("--out", required=True, metavar="DIR", help="output folder")
-    parser.add_argument("--seed", type=int, default=0, help="seed of the walks (default 0); recorded in every log")
+    parser.add_argument("--seed", type=seed_arg, default=0, help="seed of the walks (default 0); recorded in every log")
     parser.add_argument("--walks", type=int, default=None, metavar="N",
                         help="test walks per floor and platform (default: 3 handheld, 2 robot, of about 2.5 min each)")
     parser.add_argument("--platform", choices=("handheld", "robot", "both"), default="both",
