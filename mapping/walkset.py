@@ -83,7 +83,8 @@ def find_walks(paths, *, recursive=False, split=None, part=None) -> list:
     ------
     DataError
         A path that does not exist, a file that is not a walk log, a folder
-        without logs, two different logs with the same name (their split
+        without logs, one walk stored twice in a folder (``.log.csv`` and
+        ``.log.csv.gz``), two different logs with the same name (their split
         membership would be ambiguous) or no walk left after the split.
     """
     if isinstance(paths, (str, Path)):
@@ -105,6 +106,10 @@ def find_walks(paths, *, recursive=False, split=None, part=None) -> list:
         for log in logs:
             found[log.resolve()] = _walk_files(log.resolve())
     walks = sorted(found.values(), key=lambda w: (str(w.log.parent), w.name))
+    for a, b in zip(walks, walks[1:]):
+        if a.log.parent == b.log.parent and a.name == b.name:  # e.g. what `gzip -k` leaves
+            raise DataError(f"walk {a.name!r} is stored twice in this folder, as {a.log.name} and {b.log.name}; "
+                            "expected one log per walk (remove or move one)", path=a.log.parent)
     if split is not None:
         walks = select_walks(walks, split, part)
     return walks

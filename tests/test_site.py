@@ -123,6 +123,15 @@ def test_find_walks_files_folders_and_companions(tmp_path):
         find_walks(d / "missing.log.csv")
     with pytest.raises(DataError, match="no walk logs"):
         find_walks(d / "sub" / ".." / ".." )
+    # `gzip -k walk_000.log.csv` leaves the walk twice in the folder: an
+    # error naming both, not the walk counted twice
+    _touch(d / "walk_000.log.csv.gz")
+    with pytest.raises(DataError, match=r"walk 'walk_000' is stored twice in this folder, as walk_000\.log\.csv and "
+                                        r"walk_000\.log\.csv\.gz"):
+        find_walks(d)
+    # the same name in two folders is two walks (two floors)
+    _touch(tmp_path / "G" / "walk_000.log.csv")
+    assert len(find_walks([d / "walk_000.log.csv", tmp_path / "G"])) == 2
 
 
 def test_split_selection(tmp_path):
