@@ -189,6 +189,11 @@ def _repair(geom, index, kind, path):
 
 #: less free space than this means the coordinates are not metres (degrees)
 MIN_FREE_AREA_M2 = 0.5
+#: a plan wider or deeper than this is not in metres (millimetres,
+#: centimetres); the largest buildings are about 1-2 km across
+MAX_EXTENT_M = 5000.0
+#: coordinates beyond this are no plan's metres (map-grid northings reach 1e7)
+MAX_COORDINATE_M = 1e8
 
 
 def _extent(geom):
@@ -221,6 +226,11 @@ def plan_from_geojson(doc, *, path=None) -> FloorPlan:
     walk, obst, repaired = [], [], []
     for i, feat in enumerate(feats):
         kind, geom = _feature_geometry(feat, i, path)
+        if not geom.is_empty:
+            big = max(abs(v) for v in geom.bounds)
+            if not big <= MAX_COORDINATE_M:
+                raise FormatError(f"{feature_label(i)}: a coordinate of {big:.3g}; expected plan metres (within "
+                                  f"±{MAX_COORDINATE_M:.0e} m)", path=path)
         geom, fixed = _repair(geom, i, kind, path)
         if fixed:
             repaired.append(i)
@@ -230,6 +240,11 @@ def plan_from_geojson(doc, *, path=None) -> FloorPlan:
     if not walk:
         raise DataError("floor plan has no non-empty walkable feature", path=path)
     walkable = shapely.union_all(walk)
+    x0, y0, x1, y1 = walkable.bounds
+    if max(x1 - x0, y1 - y0) > MAX_EXTENT_M:
+        raise DataError(f"the walkable area spans {x1 - x0:.6g} x {y1 - y0:.6g} units ({_extent(walkable)}); "
+                        f"expected metres (at most {MAX_EXTENT_M:.0f} m across): a plan drawn in millimetres "
+                        "or centimetres must be scaled to metres", path=path)
     obstacles = shapely.union_all(obst) if obst else shapely.Polygon()
     free = _polygonal_part(shapely.difference(walkable, obstacles))
     if free.is_empty or free.area <= 0:

@@ -106,6 +106,11 @@ def test_self_overlapping_ring_is_rejected_as_ambiguous():
          r"free space is only 5e-07 m² across x 13\.405\.\.13\.406.*not longitude and latitude"),
         ({**fc(feat("walkable", rect(0, 0, 10, 10))), "crs": {"type": "name", "properties": {
             "name": "urn:ogc:def:crs:OGC:1.3:CRS84"}}}, FormatError, "longitude/latitude CRS"),
+        # a 60 m x 40 m hall drawn in millimetres: refused at once, with the hint
+        (fc(feat("walkable", rect(0, 0, 60000, 40000))), DataError,
+         r"spans 60000 x 40000 units .*expected metres .*millimetres"),
+        (fc(feat("walkable", rect(0, 0, 10, 10)), feat("obstacle", rect(0, 0, 1e300, 1))), FormatError,
+         r"feature 2 \(features\[1\]\): a coordinate of 1e\+300; expected plan metres"),
     ],
 )
 def test_bad_plans_raise_clear_errors(doc, err, match):
