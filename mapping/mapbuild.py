@@ -513,6 +513,35 @@ def outlying_walks(names, offsets_ut, *, k=4.0, min_ut=6.0):
     return out
 
 
+#: a graph node farther than this from the plan's free space is off the plan
+GRAPH_OFF_PLAN_M = 1.0
+
+
+def check_graph_on_plan(graph, plan, *, path=None, plan_path=None, limit_m=GRAPH_OFF_PLAN_M):
+    """A hand-drawn floor graph against the plan: an error when more than
+    half of its nodes lie over ``limit_m`` outside free space (another
+    floor, another origin or unit), a warning naming the farthest node when
+    some do (particles there would walk through walls)."""
+    import warnings
+
+    from fingerprint.errors import LodemapWarning
+
+    if graph.n_nodes == 0:
+        return
+    d = plan.distance_to_free(graph.nodes_xy)
+    off = d > limit_m
+    if not off.any():
+        return
+    far = int(np.argmax(d))
+    x, y = graph.nodes_xy[far]
+    plan_name = f"the plan {plan_path}" if plan_path else "the plan"
+    what = (f"{int(off.sum())} of the graph's {graph.n_nodes} nodes lie more than {limit_m:g} m outside the free "
+            f"space of {plan_name} (farthest {d[far]:.1f} m, at x {x:.2f}, y {y:.2f})")
+    if off.mean() > 0.5:
+        raise DataError(f"{what}; expected a graph drawn over this floor's plan, in its metres", path=path)
+    warnings.warn(f"{path}: {what}" if path else what, LodemapWarning, stacklevel=2)
+
+
 def build_floor_map(
     site,
     floor,
@@ -527,6 +556,7 @@ def build_floor_map(
     kernel_params=None,
     graph=None,
     heading_from_track=True,
+    graph_source=None,
 ) -> FieldMap:
     """Build the field map of ``floor`` from survey walks.
 
@@ -542,7 +572,9 @@ def build_floor_map(
     use_track : bool, take positions from ``*.track.csv`` where present
     spacing_m : float, walk distance per averaged survey sample
     kernel_params : dict or None, extra model parameters
-    graph : FloorGraph or None (default: built from the plan)
+    graph : FloorGraph or None (default: built from the plan); a given graph
+        is checked against the plan (:func:`check_graph_on_plan`)
+    graph_source : str or None, where ``graph`` came from (for its messages)
     heading_from_track : bool, correct each walk's constant heading error
         from its track's heading where there is one (see
         :func:`collect_samples`)
@@ -564,6 +596,8 @@ def build_floor_map(
     plan = load_floor_plan(plan_path)
     if graph is None:
         graph = build_graph(plan)
+    else:
+        check_graph_on_plan(graph, plan, path=graph_source, plan_path=plan_path)
     walks = load_walks(walk_files, use_track=use_track, progress=progress)
     checks = checkpoint_checks(walks, plan, floor=floor)
     angle, align = earth_to_plan_for(site, walks)

@@ -315,3 +315,28 @@ def test_displaced_misfit_hand_worked():
     far = displaced_misfit(field(xy), xy, groups, field, shifts_m=(50.0,))[0]
     assert far["n"] == 0 and far["rmse_displaced_ut"]["b_up"] is None
     assert displaced_misfit(np.zeros((0, 3)), np.zeros((0, 2)), np.zeros(0, int), field)[0]["n"] == 0
+
+
+def test_hand_drawn_graph_is_checked_against_the_plan():
+    """A graph drawn over another origin (500 m off) is refused; one with a
+    node 3 m outside the free space gives a warning naming that node; one
+    inside passes silently. Distances: shapely's, from the plan's free space."""
+    import warnings
+
+    from fingerprint import FloorGraph
+    from fingerprint.errors import LodemapWarning
+    from mapping.mapbuild import check_graph_on_plan
+
+    plan = _plan()
+    x0, y0, x1, y1 = plan.free.bounds  # a 14 m x 10 m room, a pillar at x 5..9, y 4..6
+    inside = np.array([[x0 + 0.5, 2.0], [0.5 * (x0 + x1), 2.0], [x1 - 0.5, 2.0]])
+    edges = np.array([[0, 1], [1, 2]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        check_graph_on_plan(FloorGraph.from_arrays(inside, edges), plan, path="g.geojson")
+    with pytest.raises(DataError, match=r"g\.geojson: 3 of the graph's 3 nodes lie more than 1 m outside"):
+        check_graph_on_plan(FloorGraph.from_arrays(inside + [500.0, 0.0], edges), plan, path="g.geojson")
+    one_out = inside.copy()
+    one_out[2] = [x1 + 3.0, 2.0]
+    with pytest.warns(LodemapWarning, match=r"1 of the graph's 3 nodes .*farthest 3\.0 m"):
+        check_graph_on_plan(FloorGraph.from_arrays(one_out, edges), plan, path="g.geojson")

@@ -78,6 +78,7 @@ def run(args):
         spacing_m=args.spacing,
         kernel_params=params or None,
         graph=graph,
+        graph_source=None if args.graph is None else str(args.graph),
     )
     fmap.meta["build"]["command"] = "build-map"
     fmap.meta["build"]["graph"] = "built from the plan" if args.graph is None else str(args.graph)
