@@ -101,15 +101,34 @@ class Calibration:
             raise FormatError(f"expected a calibration file with format {FORMAT!r}", path=path)
         if obj.get("version") != VERSION:
             raise FormatError(f"calibration version {obj.get('version')!r}, expected {VERSION}", path=path)
+        def numbers(value):  # JSON numbers only: "1.5" or true is not a number here
+            if isinstance(value, list):
+                return all(numbers(v) for v in value)
+            return isinstance(value, (int, float)) and not isinstance(value, bool)
+
         try:
-            off = np.asarray(obj["offset_ut"], dtype=float)
-            mat = np.asarray(obj["matrix"], dtype=float)
+            off_raw, mat_raw = obj["offset_ut"], obj["matrix"]
+            if not (numbers(off_raw) and numbers(mat_raw)):
+                raise TypeError("expected JSON numbers, not text or true/false")
+            off = np.asarray(off_raw, dtype=float)
+            mat = np.asarray(mat_raw, dtype=float)
         except (KeyError, TypeError, ValueError) as err:
             raise FormatError(f"calibration needs offset_ut (3 numbers) and matrix (3x3): {err}", path=path) from err
         if off.shape != (3,) or mat.shape != (3, 3):
             raise FormatError(
                 f"calibration offset_ut must be 3 numbers and matrix 3x3, got {off.shape} and {mat.shape}", path=path
             )
+        if not (np.isfinite(off).all() and np.isfinite(mat).all()):
+            raise FormatError("calibration offset_ut and matrix must be finite numbers", path=path)
+        # a correction keeps the sensor's axes right-handed and loses no
+        # direction: det > 0 and a condition number far from singular
+        # (common practice, no source)
+        det = float(np.linalg.det(mat))
+        cond = float(np.linalg.cond(mat))
+        if not det > 0 or not cond < 1e6:
+            why = "mirrors the axes (determinant < 0)" if det < 0 else "is singular or nearly so"
+            raise FormatError(f"calibration matrix {why}: determinant {det:.3g}, condition number {cond:.3g}; "
+                              "expected a well-conditioned matrix with a positive determinant", path=path)
         src = obj.get("source", "mag")
         if src not in ("mag", "mag_raw"):
             raise FormatError(f"calibration source must be 'mag' or 'mag_raw', got {src!r}", path=path)

@@ -139,6 +139,16 @@ def test_json_round_trip_and_errors(tmp_path):
     with pytest.raises(FormatError) as exc:
         Calibration.from_json(bad)
     assert exc.value.line == 1
+    good = cal.to_json()
+    for change, words in (
+        ({"offset_ut": ["1", "2", "3"]}, "expected JSON numbers"),
+        ({"offset_ut": [1.0, float("nan"), 3.0]}, "must be finite"),
+        ({"matrix": [[0.0] * 3] * 3}, "singular"),
+        ({"matrix": [[1.0, 0, 0], [0, 1.0, 0], [0, 0, -1.0]]}, "mirrors the axes"),
+    ):
+        bad.write_text(json.dumps({**good, **change}))  # json writes NaN as the NaN literal, which it reads back
+        with pytest.raises(FormatError, match=rf"bad\.json: .*{words}"):
+            Calibration.from_json(bad)
 
 
 def test_cli_calibrate_on_real_walk(tmp_path, capsys):
