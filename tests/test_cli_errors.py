@@ -5,9 +5,10 @@ a JSON file cut short, an impossible option value."""
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 
-from fingerprint.errors import ConfigError
+from fingerprint.errors import ConfigError, FormatError
 from fingerprint.mapfile import save_map
 from mapping.benchmarks.filter import synthetic_floor
 from mapping.cli import main
@@ -260,3 +261,23 @@ def test_a_bad_argument_is_one_line(capsys, argv, words):
         main(argv)
     assert exc.value.code == 2
     assert _single_error_line(capsys).startswith(words)
+
+
+def test_points_file_lines_are_the_file_own(tmp_path):
+    """Lines and columns as an editor shows them: comment and blank lines
+    count; a trailing blank line is no point; 1_3 (Python's float() reads
+    13) and a second x column are errors."""
+    from mapping.commands.map_query import read_points
+
+    pts = tmp_path / "p.csv"
+    pts.write_text("# a comment\n# another\nx,y\n1,2\n\n3,4\n")
+    np.testing.assert_array_equal(read_points(pts), [[1.0, 2.0], [3.0, 4.0]])
+    pts.write_text("# a comment\n# another\nx,y\n1,2\n5,oops\n\n")
+    with pytest.raises(FormatError, match=r"p\.csv, line 5, column 2: expected a number in column 'y', got 'oops'"):
+        read_points(pts)
+    pts.write_text("x,y\n1_3,2\n")
+    with pytest.raises(FormatError, match=r"line 2, column 1: expected a number in column 'x', got '1_3'"):
+        read_points(pts)
+    pts.write_text("x,y,x\n1,2,3\n")
+    with pytest.raises(FormatError, match=r"line 1: points file has column 'x' twice"):
+        read_points(pts)

@@ -28,33 +28,45 @@ def add_arguments(parser):
 
 
 def read_points(path):
-    """(N, 2) float from a CSV with header columns x and y; FormatError with
-    line and column on a bad cell."""
+    """(N, 2) float from a CSV with header columns x and y; ``#`` comment
+    lines and blank lines are skipped; FormatError with the file's own line
+    and column on a bad cell."""
     from fingerprint.logio import read_text
 
     text = read_text(path)  # not UTF-8: FormatError with line and column
-    rows = list(csv.reader(line for line in io.StringIO(text, newline="") if not line.startswith("#")))
+    rows = []  # (line number in the file, cells)
+    for number, line in enumerate(io.StringIO(text, newline=""), start=1):
+        if line.startswith("#") or not line.strip():
+            continue
+        rows.append((number, next(csv.reader([line]))))
     if not rows:
         raise FormatError("empty points file; expected a header with columns x,y", path=path)
-    header = [h.strip() for h in rows[0]]
+    head_line, header = rows[0][0], [h.strip() for h in rows[0][1]]
+    for name in ("x", "y"):
+        if header.count(name) > 1:
+            raise FormatError(f"points file has column {name!r} twice; expected one x and one y", path=path,
+                              line=head_line)
     try:
         ix, iy = header.index("x"), header.index("y")
     except ValueError:
-        raise FormatError(f"points file needs columns x and y; header has {', '.join(header)}", path=path, line=1) from None
+        raise FormatError(f"points file needs columns x and y; header has {', '.join(header)}", path=path,
+                          line=head_line) from None
     if len(rows) < 2:
-        raise FormatError("no points after the header; expected rows of x,y", path=path, line=2)
+        raise FormatError("no points after the header; expected rows of x,y", path=path, line=head_line + 1)
     out = np.empty((len(rows) - 1, 2))
-    for n, row in enumerate(rows[1:]):
+    for n, (number, row) in enumerate(rows[1:]):
         for j, col in enumerate((ix, iy)):
+            cell = row[col] if col < len(row) else ""
             try:
-                out[n, j] = float(row[col])
-            except (IndexError, ValueError):
-                cell = row[col] if col < len(row) else ""
+                if "_" in cell:  # Python's float() reads 1_3 as 13; a CSV number has no underscore
+                    raise ValueError(cell)
+                out[n, j] = float(cell)
+            except ValueError:
                 raise FormatError(f"expected a number in column {header[col]!r}, got {cell!r}", path=path,
-                                  line=n + 2, column=col + 1) from None
+                                  line=number, column=col + 1) from None
             if not np.isfinite(out[n, j]):
-                raise FormatError(f"expected a finite number in column {header[col]!r}, got {row[col]!r}", path=path,
-                                  line=n + 2, column=col + 1)
+                raise FormatError(f"expected a finite number in column {header[col]!r}, got {cell!r}", path=path,
+                                  line=number, column=col + 1)
     return out
 
 
