@@ -85,6 +85,27 @@ def _show_warnings_as_lines(command):
     warnings.showwarning = show
 
 
+class _Terminated(BaseException):
+    """SIGTERM (``kill``, a job scheduler's time limit) as an exception, so
+    that a file being written is removed, not left as a temporary beside
+    its target (``fingerprint._atomic``)."""
+
+
+def _terminate_as_interrupt():
+    """Raise :class:`_Terminated` on SIGTERM while a command runs (main
+    thread only); returns the previous handler, or None if not installed."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return None
+
+    def handler(signum, frame):
+        raise _Terminated()
+
+    return signal.signal(signal.SIGTERM, handler)
+
+
 def main(argv=None):
     """Entry point of the ``lodemap`` console script."""
     from fingerprint.errors import LodemapError
@@ -108,6 +129,7 @@ def main(argv=None):
 
     saved = warnings.showwarning
     _show_warnings_as_lines(args.command)
+    saved_term = _terminate_as_interrupt()
     _atomic._MADE.clear()
     failed = True  # a failed command leaves no empty output folder behind
     try:
@@ -133,8 +155,15 @@ def main(argv=None):
     except KeyboardInterrupt:
         print(f"lodemap {args.command}: interrupted", file=sys.stderr)
         return 130
+    except _Terminated:
+        print(f"lodemap {args.command}: terminated", file=sys.stderr)
+        return 143
     finally:
         warnings.showwarning = saved  # main() called from Python leaves no hook behind
+        if saved_term is not None:
+            import signal
+
+            signal.signal(signal.SIGTERM, saved_term)
         if failed:
             _atomic.remove_empty_made()
         else:

@@ -70,3 +70,28 @@ def test_pipe_and_input_are_refused(tmp_path):
     (tmp_path / "other.csv").write_text("")
     check_writable(tmp_path / "other.csv", inputs=[log])  # another file is fine
     assert log.read_text() == "t\n"
+
+
+def test_sigterm_during_a_write_leaves_no_temporary(tmp_path):
+    """`kill` (SIGTERM) while a command writes: the command line turns it
+    into an exception, so the half-written temporary is removed and the
+    earlier file stays (POSIX: SIGTERM's default action ends the process
+    at once, running no clean-up)."""
+    import signal
+
+    from mapping.cli import _Terminated, _terminate_as_interrupt
+
+    target = tmp_path / "out.csv"
+    target.write_text("earlier\n")
+    previous = _terminate_as_interrupt()
+    try:
+        with pytest.raises(_Terminated):
+            with atomic_write(target) as fh:
+                fh.write("half")
+                os.kill(os.getpid(), signal.SIGTERM)
+                for _ in range(10_000):  # the handler runs between bytecodes of the main thread
+                    pass
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out.csv"]
+    assert target.read_text() == "earlier\n"

@@ -100,6 +100,8 @@ def run(args):
     geo = background_field(site.latitude_deg, site.longitude_deg, site.date)
     if args.walks is not None and args.walks < 0:
         raise ConfigError(f"--walks must be >= 0, got {args.walks}")
+    if not (math.isfinite(args.rate) and 1.0 <= args.rate <= 1000.0):  # a phone logs 50-200 Hz, an IMU up to 1 kHz
+        raise ConfigError(f"--rate must be between 1 and 1000 Hz, got {args.rate:g}")
     platforms = ("handheld", "robot") if args.platform == "both" else (args.platform,)
     defaults = DatasetSettings()
     n_hh = defaults.n_test_handheld if args.walks is None else args.walks
