@@ -622,6 +622,19 @@ def split_settings(settings):
     return m, n, f
 
 
+def check_noise_settings(noise):
+    """ConfigError (worded like a filter setting's, for :func:`_setting_error`)
+    unless ``noise_mag_ut`` is a finite number >= 0, ``noise_heading_deg``
+    finite and ``noise_step_scale`` finite and > 0."""
+    rules = {"noise_mag_ut": (lambda v: v >= 0, "a finite number >= 0"),
+             "noise_heading_deg": (lambda v: True, "a finite number"),
+             "noise_step_scale": (lambda v: v > 0, "a finite number > 0")}
+    for name, value in noise.items():
+        ok, what = rules[name]
+        if not (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value) and ok(value)):
+            raise ConfigError(f"filter setting {name}: expected {what}, got {value!r}")
+
+
 def filter_settings(overrides, *, preset_name="default"):
     """``FilterSettings`` of the preset with ``overrides`` applied; unknown
     names raise a ConfigError listing the valid ones."""
@@ -846,8 +859,9 @@ def run_sweep(cfg, out_dir, *, jobs=1, scheduler=None, progress=True, run_fn=Non
     settings_list = expand_settings(cfg)
     # validate names and values before anything runs
     for s in settings_list:
-        _, _, f = split_settings(s)
+        _, n, f = split_settings(s)
         try:
+            check_noise_settings(n)
             filter_settings(f, preset_name=cfg.preset)
         except ConfigError as err:
             raise _setting_error(cfg, err) from None

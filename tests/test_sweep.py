@@ -401,6 +401,10 @@ def test_map_inputs_are_part_of_the_data_identity(tmp_path):
 @pytest.mark.parametrize("line, column, words", [
     ("  field_tempr = [0.1]", 3, "[grid] unknown setting(s) ['field_tempr']; did you mean 'field_temper'?"),
     ('n_particles = ["many"]', 1, "[grid] n_particles: expected an integer >= 1, got 'many'"),
+    ('use_field = ["no"]', 1, "[grid] use_field: expected true or false, got 'no'"),
+    ("field_temper = [0.1, inf]", 1, "[grid] field_temper: expected a finite number > 0, got inf"),
+    ("noise_mag_ut = [0.5, -1.0]", 1, "[grid] noise_mag_ut: expected a finite number >= 0, got -1.0"),
+    ('noise_step_scale = ["x"]', 1, "[grid] noise_step_scale: expected a finite number > 0, got 'x'"),
 ])
 def test_a_bad_setting_is_reported_at_its_line(tmp_path, line, column, words):
     """A bad name or value in [grid] names the file, line, column and table
