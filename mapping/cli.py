@@ -85,6 +85,13 @@ def _show_warnings_as_lines(command):
     warnings.showwarning = show
 
 
+def _one_line(message):
+    """An error message on one line (a library's message may hold newlines)."""
+    import re
+
+    return re.sub(r"\s*[\r\n]+\s*", " ", str(message)).strip()
+
+
 class _Terminated(BaseException):
     """SIGTERM (``kill``, a job scheduler's time limit) as an exception, so
     that a file being written is removed, not left as a temporary beside
@@ -137,7 +144,11 @@ def main(argv=None):
         failed = status != 0
         return status
     except LodemapError as err:
-        print(f"lodemap {args.command}: error: {err}", file=sys.stderr)
+        print(f"lodemap {args.command}: error: {_one_line(err)}", file=sys.stderr)
+        return 2
+    except MemoryError:
+        print(f"lodemap {args.command}: error: out of memory: a setting asks for more than this machine holds "
+              "(particles, image size, sample rate, map resolution?)", file=sys.stderr)
         return 2
     except BrokenPipeError:
         # the reader of our output went away (`lodemap ... | head`): not an error
@@ -150,7 +161,7 @@ def main(argv=None):
         # the system refused a file (missing, read-only, a folder for a
         # file, a full disk): not a bug, one line like any bad input
         where = f": {err.filename}" if err.filename else ""
-        print(f"lodemap {args.command}: error: {err.strerror or err}{where}", file=sys.stderr)
+        print(f"lodemap {args.command}: error: {_one_line(err.strerror or err)}{where}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"lodemap {args.command}: interrupted", file=sys.stderr)

@@ -281,3 +281,26 @@ def test_points_file_lines_are_the_file_own(tmp_path):
     pts.write_text("x,y,x\n1,2,3\n")
     with pytest.raises(FormatError, match=r"line 1: points file has column 'x' twice"):
         read_points(pts)
+
+
+def test_out_of_memory_and_multiline_messages_are_one_line(small_map, tmp_path, capsys, monkeypatch):
+    """A setting that asks for more memory than the machine has, and a
+    library message with newlines in it, still end in one line, exit 2."""
+    import mapping.commands.map_info as map_info
+    from fingerprint.errors import DataError
+
+    def no_memory(args):
+        raise MemoryError()
+
+    monkeypatch.setattr(map_info, "run", no_memory)
+    assert main(["map-info", str(small_map)]) == 2
+    assert "error: out of memory" in _single_error_line(capsys)
+
+    def two_lines(args):
+        raise DataError("IllegalArgumentException: point array must contain 0 or >1 elements\n")
+
+    monkeypatch.setattr(map_info, "run", two_lines)
+    assert main(["map-info", str(small_map)]) == 2
+    assert _single_error_line(capsys).endswith("must contain 0 or >1 elements")
+    assert main(["map-image", str(small_map), "--out", str(tmp_path / "m.png"), "--dpi", "100000"]) == 2
+    assert "--dpi must be an integer from 1 to 1200, got 100000" in _single_error_line(capsys)

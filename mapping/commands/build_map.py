@@ -108,7 +108,7 @@ def run(args):
               f"{skipped['budget_gb']:g} GB), so the map keeps the coarser basis", file=sys.stderr)
     other = fmap.meta.get("walks_marked_other_floor", [])
     if other:
-        print(f"warning: {len(other)} survey walks are marked as recorded on another floor than {fmap.floor}: "
+        print(f"lodemap build-map: warning: {len(other)} survey walks are marked as recorded on another floor than {fmap.floor}: "
               + ", ".join(other[:10]) + (" ..." if len(other) > 10 else ""), file=sys.stderr)
     for c in fmap.meta.get("checkpoint_checks", []):
         parts = []
@@ -119,9 +119,9 @@ def run(args):
         if c["outside_log_time"]:
             parts.append(f"{len(c['outside_log_time'])} checkpoint(s) outside the log's time span: lines "
                          + ", ".join(str(v) for v in c["outside_log_time"][:5]))
-        print(f"warning: {c['file']}: " + "; ".join(parts), file=sys.stderr)
+        print(f"lodemap build-map: warning: {c['file']}: " + "; ".join(parts), file=sys.stderr)
     for o in fmap.meta.get("offset_outliers", []):
-        print(f"warning: survey walk {o['walk']}: device-frame offset "
+        print(f"lodemap build-map: warning: survey walk {o['walk']}: device-frame offset "
               + ", ".join(f"{v:+.1f}" for v in o["offset_ut"]) + " µT (forward, left, up) differs from the other walks' by "
               + ", ".join(f"{v:+.1f}" for v in o["deviation_ut"]) + " µT, beyond "
               + ", ".join(f"{v:.1f}" for v in o["limit_ut"]) + " µT; check its calibration or leave it out",

@@ -213,7 +213,7 @@ def run(args):
 
         calibration = Calibration.from_json(args.calibration)  # FormatError with line and column
     if log.floor is not None and log.floor != fmap.floor:
-        print(f"warning: {args.log} is marked as recorded on floor {log.floor}, the map is of floor {fmap.floor}",
+        print(f"lodemap locate: warning: {args.log} is marked as recorded on floor {log.floor}, the map is of floor {fmap.floor}",
               file=sys.stderr)
     if start_xy is not None:
         _, _, dist = fmap.graph.project(np.asarray(start_xy, dtype=float).reshape(1, 2))

@@ -21,8 +21,8 @@ def run(args):
 
     from ..quality import field_image, quality_image
 
-    if args.dpi < 1:
-        raise ConfigError(f"--dpi must be a positive integer, got {args.dpi}")
+    if not 1 <= args.dpi <= 1200:  # 1200 dpi: a 7 x 5 inch figure is already 8400 x 6000 pixels
+        raise ConfigError(f"--dpi must be an integer from 1 to 1200, got {args.dpi}")
     check_writable(args.out, inputs=[args.map_path])
     fmap = load_map(args.map_path)
     if args.kind == "field":
