@@ -177,6 +177,7 @@ def test_build_map_checks_its_output_before_fitting(tmp_path, capsys, monkeypatc
     (["--set", "use_field=maybe"], "--set use_field: expected true or false, got 'maybe'"),
     (["--set", "sensor_noise_ut=abc"], "--set sensor_noise_ut: expected None or a finite number >= 0, got 'abc'"),
     (["--set", "n_particles=true"], "--set n_particles: expected an integer >= 1, got True"),
+    (["--start-time", "nan"], "--start-time: expected a finite time in seconds, got nan"),
 ])
 def test_a_bad_filter_option_is_named_as_typed(small_map, tmp_path, capsys, options, words):
     out = tmp_path / "t.csv"

@@ -201,6 +201,8 @@ def run(args):
     from fingerprint.pipeline import process_walk
 
     start_xy, sigma = (None, 1.0) if args.start is None else parse_start(args.start)
+    if args.start_time is not None and not math.isfinite(args.start_time):
+        raise ConfigError(f"--start-time: expected a finite time in seconds, got {args.start_time:g}")
     settings = build_settings(args, global_mode=start_xy is None)
     for out in (args.out, args.geojson):
         if out is not None:
