@@ -214,13 +214,16 @@ class FilterSettings:
             v = getattr(self, name)
             if not (num(v) and math.isfinite(v) and v >= 0):
                 bad(name, "a finite number >= 0")
-        for name in ("field_temper", "student_nu", "cluster_radius_m", "converge_sigma_m"):
+        for name in ("field_temper", "student_nu", "converge_sigma_m"):
             v = getattr(self, name)
             if not (num(v) and math.isfinite(v) and v > 0):
                 bad(name, "a finite number > 0")
-        # inf: use the field wherever the map reaches, however far from the survey
-        if not (num(self.coverage_max_m) and self.coverage_max_m > 0):
-            bad("coverage_max_m", "a number > 0 (inf: no limit)")
+        # inf has a meaning here: the field wherever the map reaches, however
+        # far from the survey; the whole cloud as one cluster
+        for name in ("coverage_max_m", "cluster_radius_m"):
+            v = getattr(self, name)
+            if not (num(v) and v > 0):
+                bad(name, "a number > 0 (inf: no limit)")
         for name in ("reverse_prior", "ess_threshold", "recovery_fraction", "recovery_rate", "converge_confidence"):
             v = getattr(self, name)
             if not (num(v) and 0 <= v <= 1):
