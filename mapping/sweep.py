@@ -623,16 +623,16 @@ def split_settings(settings):
 
 
 def check_noise_settings(noise):
-    """ConfigError (worded like a filter setting's, for :func:`_setting_error`)
-    unless ``noise_mag_ut`` is a finite number >= 0, ``noise_heading_deg``
-    finite and ``noise_step_scale`` finite and > 0."""
+    """ConfigError ("sweep setting NAME: ...", placed at its line by
+    :func:`_setting_error`) unless ``noise_mag_ut`` is a finite number >= 0,
+    ``noise_heading_deg`` finite and ``noise_step_scale`` finite and > 0."""
     rules = {"noise_mag_ut": (lambda v: v >= 0, "a finite number >= 0"),
              "noise_heading_deg": (lambda v: True, "a finite number"),
              "noise_step_scale": (lambda v: v > 0, "a finite number > 0")}
     for name, value in noise.items():
         ok, what = rules[name]
         if not (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value) and ok(value)):
-            raise ConfigError(f"filter setting {name}: expected {what}, got {value!r}")
+            raise ConfigError(f"sweep setting {name}: expected {what}, got {value!r}")
 
 
 def filter_settings(overrides, *, preset_name="default"):
@@ -660,11 +660,11 @@ def _setting_error(cfg, err):
     the config file, the line and column of that setting in the table of
     the search in use (``[grid]`` or ``[random]``), when they can be found."""
     text = str(err)
-    m = re.match(r"unknown setting\(s\) \['([^']+)'", text) or re.match(r"filter setting (\w+): ", text)
+    m = re.match(r"unknown setting\(s\) \['([^']+)'", text) or re.match(r"(?:filter|sweep) setting (\w+): ", text)
     if not m or not cfg.path:
         return ConfigError(f"{cfg.path}: {text}" if cfg.path else text)
     name = m.group(1)
-    if text.startswith("filter setting "):
+    if text.startswith(("filter setting ", "sweep setting ")):
         text = f"{name}: {text[m.end():]}"
     table = None
     try:
